@@ -119,12 +119,12 @@ def bsm_price(
 ) -> FloatArray:
     """Price per unit of underlying. Cheaper than :func:`bsm_greeks` when only the price is needed."""
     s, k, t, v, r, q, c = _require_valid(spot, strike, tau_years, vol, rate, div_yield, is_call)
-    return _price(s, k, t, v, r, q, np.where(c != 0, 1.0, -1.0))
+    return price_unchecked(s, k, t, v, r, q, np.where(c != 0, 1.0, -1.0))
 
 
-def _price(s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray,
+def price_unchecked(s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray,
            q: FloatArray, cp: FloatArray) -> FloatArray:
-    """Price of validated, broadcast inputs (no checks: internal hot path)."""
+    """Price of validated, broadcast 1-d float arrays; ``cp`` is +1 call / -1 put. No checks: the hot path."""
     disc_q = np.exp(-q * t)
     disc_r = np.exp(-r * t)
     live = (t > 0) & (v > 0)
@@ -143,10 +143,10 @@ def bsm_greeks(
 ) -> Greeks:
     """Price and the full greek set (units in the module docstring) for every option."""
     s, k, t, v, r, q, c = _require_valid(spot, strike, tau_years, vol, rate, div_yield, is_call)
-    return _greeks(s, k, t, v, r, q, np.where(c != 0, 1.0, -1.0))
+    return greeks_unchecked(s, k, t, v, r, q, np.where(c != 0, 1.0, -1.0))
 
 
-def _greeks(s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray,
+def greeks_unchecked(s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray,
             q: FloatArray, cp: FloatArray) -> Greeks:
     shape = s.shape
     disc_q = np.exp(-q * t)

@@ -1,0 +1,88 @@
+"""Column lists of the archive tables: the one place their names, order and SQL types live.
+
+``position_pnl`` carries every column the data contract fixes, plus the lifecycle lines,
+the revaluation shares, the exposures at the prior state and the limit state. Amounts are in
+the job's reporting currency. See README.md, "The archive", for the meaning of each column.
+"""
+
+from __future__ import annotations
+
+TAYLOR_TERMS: tuple[str, ...] = (
+    "delta", "gamma", "vega", "volga", "vanna", "theta", "rates", "dividend",
+)
+REVAL_FACTORS: tuple[str, ...] = ("spot", "vol", "time", "rates", "dividend")
+LIFECYCLE_LINES: tuple[str, ...] = ("new_trade", "expiry", "amendment")
+
+PNL_COLUMNS: tuple[str, ...] = (
+    "pnl_actual",
+    *(f"pnl_{t}" for t in TAYLOR_TERMS),
+    "pnl_explained", "pnl_residual", "pnl_model", "pnl_higher_order", "pnl_mark_gap",
+    *(f"pnl_{line}" for line in LIFECYCLE_LINES),
+    "pnl_total",
+)
+REVAL_COLUMNS: tuple[str, ...] = tuple(f"reval_{f}" for f in REVAL_FACTORS)
+EXPOSURE_COLUMNS: tuple[str, ...] = (
+    "delta_units",               # N * delta: underlying units (per underlying only meaningful)
+    "delta_cash",                # N * delta * spot: reporting currency
+    "gamma_cash_1pct",           # change of delta_cash for a 1 % spot move: N * gamma * spot^2 / 100
+    "vega_per_vol_point",        # N * vega / 100
+    "theta_per_calendar_day",    # N * theta_per_year / 365
+    "theta_per_business_day",    # N * theta_per_year / 252
+    "theta_next_business_day",   # run-date state: N1 * theta1 * year fraction to the next business day
+)
+
+POSITION_PNL: tuple[tuple[str, str], ...] = (
+    ("as_of", "DATE"), ("prior_as_of", "DATE"), ("book", "VARCHAR"), ("trade_id", "VARCHAR"),
+    ("instrument_id", "VARCHAR"), ("underlying", "VARCHAR"), ("currency", "VARCHAR"),
+    ("status", "VARCHAR"), ("flags", "VARCHAR"),
+    ("option_type", "VARCHAR"), ("strike", "DOUBLE"), ("expiry", "DATE"),
+    ("quantity", "DOUBLE"), ("quantity_run_date", "DOUBLE"), ("multiplier", "DOUBLE"), ("fx_rate", "DOUBLE"),
+    ("spot_prior", "DOUBLE"), ("spot_run", "DOUBLE"), ("vol_prior", "DOUBLE"), ("vol_run", "DOUBLE"),
+    ("tau_prior_years", "DOUBLE"), ("tau_run_years", "DOUBLE"), ("rate_prior", "DOUBLE"), ("rate_run", "DOUBLE"),
+    ("div_yield_prior", "DOUBLE"), ("div_yield_run", "DOUBLE"), ("price_prior", "DOUBLE"), ("price_run", "DOUBLE"),
+    *((c, "DOUBLE") for c in PNL_COLUMNS),
+    *((c, "DOUBLE") for c in REVAL_COLUMNS),
+    *((c, "DOUBLE") for c in EXPOSURE_COLUMNS),
+    ("limit_state", "VARCHAR"),
+)
+
+BOOK_PNL: tuple[tuple[str, str], ...] = (
+    ("as_of", "DATE"), ("prior_as_of", "DATE"), ("book", "VARCHAR"),
+    ("positions", "BIGINT"), ("carried", "BIGINT"), ("new", "BIGINT"), ("new_unpriced", "BIGINT"),
+    ("closed", "BIGINT"), ("expired", "BIGINT"), ("rejected", "BIGINT"), ("warnings", "BIGINT"),
+    *((c, "DOUBLE") for c in PNL_COLUMNS),
+    *((c, "DOUBLE") for c in REVAL_COLUMNS),
+    *((c, "DOUBLE") for c in EXPOSURE_COLUMNS),
+    ("residual_limit", "DOUBLE"),        # the limit applied tonight: max(abs limit, relative share * |actual|)
+    ("position_breaches", "BIGINT"),
+    ("limit_state", "VARCHAR"),
+)
+
+INPUT_EXCEPTIONS: tuple[tuple[str, str], ...] = (
+    ("as_of", "DATE"), ("file", "VARCHAR"), ("key", "VARCHAR"), ("rule", "VARCHAR"),
+    ("detail", "VARCHAR"), ("severity", "VARCHAR"),
+)
+
+BOOK_QUALITY: tuple[tuple[str, str], ...] = (
+    ("as_of", "DATE"), ("book", "VARCHAR"), ("nights", "BIGINT"), ("provisional", "BOOLEAN"),
+    ("spearman", "DOUBLE"), ("ks", "DOUBLE"), ("zone", "VARCHAR"),
+    ("mean_ratio", "DOUBLE"), ("variance_ratio", "DOUBLE"),
+    ("spearman_60", "DOUBLE"), ("ks_60", "DOUBLE"), ("zone_60", "VARCHAR"), ("early_warning", "VARCHAR"),
+)
+
+RUNS: tuple[tuple[str, str], ...] = (
+    ("run_id", "VARCHAR"), ("as_of", "DATE"), ("prior_as_of", "DATE"),
+    ("started_at", "TIMESTAMP"), ("finished_at", "TIMESTAMP"), ("status", "VARCHAR"),
+    ("tool_version", "VARCHAR"), ("input_hashes", "VARCHAR"), ("job_settings", "VARCHAR"),
+    ("positions_in", "BIGINT"), ("positions_archived", "BIGINT"), ("positions_rejected", "BIGINT"),
+    ("warnings", "BIGINT"), ("book_breaches", "BIGINT"), ("position_breaches", "BIGINT"),
+    ("exit_code", "INTEGER"), ("seconds", "DOUBLE"),
+)
+
+TABLES: dict[str, tuple[tuple[str, str], ...]] = {
+    "position_pnl": POSITION_PNL,
+    "book_pnl": BOOK_PNL,
+    "input_exceptions": INPUT_EXCEPTIONS,
+    "book_quality": BOOK_QUALITY,
+    "runs": RUNS,
+}
