@@ -66,7 +66,8 @@ def _solve_total_vol(x: FloatArray, beta: FloatArray) -> FloatArray:
             step_lin = (bi - b) / vega
         step = np.where(low_region[i], step_log, step_lin)
         new = si + step
-        converged = (np.abs(step) <= _REL_TOL * si) | (b == bi) | (np.isfinite(hi[i]) & (hi[i] - lo[i] <= _REL_TOL * hi[i]))
+        collapsed = np.isfinite(hi[i]) & (hi[i] - lo[i] <= _REL_TOL * hi[i])
+        converged = (np.abs(step) <= _REL_TOL * si) | (b == bi) | collapsed
         outside = ~converged & (~np.isfinite(new) | (new <= lo[i]) | (new >= hi[i]))
         bisect = np.where(np.isfinite(hi[i]), 0.5 * (lo[i] + hi[i]), 2.0 * si)
         s[i] = np.where(converged, si, np.where(outside, bisect, new))

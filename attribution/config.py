@@ -1,0 +1,161 @@
+"""The job's configuration: one frozen object, read from a TOML job file and overridden by flags.
+
+Nothing in the package reads a global setting; the engine passes this object down.
+Relative paths in a job file are resolved against the folder of that file.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+TIME_BASES = ("ACT/365F", "BUS/252")
+ENGINES = ("local", "dask")
+
+
+class ConfigError(ValueError):
+    """A job file or option that breaks a rule; the message names the file and the key."""
+
+
+@dataclass(frozen=True, slots=True)
+class LimitSettings:
+    """Residual limits of one book, amounts in the reporting currency.
+
+    A book breaches when |residual| > ``residual_abs``, or when |actual| >= ``relative_floor`` and
+    |residual| > ``residual_rel`` x |actual|. It is on watch when either test passes
+    ``watch_fraction`` of its limit. A position breaches when |residual| > ``position_abs``.
+    """
+
+    residual_abs: float = 25_000.0
+    residual_rel: float = 0.10
+    relative_floor: float = 100_000.0
+    position_abs: float = 10_000.0
+    watch_fraction: float = 0.8
+
+
+@dataclass(frozen=True, slots=True)
+class CheckSettings:
+    """Thresholds of the input checks (decimals)."""
+
+    max_vol: float = 5.0               # a vol above 500 % is taken as a unit error (e.g. 25 for 0.25)
+    stale_spot_move: float = 0.002     # a mark unchanged while its underlying moved more than this share
+    iv_price_tolerance: float = 0.005  # |model(marked vol) - price| / max(price, 0.01 * spot) above this warns
+    max_abs_quantity: float = 1e9      # contracts; above this a quantity is taken as a booking error
+
+
+@dataclass(frozen=True, slots=True)
+class JobConfig:
+    """Everything one run needs to know besides the dates."""
+
+    data_root: Path = Path("data")
+    archive_path: Path = Path("archive.duckdb")
+    reports_dir: Path = Path("reports")
+    reporting_currency: str = "USD"
+    time_basis: str = "ACT/365F"
+    holidays: tuple[dt.date, ...] = ()
+    limits: LimitSettings = field(default_factory=LimitSettings)
+    book_limits: tuple[tuple[str, LimitSettings], ...] = ()
+    checks: CheckSettings = field(default_factory=CheckSettings)
+    engine: str = "local"
+    scheduler: str | None = None
+    revaluation: bool = True
+    write_reports: bool = True
+    history_nights: int = 60
+
+    def limits_for(self, book: str) -> LimitSettings:
+        """The limits of ``book``: its override when the job file has one, else the default."""
+        return dict(self.book_limits).get(book, self.limits)
+
+    def as_record(self) -> dict[str, Any]:
+        """A JSON-friendly view, stored with each run."""
+        def plain(v: Any) -> Any:
+            if isinstance(v, Path | dt.date):
+                return str(v)
+            if isinstance(v, tuple):
+                return [plain(x) for x in v]
+            if dataclasses.is_dataclass(v):
+                return {f.name: plain(getattr(v, f.name)) for f in dataclasses.fields(v)}
+            return v
+        return plain(self)
+
+
+def _section(raw: dict[str, Any], name: str, source: str) -> dict[str, Any]:
+    value = raw.get(name, {})
+    if not isinstance(value, dict):
+        raise ConfigError(f"{source}: [{name}] must be a table")
+    return value
+
+
+def _settings(cls: type, values: dict[str, Any], where: str) -> Any:
+    known = {f.name for f in dataclasses.fields(cls)}
+    unknown = sorted(set(values) - known)
+    if unknown:
+        raise ConfigError(f"{where}: unknown key(s) {', '.join(unknown)}; allowed: {', '.join(sorted(known))}")
+    for key, value in values.items():
+        if not isinstance(value, int | float) or isinstance(value, bool) or value < 0:
+            raise ConfigError(f"{where}: {key} must be a number >= 0, got {value!r}")
+    return cls(**{k: float(v) for k, v in values.items()})
+
+
+def load_job(path: Path) -> JobConfig:
+    """Read a TOML job file (see jobs/nightly.toml for every key, documented)."""
+    source = str(path)
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError as exc:
+        raise ConfigError(f"{source}: job file not found") from exc
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{source}: not valid TOML: {exc}") from exc
+    base = path.resolve().parent
+    job = _section(raw, "job", source)
+    time = _section(raw, "time", source)
+    limits_raw = dict(_section(raw, "limits", source))
+    books_raw = limits_raw.pop("books", {})
+    checks = _section(raw, "checks", source)
+
+    def resolve(key: str, default: Path) -> Path:
+        value = job.get(key)
+        return default if value is None else (base / str(value)).resolve()
+
+    default_limits = _settings(LimitSettings, limits_raw, f"{source} [limits]")
+    book_limits = tuple(
+        (str(book), _settings(LimitSettings, {**{f.name: getattr(default_limits, f.name)
+                                                for f in dataclasses.fields(LimitSettings)}, **values},
+                              f"{source} [limits.books.{book!r}]"))
+        for book, values in sorted(books_raw.items())
+    )
+    holidays = time.get("holidays", [])
+    if not all(isinstance(h, dt.date) for h in holidays):
+        raise ConfigError(f"{source} [time] holidays: every entry must be a TOML date such as 2026-12-25")
+    config = JobConfig(
+        data_root=resolve("data_root", JobConfig.data_root),
+        archive_path=resolve("archive", JobConfig.archive_path),
+        reports_dir=resolve("reports", JobConfig.reports_dir),
+        reporting_currency=str(job.get("reporting_currency", "USD")),
+        time_basis=str(time.get("basis", "ACT/365F")),
+        holidays=tuple(sorted(holidays)),
+        limits=default_limits,
+        book_limits=book_limits,
+        checks=_settings(CheckSettings, checks, f"{source} [checks]"),
+        engine=str(job.get("engine", "local")),
+        scheduler=job.get("scheduler"),
+        revaluation=bool(job.get("revaluation", True)),
+        write_reports=bool(job.get("write_reports", True)),
+        history_nights=int(job.get("history_nights", 60)),
+    )
+    return validate(config, source)
+
+
+def validate(config: JobConfig, source: str = "options") -> JobConfig:
+    """Refuse settings the job cannot honour, naming the key."""
+    if config.time_basis not in TIME_BASES:
+        raise ConfigError(f"{source}: time basis {config.time_basis!r} is not one of {', '.join(TIME_BASES)}")
+    if config.engine not in ENGINES:
+        raise ConfigError(f"{source}: engine {config.engine!r} is not one of {', '.join(ENGINES)}")
+    if len(config.reporting_currency) != 3 or not config.reporting_currency.isalpha():
+        raise ConfigError(f"{source}: reporting_currency must be an ISO 4217 code such as USD")
+    return config
