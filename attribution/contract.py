@@ -1,0 +1,186 @@
+"""Row rules of the data contract, one file at a time: clean tables plus exception rows.
+
+Every rule here is a vectorised mask over a whole file. A row that breaks a rule is left out of
+the clean table and becomes a ``rejected`` row of the exception ledger naming the file, the
+row's key and the rule. Rules that need two files (a position whose instrument has no mark,
+a price outside its no-arbitrage bounds) live in :mod:`attribution.market` and
+:mod:`attribution.lifecycle`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from attribution.config import CheckSettings
+from attribution.exceptions_log import ExceptionLog
+from attribution.loading import RawNight
+
+
+@dataclass(frozen=True, slots=True)
+class CleanNight:
+    """One date's rows that passed the row rules, keyed for look-ups."""
+
+    raw: RawNight
+    positions: pd.DataFrame        # RangeIndex; columns of positions.parquet
+    instruments: pd.DataFrame      # indexed by instrument_id
+    marks: pd.DataFrame            # indexed by instrument_id
+    underlyings: pd.DataFrame      # indexed by underlying
+    curves: pd.DataFrame           # currency, tenor_years, zero_rate
+    fx: pd.Series                  # rate per currency (reporting currency per unit)
+    rejected_trades: pd.DataFrame  # trade_id, book, rule of positions rejected by a row rule
+
+
+def _key(frame: pd.DataFrame, column: str) -> pd.Series:
+    return frame[column].where(frame[column].notna(), "(null) row " + frame.index.astype(str))
+
+
+class _Rules:
+    """Applies masks to one file and records what they reject."""
+
+    def __init__(self, log: ExceptionLog, path: str, frame: pd.DataFrame, key_column: str) -> None:
+        self.log, self.path, self.frame, self.key_column = log, path, frame, key_column
+        self.ok = np.ones(len(frame), dtype=bool)
+        self.reasons = np.full(len(frame), "", dtype=object)
+
+    def reject(self, bad: np.ndarray | pd.Series, rule: str, detail: str | pd.Series = "") -> None:
+        mask = np.asarray(bad, dtype=bool) & self.ok
+        if mask.any():
+            keys = _key(self.frame, self.key_column)[mask]
+            det = detail[mask] if isinstance(detail, pd.Series) else detail
+            self.log.add(self.path, keys.to_numpy(), rule, det)
+            self.reasons[mask] = rule
+            self.ok &= ~mask
+
+    def required(self, *columns: str) -> None:
+        for column in columns:
+            self.reject(self.frame[column].isna(), f"{column} is null", f"{column} is required")
+
+    def unique(self, column: str) -> None:
+        dup = self.frame[column].duplicated(keep=False) & self.frame[column].notna()
+        self.reject(dup, f"duplicate {column}", "the key appears more than once; every copy is left out")
+
+    def finite(self, *columns: str) -> None:
+        for column in columns:
+            values = self.frame[column].to_numpy(dtype=float)
+            self.reject(~np.isfinite(values), f"{column} is not a finite number",
+                        self.frame[column].astype(str).radd(f"{column} = "))
+
+    def positive(self, *columns: str) -> None:
+        for column in columns:
+            values = self.frame[column].to_numpy(dtype=float)
+            self.reject(values <= 0, f"{column} must be > 0", self.frame[column].astype(str).radd(f"{column} = "))
+
+    def clean(self) -> pd.DataFrame:
+        return self.frame[self.ok]
+
+
+def _positions(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> tuple[pd.DataFrame, pd.DataFrame]:
+    file = "positions.parquet"
+    frame = raw.tables[file]
+    rules = _Rules(log, raw.path(file), frame, "trade_id")
+    rules.required("trade_id", "book", "instrument_id")
+    rules.unique("trade_id")
+    rules.finite("quantity")
+    quantity = frame["quantity"].to_numpy(dtype=float)
+    rules.reject(np.abs(quantity) > checks.max_abs_quantity, "quantity is absurdly large",
+                 frame["quantity"].astype(str).radd(f"|quantity| above {checks.max_abs_quantity:g} contracts: "))
+    price = frame["trade_price"].to_numpy(dtype=float)
+    rules.reject(np.isinf(price) | (price < 0), "trade_price must be a finite number >= 0 when given",
+                 frame["trade_price"].astype(str).radd("trade_price = "))
+    rejected = frame.loc[~rules.ok & frame["trade_id"].notna().to_numpy(), ["trade_id", "book"]].copy()
+    rejected["rule"] = rules.reasons[~rules.ok & frame["trade_id"].notna().to_numpy()]
+    return rules.clean().reset_index(drop=True), rejected
+
+
+def _instruments(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
+    file = "instruments.parquet"
+    frame = raw.tables[file]
+    rules = _Rules(log, raw.path(file), frame, "instrument_id")
+    rules.required("instrument_id", "underlying", "option_type", "exercise", "expiry", "currency")
+    rules.unique("instrument_id")
+    rules.reject(~frame["option_type"].isin(["call", "put"]), "option_type must be call or put",
+                 frame["option_type"].astype(str).radd("option_type = "))
+    rules.reject(frame["exercise"] != "european", "only european exercise is supported",
+                 frame["exercise"].astype(str).radd("exercise = "))
+    rules.finite("strike", "multiplier")
+    rules.positive("strike", "multiplier")
+    currency = frame["currency"].astype(str)
+    rules.reject(~currency.str.fullmatch(r"[A-Z]{3}"), "currency must be an ISO 4217 code",
+                 currency.radd("currency = "))
+    return rules.clean().set_index("instrument_id")
+
+
+def _marks(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.DataFrame:
+    file = "option_marks.parquet"
+    frame = raw.tables[file]
+    rules = _Rules(log, raw.path(file), frame, "instrument_id")
+    rules.required("instrument_id")
+    rules.unique("instrument_id")
+    rules.finite("price")
+    price = frame["price"].to_numpy(dtype=float)
+    rules.reject(price < 0, "price must be >= 0", frame["price"].astype(str).radd("price = "))
+    vol = frame["implied_vol"].to_numpy(dtype=float)
+    given = ~np.isnan(vol)
+    vol_text = frame["implied_vol"].astype(str).radd("implied_vol = ")
+    rules.reject(given & ~np.isfinite(vol), "implied_vol is not a finite number", vol_text)
+    rules.reject(given & (vol <= 0), "implied_vol must be > 0", vol_text)
+    rules.reject(given & (vol > checks.max_vol), "implied_vol is absurd",
+                 vol_text + f" is above {checks.max_vol:g}; vols are decimals (0.25 for 25 %)")
+    return rules.clean().set_index("instrument_id")
+
+
+def _underlyings(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
+    file = "underlying_marks.parquet"
+    frame = raw.tables[file]
+    rules = _Rules(log, raw.path(file), frame, "underlying")
+    rules.required("underlying")
+    rules.unique("underlying")
+    rules.finite("spot", "dividend_yield")
+    rules.positive("spot")
+    return rules.clean().set_index("underlying")
+
+
+def _curves(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
+    file = "rate_curves.parquet"
+    frame = raw.tables[file].copy()
+    frame["point"] = frame["currency"].astype(str) + " @ " + frame["tenor_years"].astype(str) + "y"
+    rules = _Rules(log, raw.path(file), frame, "point")
+    rules.required("currency")
+    rules.finite("tenor_years", "zero_rate")
+    rules.reject(frame["tenor_years"].to_numpy(dtype=float) < 0, "tenor_years must be >= 0")
+    rules.unique("point")
+    return rules.clean().drop(columns="point").sort_values(["currency", "tenor_years"]).reset_index(drop=True)
+
+
+def _fx(raw: RawNight, log: ExceptionLog, reporting_currency: str) -> pd.Series:
+    file = "fx_rates.parquet"
+    frame = raw.tables.get(file)
+    if frame is None:
+        return pd.Series({reporting_currency: 1.0}, dtype=float)
+    rules = _Rules(log, raw.path(file), frame, "currency")
+    rules.required("currency")
+    rules.unique("currency")
+    rules.finite("rate")
+    rules.positive("rate")
+    rates = rules.clean().set_index("currency")["rate"].astype(float)
+    if reporting_currency not in rates.index:
+        rates[reporting_currency] = 1.0
+    return rates
+
+
+def clean_night(raw: RawNight, log: ExceptionLog, checks: CheckSettings, reporting_currency: str) -> CleanNight:
+    """Apply every single-file row rule of the contract to one date's files."""
+    positions, rejected = _positions(raw, log, checks)
+    return CleanNight(
+        raw=raw,
+        positions=positions,
+        instruments=_instruments(raw, log),
+        marks=_marks(raw, log, checks),
+        underlyings=_underlyings(raw, log),
+        curves=_curves(raw, log),
+        fx=_fx(raw, log, reporting_currency),
+        rejected_trades=rejected,
+    )

@@ -1,0 +1,48 @@
+"""The exception ledger of one run: every rejected or suspicious input row, with its reason.
+
+Rows are gathered as small column arrays and turned into one frame with the columns of
+``input_exceptions`` (see :mod:`attribution.schema`) at the end of the run.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+REJECTED = "rejected"
+WARNING = "warning"
+
+
+@dataclass(slots=True)
+class ExceptionLog:
+    """Collects exception rows; ``add`` takes arrays so callers never loop per row."""
+
+    as_of: dt.date
+    _parts: list[pd.DataFrame] = field(default_factory=list)
+
+    def add(self, file: str, keys: object, rule: str, detail: object, severity: str = REJECTED) -> None:
+        """One row per key; ``detail`` is one text for all or one per key."""
+        key_array = np.asarray(keys, dtype=object).ravel()
+        if key_array.size == 0:
+            return
+        details = np.broadcast_to(np.asarray(detail, dtype=object), key_array.shape)
+        self._parts.append(pd.DataFrame({
+            "file": file, "key": pd.Series(key_array, dtype=object).fillna("(null)").astype(str).to_numpy(),
+            "rule": rule, "detail": details.astype(str), "severity": severity,
+        }))
+
+    def frame(self) -> pd.DataFrame:
+        """All rows so far, with ``as_of``, in the order they were found."""
+        columns = ["as_of", "file", "key", "rule", "detail", "severity"]
+        if not self._parts:
+            return pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
+        out = pd.concat(self._parts, ignore_index=True)
+        out.insert(0, "as_of", pd.Timestamp(self.as_of))
+        return out[columns]
+
+    def count(self, severity: str) -> int:
+        """How many rows of that severity."""
+        return int(sum((part["severity"] == severity).sum() for part in self._parts))

@@ -1,0 +1,139 @@
+"""Reading one business date's Parquet files (the edge of the job: files -> Arrow -> pandas).
+
+A file that is missing, unreadable, lacks a required column or has a column of the wrong type
+stops the run with an :class:`InputFileError` naming the file and the column. Row rules are
+checked later, in :mod:`attribution.contract`, where a bad row becomes an exception row.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import re
+from dataclasses import dataclass
+from pathlib import Path
+
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+FOLDER_PATTERN = re.compile(r"^as_of=(\d{4}-\d{2}-\d{2})$")
+
+STRING, FLOAT, DATE = "string", "float64", "date32"
+
+# file -> ((column, kind), ...); the order is the data contract's.
+FILE_COLUMNS: dict[str, tuple[tuple[str, str], ...]] = {
+    "positions.parquet": (("trade_id", STRING), ("book", STRING), ("instrument_id", STRING),
+                          ("quantity", FLOAT), ("trade_date", DATE), ("trade_price", FLOAT)),
+    "instruments.parquet": (("instrument_id", STRING), ("underlying", STRING), ("option_type", STRING),
+                            ("exercise", STRING), ("strike", FLOAT), ("expiry", DATE),
+                            ("multiplier", FLOAT), ("currency", STRING)),
+    "option_marks.parquet": (("instrument_id", STRING), ("price", FLOAT), ("implied_vol", FLOAT)),
+    "underlying_marks.parquet": (("underlying", STRING), ("spot", FLOAT), ("dividend_yield", FLOAT)),
+    "rate_curves.parquet": (("currency", STRING), ("tenor_years", FLOAT), ("zero_rate", FLOAT)),
+    "fx_rates.parquet": (("currency", STRING), ("rate", FLOAT)),
+}
+OPTIONAL_FILES = frozenset({"fx_rates.parquet"})
+
+
+class InputFileError(RuntimeError):
+    """A whole input file cannot be used: the run stops and the archive is left untouched."""
+
+
+@dataclass(frozen=True, slots=True)
+class RawNight:
+    """One date's files as pandas frames with the contract's columns and dtypes."""
+
+    as_of: dt.date
+    folder: Path
+    tables: dict[str, pd.DataFrame]
+    hashes: dict[str, str]
+
+    def path(self, file: str) -> str:
+        """The file's path as shown in messages and exception rows."""
+        return str(self.folder / file)
+
+
+def folder_for(data_root: Path, as_of: dt.date) -> Path:
+    """``<data_root>/as_of=YYYY-MM-DD``."""
+    return data_root / f"as_of={as_of.isoformat()}"
+
+
+def available_dates(data_root: Path) -> list[dt.date]:
+    """Every ``as_of=`` folder below ``data_root``, oldest first."""
+    if not data_root.is_dir():
+        raise InputFileError(f"{data_root}: data folder not found")
+    dates = []
+    for child in data_root.iterdir():
+        match = FOLDER_PATTERN.match(child.name)
+        if match and child.is_dir():
+            try:
+                dates.append(dt.date.fromisoformat(match.group(1)))
+            except ValueError:
+                continue
+    return sorted(dates)
+
+
+def prior_date(data_root: Path, as_of: dt.date) -> dt.date:
+    """The latest ``as_of`` folder strictly before ``as_of``."""
+    earlier = [d for d in available_dates(data_root) if d < as_of]
+    if not earlier:
+        raise InputFileError(f"{data_root}: no as_of folder before {as_of} to serve as the prior date")
+    return earlier[-1]
+
+
+def _kind_ok(kind: str, arrow_type: pa.DataType) -> bool:
+    if kind == STRING:
+        if pa.types.is_dictionary(arrow_type):
+            arrow_type = arrow_type.value_type
+        return pa.types.is_string(arrow_type) or pa.types.is_large_string(arrow_type) or \
+            pa.types.is_string_view(arrow_type) or pa.types.is_null(arrow_type)
+    if kind == FLOAT:  # integers widen losslessly enough for prices and quantities; nulls are allowed
+        return pa.types.is_floating(arrow_type) or pa.types.is_integer(arrow_type) or pa.types.is_null(arrow_type)
+    return pa.types.is_date(arrow_type) or pa.types.is_null(arrow_type)
+
+
+def _to_frame(table: pa.Table, columns: tuple[tuple[str, str], ...]) -> pd.DataFrame:
+    target = {STRING: pa.string(), FLOAT: pa.float64(), DATE: pa.date32()}
+    data: dict[str, pd.Series] = {}
+    for name, kind in columns:
+        values = table.column(name).cast(target[kind]).to_numpy(zero_copy_only=False)
+        data[name] = pd.Series(values, dtype=object if kind == STRING else None)
+    return pd.DataFrame(data, index=pd.RangeIndex(table.num_rows))
+
+
+def read_file(folder: Path, file: str) -> tuple[pd.DataFrame | None, str]:
+    """One file as a frame (None when an optional file is absent) and its SHA-256."""
+    path = folder / file
+    columns = FILE_COLUMNS[file]
+    if not path.exists():
+        if file in OPTIONAL_FILES:
+            return None, ""
+        raise InputFileError(f"{path}: required file is missing")
+    try:
+        raw = path.read_bytes()
+        table = pq.read_table(pa.BufferReader(raw))
+    except (OSError, pa.ArrowException) as exc:
+        raise InputFileError(f"{path}: cannot be read as Parquet ({exc})") from exc
+    for name, kind in columns:
+        if name not in table.column_names:
+            raise InputFileError(f"{path}: required column '{name}' is missing")
+        arrow_type = table.schema.field(name).type
+        if not _kind_ok(kind, arrow_type):
+            raise InputFileError(f"{path}: column '{name}' has type {arrow_type}, the contract wants {kind}")
+    return _to_frame(table, columns), hashlib.sha256(raw).hexdigest()
+
+
+def read_night(data_root: Path, as_of: dt.date) -> RawNight:
+    """Every file of one date; raises :class:`InputFileError` on the first unusable file."""
+    folder = folder_for(data_root, as_of)
+    if not folder.is_dir():
+        raise InputFileError(f"{folder}: folder for {as_of} not found")
+    tables: dict[str, pd.DataFrame] = {}
+    hashes: dict[str, str] = {}
+    for file in FILE_COLUMNS:
+        frame, digest = read_file(folder, file)
+        if frame is not None:
+            tables[file] = frame
+            hashes[file] = digest
+    return RawNight(as_of, folder, tables, hashes)

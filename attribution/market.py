@@ -1,0 +1,188 @@
+"""Per-instrument market state on one date: spot, strike, time, rate, yield, vol, price.
+
+Built once per date for the instruments (tens of thousands at most), then gathered onto the
+positions (up to millions) by integer index. Every reason an instrument cannot be used is kept
+as text, so that each position it touches is rejected with that reason; rows of other files at
+fault get exception rows of their own here.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from numpy.typing import NDArray
+
+from attribution.config import CheckSettings
+from attribution.contract import CleanNight
+from attribution.curves import zero_rates
+from attribution.exceptions_log import WARNING, ExceptionLog
+from attribution.implied_vol import implied_vol
+from attribution.pricing import price_unchecked
+from attribution.timebasis import TimeBasis
+
+FloatArray = NDArray[np.float64]
+
+
+@dataclass(frozen=True, slots=True)
+class InstrumentMarket:
+    """Arrays aligned with ``ids``: the state of each instrument on ``as_of``.
+
+    ``usable`` is True where an active position can be priced and explained; otherwise
+    ``reason`` says why. ``spot_known`` is True where the underlying has a spot (enough to
+    settle an expiry).
+    """
+
+    as_of: dt.date
+    ids: pd.Index
+    underlying: NDArray[np.object_]
+    currency: NDArray[np.object_]
+    option_type: NDArray[np.object_]
+    cp: FloatArray
+    strike: FloatArray
+    multiplier: FloatArray
+    expiry: NDArray[np.datetime64]
+    tau_years: FloatArray
+    spot: FloatArray
+    div_yield: FloatArray
+    rate: FloatArray
+    price: FloatArray
+    vol: FloatArray
+    marked_vol: FloatArray
+    vol_solved: NDArray[np.bool_]
+    vol_mismatch: NDArray[np.bool_]
+    spot_known: NDArray[np.bool_]
+    usable: NDArray[np.bool_]
+    reason: NDArray[np.object_]
+
+    def locate(self, instrument_ids: NDArray[np.object_]) -> NDArray[np.intp]:
+        """Index of each id in this market, -1 where absent."""
+        return self.ids.get_indexer(instrument_ids)
+
+
+def instrument_terms(own: CleanNight, other: CleanNight | None) -> pd.DataFrame:
+    """This date's instruments, completed by the other date's for instruments it no longer lists."""
+    if other is None:
+        return own.instruments
+    extra = other.instruments.loc[~other.instruments.index.isin(own.instruments.index)]
+    return pd.concat([own.instruments, extra]) if len(extra) else own.instruments
+
+
+def _first_reason(reason: NDArray[np.object_], bad: NDArray[np.bool_], text: str | NDArray[np.object_]) -> None:
+    fill = bad & (reason == "")
+    reason[fill] = text[fill] if isinstance(text, np.ndarray) else text
+
+
+def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, checks: CheckSettings,
+                 log: ExceptionLog) -> InstrumentMarket:
+    """The state of every instrument in ``terms`` on ``night``'s date, with its usability."""
+    as_of = night.raw.as_of
+    own_ids = night.instruments.index
+    n = len(terms)
+    ids = terms.index
+    underlying = terms["underlying"].to_numpy(dtype=object)
+    currency = terms["currency"].to_numpy(dtype=object)
+    option_type = terms["option_type"].to_numpy(dtype=object)
+    cp = np.where(option_type == "call", 1.0, -1.0)
+    strike = terms["strike"].to_numpy(dtype=float)
+    expiry = terms["expiry"].to_numpy(dtype="datetime64[D]")
+    tau = basis.year_fraction(np.datetime64(as_of, "D"), expiry) if n else np.zeros(0)
+    reason = np.full(n, "", dtype=object)
+
+    u_idx = night.underlyings.index.get_indexer(underlying)
+    spot_known = u_idx >= 0
+    spot = np.where(spot_known, night.underlyings["spot"].to_numpy(float)[u_idx], np.nan)
+    div_yield = np.where(spot_known, night.underlyings["dividend_yield"].to_numpy(float)[u_idx], np.nan)
+    unknown_u = ~spot_known & np.asarray(ids.isin(own_ids))
+    log.add(night.raw.path("instruments.parquet"), ids[unknown_u].to_numpy(), "unknown underlying",
+            pd.Series(underlying[unknown_u], dtype=object).astype(str).radd("no row in underlying_marks for "))
+    _first_reason(reason, ~spot_known, "underlying " + pd.Series(underlying, dtype=object).astype(str).to_numpy()
+                  + f" has no usable mark on {as_of}")
+
+    rate, has_curve = zero_rates(night.curves, currency, tau)
+    missing_ccy = sorted(set(currency[~has_curve].tolist()))
+    log.add(night.raw.path("rate_curves.parquet"), missing_ccy, "no curve for currency",
+            "an instrument in this currency is listed but the file has no usable curve for it")
+    _first_reason(reason, ~has_curve, "no rate curve for currency " +
+                  pd.Series(currency, dtype=object).astype(str).to_numpy() + f" on {as_of}")
+
+    m_idx = night.marks.index.get_indexer(ids)
+    marked = m_idx >= 0
+    price = np.where(marked, night.marks["price"].to_numpy(float)[m_idx], np.nan)
+    marked_vol = np.where(marked, night.marks["implied_vol"].to_numpy(float)[m_idx], np.nan)
+    _first_reason(reason, tau < 0, f"the option expired before {as_of}")
+    _first_reason(reason, ~marked, f"no usable option mark on {as_of}")
+
+    vol, vol_solved, vol_mismatch = _vols(night, ids, reason, price, marked_vol, spot, strike, tau, rate,
+                                          div_yield, cp, checks, log)
+    usable = reason == ""
+    return InstrumentMarket(as_of, ids, underlying, currency, option_type, cp, strike,
+                            terms["multiplier"].to_numpy(dtype=float), expiry, tau, spot, div_yield, rate, price,
+                            vol, marked_vol, vol_solved, vol_mismatch, spot_known, usable, reason)
+
+
+def _vols(night: CleanNight, ids: pd.Index, reason: NDArray[np.object_], price: FloatArray, marked_vol: FloatArray,
+          spot: FloatArray, strike: FloatArray, tau: FloatArray, rate: FloatArray, div_yield: FloatArray,
+          cp: FloatArray, checks: CheckSettings, log: ExceptionLog,
+          ) -> tuple[FloatArray, NDArray[np.bool_], NDArray[np.bool_]]:
+    """Check marks against the no-arbitrage bounds, solve missing vols, flag vols that disagree with price."""
+    marks_file = night.raw.path("option_marks.parquet")
+    candidates = reason == ""
+    vol = marked_vol.copy()
+    with np.errstate(all="ignore"):
+        disc_q, disc_r = np.exp(-div_yield * tau), np.exp(-rate * tau)
+        lower = np.maximum(cp * (spot * disc_q - strike * disc_r), 0.0)
+        upper = np.where(cp > 0, spot * disc_q, strike * disc_r)
+    slack = 1e-9 * np.maximum(1.0, np.abs(price))
+    outside = candidates & ((price < lower - slack) | (price > upper + slack))
+    detail = pd.Series([f"price {p:.6g} outside [{lo:.6g}, {hi:.6g}]" for p, lo, hi in
+                        zip(price[outside], lower[outside], upper[outside], strict=True)], dtype=object)
+    log.add(marks_file, ids[outside].to_numpy(), "price outside no-arbitrage bounds", detail.to_numpy())
+    _first_reason(reason, outside, "option price outside its no-arbitrage bounds")
+
+    expiring = (reason == "") & (tau == 0)
+    vol[expiring & np.isnan(vol)] = 0.0  # no time left: the value is intrinsic whatever the vol
+    solve = (reason == "") & np.isnan(vol)
+    vol_solved = np.zeros(len(ids), dtype=bool)
+    if solve.any():
+        i = np.flatnonzero(solve)
+        result = implied_vol(price[i], spot[i], strike[i], tau[i], rate[i], div_yield[i], cp[i] > 0)
+        vol[i] = result.vol
+        failed = result.reason != ""
+        log.add(marks_file, ids[i[failed]].to_numpy(), "implied vol cannot be solved from price",
+                result.reason[failed])
+        reason[i[failed]] = "implied vol cannot be solved: " + result.reason[failed]
+        vol_solved[i[~failed]] = True
+
+    check = (reason == "") & ~vol_solved & (tau > 0)
+    vol_mismatch = np.zeros(len(ids), dtype=bool)
+    if check.any():
+        i = np.flatnonzero(check)
+        model = price_unchecked(spot[i], strike[i], tau[i], vol[i], rate[i], div_yield[i], cp[i])
+        scale = np.maximum(price[i], 0.01 * spot[i])
+        off = np.abs(model - price[i]) > checks.iv_price_tolerance * scale
+        vol_mismatch[i[off]] = True
+        detail = pd.Series([f"implied_vol {v:.4g} prices {m:.6g}, mark is {p:.6g}" for v, m, p in
+                            zip(vol[i[off]], model[off], price[i[off]], strict=True)], dtype=object)
+        log.add(marks_file, ids[i[off]].to_numpy(), "implied vol inconsistent with price", detail.to_numpy(),
+                WARNING)
+    return vol, vol_solved, vol_mismatch
+
+
+def flag_stale_marks(prior: InstrumentMarket, run: InstrumentMarket, move: float, marks_file: str,
+                     log: ExceptionLog) -> NDArray[np.bool_]:
+    """Run-date marks unchanged from the prior date while the underlying moved: warned, per instrument."""
+    j = prior.locate(run.ids.to_numpy())
+    both = (j >= 0) & run.usable & (run.tau_years > 0)
+    jj = np.where(both, j, 0)
+    same_price = run.price == prior.price[jj]
+    same_vol = (run.marked_vol == prior.marked_vol[jj]) | (np.isnan(run.marked_vol) & np.isnan(prior.marked_vol[jj]))
+    with np.errstate(all="ignore"):
+        spot_move = np.abs(run.spot / prior.spot[jj] - 1.0)
+    stale = both & prior.usable[jj] & same_price & same_vol & (spot_move > move)
+    detail = pd.Series([f"price {p:.6g} unchanged while the underlying moved {m:.2%}" for p, m in
+                        zip(run.price[stale], spot_move[stale], strict=True)], dtype=object)
+    log.add(marks_file, run.ids[stale].to_numpy(), "stale mark", detail.to_numpy(), WARNING)
+    return stale
