@@ -1,0 +1,130 @@
+"""The DuckDB archive: one transaction per run date, a lock against concurrent runs, history queries.
+
+Tables and columns are those of :mod:`attribution.schema`. Writing a night deletes that date's
+rows from every table and inserts the new ones inside one transaction, so a rerun replaces a
+date and a failed run leaves the archive as it was. Every value reaches SQL as a parameter or
+as a registered Arrow/pandas relation, never formatted into the statement.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime as dt
+import fcntl
+import os
+from collections.abc import Iterator
+from pathlib import Path
+
+import duckdb
+import pandas as pd
+
+from attribution.quality import quality_frame
+from attribution.schema import TABLES
+
+
+class ArchiveBusyError(RuntimeError):
+    """Another run holds the archive."""
+
+
+def lock_path(archive: Path) -> Path:
+    """The lock file beside the archive."""
+    return archive.with_name(archive.name + ".lock")
+
+
+@contextlib.contextmanager
+def archive_lock(archive: Path) -> Iterator[None]:
+    """Hold the archive for one run; a second run is refused at once with the holder's pid.
+
+    An OS file lock (``flock``) is released by the kernel when the process ends, however it
+    ends, so a killed run never leaves a stale lock behind.
+    """
+    archive.parent.mkdir(parents=True, exist_ok=True)
+    path = lock_path(archive)
+    handle = path.open("a+")
+    try:
+        try:
+            fcntl.flock(handle.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError as exc:
+            handle.seek(0)
+            holder = handle.read().strip() or "unknown"
+            raise ArchiveBusyError(
+                f"{archive}: another run is using this archive (pid {holder}); "
+                "wait for it to finish, or point --archive at another file") from exc
+        handle.seek(0)
+        handle.truncate()
+        handle.write(str(os.getpid()))
+        handle.flush()
+        yield
+    finally:
+        handle.close()
+
+
+def connect(archive: Path, read_only: bool = False) -> duckdb.DuckDBPyConnection:
+    """Open the archive, creating its tables when writing."""
+    if read_only:
+        if not archive.exists():
+            raise FileNotFoundError(f"{archive}: archive not found (run a night first)")
+        return duckdb.connect(str(archive), read_only=True)
+    archive.parent.mkdir(parents=True, exist_ok=True)
+    con = duckdb.connect(str(archive))
+    for table, columns in TABLES.items():
+        body = ", ".join(f'"{name}" {sql_type}' for name, sql_type in columns)
+        con.execute(f"CREATE TABLE IF NOT EXISTS {table} ({body})")
+    return con
+
+
+def _insert(con: duckdb.DuckDBPyConnection, table: str, frame: pd.DataFrame) -> None:
+    if frame.empty:
+        return
+    names = [name for name, _ in TABLES[table]]
+    view = f"incoming_{table}"
+    con.register(view, frame[names])
+    try:
+        con.execute(f"INSERT INTO {table} BY NAME SELECT * FROM {view}")
+    finally:
+        con.unregister(view)
+
+
+def quality_series(con: duckdb.DuckDBPyConnection, up_to: dt.date) -> pd.DataFrame:
+    """HPL and RTPL per book and archived night up to a date (nights with a position held over)."""
+    return con.execute(
+        "SELECT as_of, book, pnl_actual AS hpl, pnl_explained AS rtpl FROM book_pnl "
+        "WHERE as_of <= ? AND carried + closed > 0 ORDER BY book, as_of", [up_to]).df()
+
+
+def write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, frames: dict[str, pd.DataFrame]) -> pd.DataFrame:
+    """Replace every table's rows of ``as_of`` with ``frames`` and the night's quality test, atomically.
+
+    Returns the ``book_quality`` rows written.
+    """
+    con.execute("BEGIN TRANSACTION")
+    try:
+        for table in TABLES:
+            con.execute(f"DELETE FROM {table} WHERE as_of = ?", [as_of])
+        for table in ("position_pnl", "book_pnl", "input_exceptions"):
+            _insert(con, table, frames[table])
+        quality = quality_frame(quality_series(con, as_of), as_of)
+        _insert(con, "book_quality", quality)
+        _insert(con, "runs", frames["runs"])
+        con.execute("COMMIT")
+    except BaseException:
+        con.execute("ROLLBACK")
+        raise
+    return quality
+
+
+def archived_dates(con: duckdb.DuckDBPyConnection) -> list[dt.date]:
+    """Run dates with a completed run record, oldest first."""
+    rows = con.execute("SELECT DISTINCT as_of FROM runs ORDER BY as_of").fetchall()
+    return [r[0] for r in rows]
+
+
+def book_history(con: duckdb.DuckDBPyConnection, book: str, start: dt.date | None = None,
+                 end: dt.date | None = None) -> pd.DataFrame:
+    """A book's nightly series: totals, every term, residual, revaluation shares and states."""
+    return con.execute(
+        "SELECT b.*, q.zone, q.spearman, q.ks FROM book_pnl b "
+        "LEFT JOIN book_quality q ON q.as_of = b.as_of AND q.book = b.book "
+        "WHERE b.book = ? AND b.as_of >= coalesce(?, DATE '0001-01-01') "
+        "AND b.as_of <= coalesce(?, DATE '9999-12-31') ORDER BY b.as_of",
+        [book, start, end]).df()

@@ -1,0 +1,56 @@
+"""Residual limits: a state per position and per book (``within``, ``watch``, ``breach``).
+
+A book breaches when |residual| exceeds its absolute limit, or when its overnight actual P&L
+is at least the relative floor and |residual| exceeds the relative share of |actual|. It is on
+``watch`` when either test reaches ``watch_fraction`` of its limit. A position breaches when
+|residual| exceeds the per-position limit (``watch`` likewise). Pure numpy.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+WITHIN, WATCH, BREACH = "within", "watch", "breach"
+STATE_ORDER = {WITHIN: 0, WATCH: 1, BREACH: 2}
+
+
+def _state(usage: NDArray[np.float64], watch_fraction: ArrayLike) -> NDArray[np.object_]:
+    """usage = |residual| / limit (the worst test); > 1 breaches, >= watch_fraction watches."""
+    return np.where(usage > 1.0, BREACH, np.where(usage >= watch_fraction, WATCH, WITHIN)).astype(object)
+
+
+def limit_usage(residual: ArrayLike, actual: ArrayLike, abs_limit: ArrayLike, rel_limit: ArrayLike,
+                rel_floor: ArrayLike) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Worst share of a limit used by |residual|, and the tightest limit that applies (currency)."""
+    res = np.abs(np.asarray(residual, dtype=float))
+    act = np.abs(np.asarray(actual, dtype=float))
+    abs_limit = np.asarray(abs_limit, dtype=float)
+    rel_applies = act >= np.asarray(rel_floor, dtype=float)
+    rel_amount = np.asarray(rel_limit, dtype=float) * act
+    applied = np.where(rel_applies, np.minimum(abs_limit, rel_amount), abs_limit)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        usage = np.where(applied > 0, res / applied, np.where(res > 0, np.inf, 0.0))
+    return usage, applied
+
+
+def book_states(residual: ArrayLike, actual: ArrayLike, abs_limit: ArrayLike, rel_limit: ArrayLike,
+                rel_floor: ArrayLike, watch_fraction: ArrayLike) -> tuple[NDArray[np.object_], NDArray[np.float64]]:
+    """State of each book and the limit applied to it tonight."""
+    usage, applied = limit_usage(residual, actual, abs_limit, rel_limit, rel_floor)
+    return _state(usage, watch_fraction), applied
+
+
+def position_states(residual: ArrayLike, position_limit: ArrayLike, watch_fraction: ArrayLike) -> NDArray[np.object_]:
+    """State of each position against its per-position limit."""
+    res = np.abs(np.asarray(residual, dtype=float))
+    limit = np.asarray(position_limit, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        usage = np.where(limit > 0, res / limit, np.where(res > 0, np.inf, 0.0))
+    return _state(usage, watch_fraction)
+
+
+def worst(states: ArrayLike) -> str:
+    """The worst state among ``states`` (``within`` when empty)."""
+    codes = [STATE_ORDER[s] for s in np.unique(np.asarray(states, dtype=object))]
+    return [WITHIN, WATCH, BREACH][max(codes, default=0)]

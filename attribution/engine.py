@@ -1,0 +1,255 @@
+"""One night, end to end: files -> validated tables -> market state -> explain -> controls -> archive -> report.
+
+:func:`prepare_night` does everything that needs no archive (it is also ``attribution check``);
+:func:`run_night` adds the lock, the archive transaction and the reports.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import time
+import uuid
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from attribution import __version__
+from attribution.archive import archive_lock, connect, write_night
+from attribution.config import JobConfig
+from attribution.contract import clean_night
+from attribution.controls import BREACH, WATCH, book_states, position_states
+from attribution.exceptions_log import REJECTED, WARNING, ExceptionLog
+from attribution.lifecycle import STATUSES, match_legs
+from attribution.loading import InputFileError, RawNight, prior_date, read_night
+from attribution.market import build_market, flag_stale_marks, instrument_terms
+from attribution.night import position_rows, stale_flags
+from attribution.schema import BOOK_PNL, EXPOSURE_COLUMNS, PNL_COLUMNS, REVAL_COLUMNS
+from attribution.timebasis import TimeBasis
+
+EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_FINDINGS = 0, 1, 2, 3
+
+Progress = Callable[[str], None]
+
+
+@dataclass(frozen=True, slots=True)
+class PreparedNight:
+    """The night's tables before archiving."""
+
+    as_of: dt.date
+    prior_as_of: dt.date
+    positions: pd.DataFrame
+    books: pd.DataFrame
+    exceptions: pd.DataFrame
+    hashes: dict[str, str]
+    positions_in: int
+    rejected_positions: int
+    unaccounted: tuple[str, ...]
+    stages: tuple[tuple[str, float], ...]
+
+
+@dataclass(frozen=True, slots=True)
+class NightOutcome:
+    """What one run did, for the closing summary and the exit code."""
+
+    as_of: dt.date
+    prior_as_of: dt.date
+    positions_in: int
+    archived: int
+    rejected: int
+    warnings: int
+    books: int
+    total_pnl: float
+    overnight_actual: float
+    explained: float
+    residual: float
+    book_breaches: int
+    position_breaches: int
+    exit_code: int
+    seconds: float
+    stages: tuple[tuple[str, float], ...] = ()
+    index_path: Path | None = None
+    unpriced_new: int = 0
+    zones: dict[str, int] = field(default_factory=dict)
+
+
+class _Stopwatch:
+    def __init__(self, progress: Progress | None) -> None:
+        self.stages: list[tuple[str, float]] = []
+        self.progress = progress
+        self._t = time.perf_counter()
+
+    def lap(self, name: str) -> None:
+        now = time.perf_counter()
+        self.stages.append((name, now - self._t))
+        self._t = now
+        if self.progress:
+            self.progress(name)
+
+
+def _resolve_prior(config: JobConfig, as_of: dt.date, prior: dt.date | None) -> dt.date:
+    if prior is None:
+        return prior_date(config.data_root, as_of)
+    if prior >= as_of:
+        raise InputFileError(f"prior date {prior} must be before the run date {as_of}")
+    return prior
+
+
+def _conservation(raw0: RawNight, raw1: RawNight, archived: pd.Series,
+                  exceptions: pd.DataFrame) -> tuple[int, int, tuple[str, ...]]:
+    """Positions in (distinct trades over both dates, plus keyless rows), rejected, and any unaccounted."""
+    ids = []
+    keyless = 0
+    for raw in (raw0, raw1):
+        tid = raw.tables["positions.parquet"]["trade_id"]
+        ids.append(tid[tid.notna()].astype(str))
+        keyless += int(tid.isna().sum())
+    universe = pd.Index(pd.concat(ids).unique())
+    is_pos = exceptions["file"].str.endswith("positions.parquet") & (exceptions["severity"] == REJECTED)
+    rejected_keys = pd.Index(exceptions.loc[is_pos, "key"].unique())
+    rejected = rejected_keys.intersection(universe)
+    accounted = pd.Index(archived.astype(str)).union(rejected)
+    missing = universe.difference(accounted)
+    return len(universe) + keyless, len(rejected) + keyless, tuple(missing[:20].tolist())
+
+
+def _book_of_rejected(raw0: RawNight, raw1: RawNight, keys: pd.Index) -> pd.Series:
+    frames = [r.tables["positions.parquet"][["trade_id", "book"]] for r in (raw1, raw0)]
+    both = pd.concat(frames).dropna(subset=["trade_id"]).drop_duplicates("trade_id")
+    mapped = both.set_index("trade_id")["book"].reindex(keys)
+    return mapped.fillna("(no book)")
+
+
+def _book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, raw0: RawNight, raw1: RawNight,
+                config: JobConfig, as_of: dt.date, prior_as_of: dt.date) -> pd.DataFrame:
+    """One row per book: sums, counts by status, rejected and warning counts, limit state."""
+    amounts = list(PNL_COLUMNS) + list(REVAL_COLUMNS) + list(EXPOSURE_COLUMNS)
+    grouped = positions.groupby("book", sort=True)
+    sums = grouped[amounts].sum(min_count=0)
+    for column in REVAL_COLUMNS:  # NULL when the method is off
+        sums[column] = grouped[column].sum(min_count=1)
+    counts = pd.crosstab(positions["book"], positions["status"]).reindex(columns=list(STATUSES), fill_value=0)
+    is_pos = exceptions["file"].str.endswith("positions.parquet") & (exceptions["severity"] == REJECTED)
+    rejected_keys = pd.Index(exceptions.loc[is_pos, "key"].unique())
+    rejected_books = _book_of_rejected(raw0, raw1, rejected_keys).value_counts()
+    warn = exceptions[exceptions["severity"] == WARNING]
+    touched = pd.concat([positions[["book", "instrument_id"]].rename(columns={"instrument_id": "key"}),
+                         positions[["book", "trade_id"]].rename(columns={"trade_id": "key"})]).drop_duplicates()
+    warnings = touched.merge(warn[["key"]], on="key").groupby("book").size()
+    books = sums.index.union(rejected_books.index)
+    frame = sums.reindex(books, fill_value=0.0)
+    for column in REVAL_COLUMNS:
+        frame[column] = sums[column].reindex(books)
+    frame = frame.reset_index(names="book")
+    counts = counts.reindex(books, fill_value=0)
+    for status in STATUSES:
+        frame[status] = counts[status].to_numpy()
+    frame["positions"] = counts.sum(axis=1).to_numpy()
+    frame["rejected"] = rejected_books.reindex(books, fill_value=0).to_numpy()
+    frame["warnings"] = warnings.reindex(books, fill_value=0).to_numpy()
+    limits = [config.limits_for(b) for b in frame["book"]]
+    states, applied = book_states(frame["pnl_residual"], frame["pnl_actual"],
+                                  [x.residual_abs for x in limits], [x.residual_rel for x in limits],
+                                  [x.relative_floor for x in limits], [x.watch_fraction for x in limits])
+    breaches = (positions["limit_state"] == BREACH).groupby(positions["book"]).sum().reindex(books, fill_value=0)
+    frame["position_breaches"] = breaches.to_numpy()
+    frame["residual_limit"] = applied
+    frame["limit_state"] = np.where((states == "within") & (frame["position_breaches"] > 0), WATCH, states)
+    frame["as_of"], frame["prior_as_of"] = pd.Timestamp(as_of), pd.Timestamp(prior_as_of)
+    return frame[[name for name, _ in BOOK_PNL]]
+
+
+def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
+                  progress: Progress | None = None) -> PreparedNight:
+    """Read, validate, price and explain one night; nothing is written."""
+    watch = _Stopwatch(progress)
+    prior_as_of = _resolve_prior(config, as_of, prior)
+    raw0, raw1 = read_night(config.data_root, prior_as_of), read_night(config.data_root, as_of)
+    watch.lap("read")
+    log = ExceptionLog(as_of)
+    basis = TimeBasis(config.time_basis, config.holidays)
+    clean0 = clean_night(raw0, log, config.checks, config.reporting_currency)
+    clean1 = clean_night(raw1, log, config.checks, config.reporting_currency)
+    watch.lap("validate")
+    market0 = build_market(clean0, instrument_terms(clean0, clean1), basis, config.checks, log)
+    market1 = build_market(clean1, instrument_terms(clean1, clean0), basis, config.checks, log)
+    stale = flag_stale_marks(market0, market1, config.checks.stale_spot_move,
+                             raw1.path("option_marks.parquet"), log)
+    legs = match_legs(clean0, clean1, market0, market1, log)
+    watch.lap("market")
+    positions = position_rows(legs, clean0, clean1, market0, market1, basis, config.revaluation)
+    positions = stale_flags(positions, market1.ids[stale].to_numpy())
+    watch.lap("explain")
+    limits = [config.limits_for(b) for b in pd.unique(positions["book"])]
+    by_book = dict(zip(pd.unique(positions["book"]), limits, strict=True))
+    position_limit = positions["book"].map({b: x.position_abs for b, x in by_book.items()}).to_numpy(float)
+    fraction = positions["book"].map({b: x.watch_fraction for b, x in by_book.items()}).to_numpy(float)
+    positions["limit_state"] = position_states(positions["pnl_residual"], position_limit, fraction)
+    exceptions = log.frame()
+    books = _book_frame(positions, exceptions, raw0, raw1, config, as_of, prior_as_of)
+    positions_in, rejected, missing = _conservation(raw0, raw1, positions["trade_id"], exceptions)
+    watch.lap("controls")
+    hashes = {raw.path(f): h for raw in (raw0, raw1) for f, h in raw.hashes.items()}
+    return PreparedNight(as_of, prior_as_of, positions, books, exceptions, hashes, positions_in, rejected,
+                         missing, tuple(watch.stages))
+
+
+def _runs_frame(night: PreparedNight, config: JobConfig, run_id: str, started: dt.datetime,
+                exit_code: int, seconds: float) -> pd.DataFrame:
+    return pd.DataFrame([{
+        "run_id": run_id, "as_of": pd.Timestamp(night.as_of), "prior_as_of": pd.Timestamp(night.prior_as_of),
+        "started_at": started, "finished_at": dt.datetime.now(), "status": "complete",
+        "tool_version": __version__, "input_hashes": json.dumps(night.hashes, sort_keys=True),
+        "job_settings": json.dumps(config.as_record(), sort_keys=True),
+        "positions_in": night.positions_in, "positions_archived": len(night.positions),
+        "positions_rejected": night.rejected_positions,
+        "warnings": int((night.exceptions["severity"] == WARNING).sum()),
+        "book_breaches": int((night.books["limit_state"] == BREACH).sum()),
+        "position_breaches": int((night.positions["limit_state"] == BREACH).sum()),
+        "exit_code": exit_code, "seconds": seconds,
+    }])
+
+
+def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
+              progress: Progress | None = None) -> NightOutcome:
+    """Run one night into the archive (and reports); the archive is locked for the whole run."""
+    started, t0 = dt.datetime.now(), time.perf_counter()
+    with archive_lock(config.archive_path):
+        night = prepare_night(config, as_of, prior, progress)
+        if night.unaccounted:
+            raise RuntimeError(f"{as_of}: positions neither archived nor rejected: {', '.join(night.unaccounted)}")
+        watch = _Stopwatch(progress)
+        book_breaches = int((night.books["limit_state"] == BREACH).sum())
+        position_breaches = int((night.positions["limit_state"] == BREACH).sum())
+        findings = night.rejected_positions > 0 or book_breaches > 0 or position_breaches > 0
+        exit_code = EXIT_FINDINGS if findings else EXIT_OK
+        con = connect(config.archive_path)
+        try:
+            frames = {"position_pnl": night.positions, "book_pnl": night.books,
+                      "input_exceptions": night.exceptions,
+                      "runs": _runs_frame(night, config, str(uuid.uuid4()), started, exit_code,
+                                          time.perf_counter() - t0)}
+            quality = write_night(con, as_of, frames)
+            watch.lap("archive")
+            index_path = None
+            if config.write_reports:
+                from attribution.report import render_night
+                index_path = render_night(con, as_of, config.reports_dir, config)
+                watch.lap("report")
+        finally:
+            con.close()
+    pos = night.positions
+    return NightOutcome(
+        as_of=as_of, prior_as_of=night.prior_as_of, positions_in=night.positions_in, archived=len(pos),
+        rejected=night.rejected_positions, warnings=int((night.exceptions["severity"] == WARNING).sum()),
+        books=len(night.books), total_pnl=float(pos["pnl_total"].sum()),
+        overnight_actual=float(pos["pnl_actual"].sum()), explained=float(pos["pnl_explained"].sum()),
+        residual=float(pos["pnl_residual"].sum()), book_breaches=book_breaches,
+        position_breaches=position_breaches, exit_code=exit_code, seconds=time.perf_counter() - t0,
+        stages=night.stages + tuple(watch.stages), index_path=index_path,
+        unpriced_new=int((pos["status"] == "new_unpriced").sum()),
+        zones={str(k): int(v) for k, v in quality["zone"].value_counts().items()},
+    )

@@ -1,0 +1,198 @@
+"""Matching the prior date's and the run date's positions by trade_id, and each leg's checks.
+
+Statuses (see README.md, "Statuses"):
+
+* ``carried``: held on both dates; explained on the prior quantity, a quantity change is an
+  amendment line;
+* ``closed``: held on the prior date only; explained to the run-date mark;
+* ``new`` / ``new_unpriced``: booked on the run date, with / without a trade price;
+* ``expired``: held on the prior date, expiry on or before the run date; settles at intrinsic.
+
+A trade whose leg on either date cannot be used is rejected whole: it gets a ``rejected`` row
+keyed by its trade_id for each failing leg, and no row in ``position_pnl``.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from numpy.typing import NDArray
+
+from attribution.contract import CleanNight
+from attribution.exceptions_log import ExceptionLog
+from attribution.market import InstrumentMarket
+
+CARRIED, CLOSED, NEW, NEW_UNPRICED, EXPIRED = "carried", "closed", "new", "new_unpriced", "expired"
+STATUSES = (CARRIED, CLOSED, NEW, NEW_UNPRICED, EXPIRED)
+
+
+@dataclass(frozen=True, slots=True)
+class Legs:
+    """One element per accepted trade: where it sits on each date and its status."""
+
+    trade_id: NDArray[np.object_]
+    book: NDArray[np.object_]
+    instrument_id: NDArray[np.object_]
+    status: NDArray[np.object_]
+    row0: NDArray[np.intp]   # row in the prior positions, -1 for new trades
+    row1: NDArray[np.intp]   # row in the run-date positions, -1 when gone
+    inst0: NDArray[np.intp]  # instrument in the prior market, -1 for new trades
+    inst1: NDArray[np.intp]  # instrument in the run-date market
+    fx_rate: NDArray[np.float64]
+
+    def __len__(self) -> int:
+        return len(self.trade_id)
+
+
+def _reject(log: ExceptionLog, file: str, trade_ids: NDArray[np.object_], bad: NDArray[np.bool_],
+            rule: str, detail: str | NDArray[np.object_]) -> None:
+    if bad.any():
+        log.add(file, trade_ids[bad], rule, detail[bad] if isinstance(detail, np.ndarray) else detail)
+
+
+def _reject_by_reason(log: ExceptionLog, file: str, trade_ids: NDArray[np.object_], bad: NDArray[np.bool_],
+                      rule: str, reason: NDArray[np.object_]) -> None:
+    """Like ``_reject``, but a position in an option already expired gets its own rule."""
+    lapsed = bad & pd.Series(reason, dtype=object).astype(str).str.startswith("the option expired").to_numpy()
+    _reject(log, file, trade_ids, lapsed, "active position on an expired option", reason)
+    _reject(log, file, trade_ids, bad & ~lapsed, rule, reason)
+
+
+def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, market1: InstrumentMarket,
+               log: ExceptionLog) -> Legs:
+    """Match trades across the two dates, run each leg's checks, and return the accepted ones."""
+    p0, p1 = prior.positions, run.positions
+    file0, file1 = prior.raw.path("positions.parquet"), run.raw.path("positions.parquet")
+    run_day = np.datetime64(run.raw.as_of, "D")
+    ids0, ids1 = p0["trade_id"].to_numpy(dtype=object), p1["trade_id"].to_numpy(dtype=object)
+    j1 = pd.Index(ids1).get_indexer(ids0)          # prior row -> run row
+    j0 = pd.Index(ids0).get_indexer(ids1)          # run row -> prior row
+    ok0 = np.ones(len(p0), dtype=bool)
+    ok1 = np.ones(len(p1), dtype=bool)
+
+    # The other leg was rejected by a row rule on its own date.
+    gone1 = np.isin(ids0, run.rejected_trades["trade_id"].to_numpy(dtype=object))
+    gone0 = np.isin(ids1, prior.rejected_trades["trade_id"].to_numpy(dtype=object))
+    _reject(log, file0, ids0, gone1, "trade rejected on the other date",
+            f"its row in {file1} breaks a rule (see that row)")
+    _reject(log, file1, ids1, gone0, "trade rejected on the other date",
+            f"its row in {file0} breaks a rule (see that row)")
+    ok0 &= ~gone1
+    ok1 &= ~gone0
+
+    inst_p0 = p0["instrument_id"].to_numpy(dtype=object)
+    inst_p1 = p1["instrument_id"].to_numpy(dtype=object)
+    both = j1 >= 0
+    changed = np.zeros(len(p0), dtype=bool)
+    changed[both] = inst_p0[both] != inst_p1[j1[both]]
+    _reject(log, file1, ids0, changed, "trade changed instrument between dates",
+            "a trade_id must keep its instrument; book a close and a new trade instead")
+    ok0 &= ~changed
+    ok1[j1[changed]] = False
+
+    i0 = market0.locate(inst_p0)
+    i1_of_p1 = market1.locate(inst_p1)
+    expiry0 = np.where(i0 >= 0, market0.expiry[np.maximum(i0, 0)], np.datetime64("NaT"))
+    expired = (i0 >= 0) & (expiry0 <= run_day)
+
+    # Prior leg: the instrument must be priced on the prior date (this also catches a position
+    # held on the prior date in an option that had already expired).
+    bad0 = ok0 & ~((i0 >= 0) & market0.usable[np.maximum(i0, 0)])
+    reason0 = np.where(i0 >= 0, market0.reason[np.maximum(i0, 0)],
+                       "instrument_id not in instruments.parquet")
+    _reject_by_reason(log, file0, ids0, bad0, "position cannot be priced on the prior date", reason0.astype(object))
+    ok0 &= ~bad0
+
+    # Run leg of trades still held and not expired: priced on the run date.
+    active1 = np.ones(len(p1), dtype=bool)
+    expires_tonight = expired & (expiry0 == run_day)
+    active1[j0 >= 0] = ~expires_tonight[j0[j0 >= 0]]
+    bad1 = ok1 & active1 & ~((i1_of_p1 >= 0) & market1.usable[np.maximum(i1_of_p1, 0)])
+    reason1 = np.where(i1_of_p1 >= 0, market1.reason[np.maximum(i1_of_p1, 0)],
+                       "instrument_id not in instruments.parquet").astype(object)
+    _reject_by_reason(log, file1, ids1, bad1, "position cannot be priced on the run date", reason1)
+    ok1 &= ~bad1
+
+    # Closed and expired trades need the run date's mark (closed) or spot (expired).
+    i1_of_p0 = market1.locate(inst_p0)
+    closed = ok0 & ~both & ~expired
+    bad_closed = closed & ~((i1_of_p0 >= 0) & market1.usable[np.maximum(i1_of_p0, 0)])
+    _reject(log, file0, ids0, bad_closed, "closed position cannot be priced on the run date",
+            np.where(i1_of_p0 >= 0, market1.reason[np.maximum(i1_of_p0, 0)], "no run-date terms").astype(object))
+    ok0 &= ~bad_closed
+    settle_on_run = expired & (expiry0 > np.datetime64(prior.raw.as_of, "D"))
+    bad_exp = ok0 & settle_on_run & ~((i1_of_p0 >= 0) & market1.spot_known[np.maximum(i1_of_p0, 0)])
+    _reject(log, file0, ids0, bad_exp, "expired position cannot be settled",
+            f"its underlying has no spot on {run.raw.as_of}")
+    ok0 &= ~bad_exp
+
+    # A failure on either leg rejects the trade on both dates.
+    held = both & ok0 & ok1[np.where(both, j1, 0)]
+    ok0 &= held | ~both
+    ok1[j1[both & ~held]] = False
+    ok1[(j0 >= 0)] &= ok0[j0[j0 >= 0]]
+
+    legs = _assemble(p0, p1, ids0, ids1, j1, j0, ok0, ok1, expired, i0, i1_of_p0, i1_of_p1, run)
+    return _apply_fx(legs, prior, run, market1, log)
+
+
+def _assemble(p0: pd.DataFrame, p1: pd.DataFrame, ids0: NDArray[np.object_], ids1: NDArray[np.object_],
+              j1: NDArray[np.intp], j0: NDArray[np.intp], ok0: NDArray[np.bool_], ok1: NDArray[np.bool_],
+              expired: NDArray[np.bool_], i0: NDArray[np.intp], i1_of_p0: NDArray[np.intp],
+              i1_of_p1: NDArray[np.intp], run: CleanNight) -> Legs:
+    from_prior = np.flatnonzero(ok0)
+    new_rows = np.flatnonzero(ok1 & (j0 < 0))
+    status_prior = np.where(expired[from_prior], EXPIRED, np.where(j1[from_prior] >= 0, CARRIED, CLOSED))
+    priced = ~np.isnan(p1["trade_price"].to_numpy(dtype=float)[new_rows])
+    status_new = np.where(priced, NEW, NEW_UNPRICED)
+    row1_prior = np.where(status_prior == CARRIED, j1[from_prior], -1)
+    row1_prior = np.where((status_prior == EXPIRED) & (j1[from_prior] >= 0), j1[from_prior], row1_prior)
+    return Legs(
+        trade_id=np.concatenate([ids0[from_prior], ids1[new_rows]]),
+        book=np.concatenate([p0["book"].to_numpy(dtype=object)[from_prior],
+                             p1["book"].to_numpy(dtype=object)[new_rows]]),
+        instrument_id=np.concatenate([p0["instrument_id"].to_numpy(dtype=object)[from_prior],
+                                      p1["instrument_id"].to_numpy(dtype=object)[new_rows]]),
+        status=np.concatenate([status_prior, status_new]).astype(object),
+        row0=np.concatenate([from_prior, np.full(len(new_rows), -1)]).astype(np.intp),
+        row1=np.concatenate([row1_prior, new_rows]).astype(np.intp),
+        inst0=np.concatenate([i0[from_prior], np.full(len(new_rows), -1)]).astype(np.intp),
+        inst1=np.concatenate([i1_of_p0[from_prior], i1_of_p1[new_rows]]).astype(np.intp),
+        fx_rate=np.zeros(len(from_prior) + len(new_rows)),
+    )
+
+
+def _apply_fx(legs: Legs, prior: CleanNight, run: CleanNight, market1: InstrumentMarket,
+              log: ExceptionLog) -> Legs:
+    """Attach the run date's FX rate of each trade's currency; trades without one are rejected."""
+    currency = market1.currency[legs.inst1]
+    fx_rate = run.fx.reindex(currency).to_numpy(dtype=float)
+    missing = np.isnan(fx_rate)
+    if missing.any():
+        fx_file = run.raw.path("fx_rates.parquet")
+        codes = sorted(set(currency[missing].tolist()))
+        log.add(fx_file, codes, "no FX rate for currency",
+                "positions in this currency cannot be converted into the reporting currency")
+        on_run = missing & (legs.row1 >= 0)
+        _reject(log, run.raw.path("positions.parquet"), legs.trade_id, on_run, "no FX rate",
+                "no rate for " + currency.astype(str) + f" in {fx_file}")
+        _reject(log, prior.raw.path("positions.parquet"), legs.trade_id, missing & ~on_run, "no FX rate",
+                "no rate for " + currency.astype(str) + f" in {fx_file}")
+    legs = Legs(*(getattr(legs, f) for f in Legs.__dataclass_fields__ if f != "fx_rate"), fx_rate=fx_rate)
+    return select(legs, ~missing)
+
+
+def select(legs: Legs, keep: NDArray[np.bool_]) -> Legs:
+    """The legs where ``keep`` is True."""
+    return Legs(*(getattr(legs, f)[keep] for f in Legs.__dataclass_fields__))
+
+
+def trade_date_flags(run: CleanNight, legs: Legs, prior_day: dt.date) -> NDArray[np.bool_]:
+    """New trades whose trade_date is on or before the prior date: booked late."""
+    rows = np.maximum(legs.row1, 0)
+    trade_date = run.positions["trade_date"].to_numpy(dtype="datetime64[D]")[rows]
+    is_new = np.isin(legs.status, [NEW, NEW_UNPRICED])
+    return is_new & (trade_date <= np.datetime64(prior_day, "D"))

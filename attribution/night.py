@@ -1,0 +1,158 @@
+"""One night's position rows: market states on both dates, explain, lifecycle lines, exposures.
+
+Takes the matched legs (:mod:`attribution.lifecycle`) and the two instrument markets
+(:mod:`attribution.market`) and returns the ``position_pnl`` rows of the night as one frame,
+all amounts in the reporting currency. All arithmetic is on whole arrays.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from numpy.typing import NDArray
+
+from attribution.contract import CleanNight
+from attribution.explain import MarketState, explain_overnight
+from attribution.lifecycle import CARRIED, CLOSED, EXPIRED, NEW, NEW_UNPRICED, Legs, trade_date_flags
+from attribution.market import InstrumentMarket
+from attribution.pricing import greeks_unchecked
+from attribution.revaluation import shapley_shares
+from attribution.schema import EXPOSURE_COLUMNS, PNL_COLUMNS, POSITION_PNL, REVAL_COLUMNS, TAYLOR_TERMS
+from attribution.timebasis import DAYS_PER_YEAR_BUSINESS, DAYS_PER_YEAR_CALENDAR, TimeBasis
+
+FloatArray = NDArray[np.float64]
+
+
+def _state(market: InstrumentMarket, idx: NDArray[np.intp]) -> MarketState:
+    return MarketState(market.spot[idx], market.vol[idx], market.tau_years[idx], market.rate[idx],
+                       market.div_yield[idx])
+
+
+def _flags(parts: list[tuple[NDArray[np.bool_], str]], n: int) -> NDArray[np.object_]:
+    """Comma-separated flag words per row (a loop over the few flag kinds, not over rows)."""
+    out = pd.Series([""] * n, dtype=object)
+    for mask, word in parts:
+        if mask.any():
+            m = pd.Series(mask)
+            out = out.where(~m, out.where(out == "", out + ",") + word)
+    return out.to_numpy(dtype=object)
+
+
+def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: InstrumentMarket,
+                  market1: InstrumentMarket, basis: TimeBasis, revaluation: bool) -> pd.DataFrame:
+    """The night's ``position_pnl`` rows (without ``limit_state``), one per accepted trade."""
+    n = len(legs)
+    as_of, prior_as_of = run.raw.as_of, prior.raw.as_of
+    status = legs.status
+    has_prior = legs.row0 >= 0
+    overnight = np.isin(status, [CARRIED, CLOSED])
+    is_new = np.isin(status, [NEW, NEW_UNPRICED])
+    expired = status == EXPIRED
+    i0 = np.maximum(legs.inst0, 0)
+    i1 = legs.inst1
+    qty0 = np.where(has_prior, prior.positions["quantity"].to_numpy(float)[np.maximum(legs.row0, 0)], 0.0)
+    held1 = (legs.row1 >= 0) & ~expired
+    qty1 = np.where(held1, run.positions["quantity"].to_numpy(float)[np.maximum(legs.row1, 0)], 0.0)
+    trade_price1 = np.where(legs.row1 >= 0, run.positions["trade_price"].to_numpy(float)[np.maximum(legs.row1, 0)],
+                            np.nan)
+    mult = market1.multiplier[i1]
+    strike, cp = market1.strike[i1], market1.cp[i1]
+    units0 = qty0 * mult * legs.fx_rate
+    units1 = qty1 * mult * legs.fx_rate
+    dt_years = float(basis.year_fraction(prior_as_of, as_of)[0])
+
+    cols: dict[str, object] = {c: np.zeros(n) for c in PNL_COLUMNS}
+    cols.update({c: np.full(n, np.nan) for c in REVAL_COLUMNS})
+    cols.update({c: np.zeros(n) for c in EXPOSURE_COLUMNS})
+
+    price0 = np.where(has_prior, market0.price[i0], np.nan)
+    price1 = np.where(expired, np.nan, market1.price[i1])
+
+    k = np.flatnonzero(overnight)
+    if k.size:
+        s0, s1 = _state(market0, i0[k]), _state(market1, i1[k])
+        ex = explain_overnight(strike[k], cp[k], units0[k], s0, s1, price0[k], price1[k], np.full(k.size, dt_years))
+        for name in ("actual", *TAYLOR_TERMS, "explained", "residual", "model", "higher_order", "mark_gap"):
+            cols[f"pnl_{name}"][k] = getattr(ex, name)
+        if revaluation:
+            shares = shapley_shares(strike[k], cp[k], s0.spot, s0.vol, s0.tau_years, s0.rate, s0.div_yield,
+                                    s1.spot, s1.vol, s1.tau_years, s1.rate, s1.div_yield)
+            for factor in ("spot", "vol", "time", "rates", "dividend"):
+                cols[f"reval_{factor}"][k] = units0[k] * getattr(shares, factor)
+
+    # Exposures at the prior state, for everything held on the prior date.
+    p = np.flatnonzero(has_prior)
+    if p.size:
+        s0 = _state(market0, i0[p])
+        g0 = greeks_unchecked(s0.spot, strike[p], s0.tau_years, s0.vol, s0.rate, s0.div_yield, cp[p])
+        cols["delta_units"][p] = units0[p] / legs.fx_rate[p] * g0.delta
+        cols["delta_cash"][p] = units0[p] * g0.delta * s0.spot
+        cols["gamma_cash_1pct"][p] = units0[p] * g0.gamma * s0.spot * s0.spot / 100.0
+        cols["vega_per_vol_point"][p] = units0[p] * g0.vega / 100.0
+        cols["theta_per_calendar_day"][p] = units0[p] * g0.theta_per_year / DAYS_PER_YEAR_CALENDAR
+        cols["theta_per_business_day"][p] = units0[p] * g0.theta_per_year / DAYS_PER_YEAR_BUSINESS
+
+    # Decay expected to the next business day, from the run-date state of what is still held.
+    h = np.flatnonzero(held1)
+    if h.size:
+        next_day = basis.next_business_day(as_of)
+        step_years = float(basis.year_fraction(as_of, next_day)[0])
+        s1 = _state(market1, i1[h])
+        g1 = greeks_unchecked(s1.spot, strike[h], s1.tau_years, s1.vol, s1.rate, s1.div_yield, cp[h])
+        cols["theta_next_business_day"][h] = units1[h] * g1.theta_per_year * step_years
+
+    # Lifecycle lines.
+    cols["pnl_new_trade"] = np.where(is_new, units1 * (market1.price[i1] - trade_price1), 0.0)
+    settle_spot = np.where(market1.expiry[i1] <= np.datetime64(prior_as_of, "D"), market0.spot[i0], market1.spot[i1])
+    intrinsic = np.maximum(cp * (settle_spot - strike), 0.0)
+    cols["pnl_expiry"] = np.where(expired, units0 * (intrinsic - np.nan_to_num(price0)), 0.0)
+    amended = (status == CARRIED) & (qty1 != qty0)
+    fill_price = np.where(np.isnan(trade_price1), market1.price[i1], trade_price1)
+    cols["pnl_amendment"] = np.where(amended, (qty1 - qty0) * mult * legs.fx_rate * (market1.price[i1] - fill_price),
+                                     0.0)
+    cols["pnl_total"] = (cols["pnl_actual"] + np.nan_to_num(cols["pnl_new_trade"]) + cols["pnl_expiry"]
+                         + cols["pnl_amendment"])
+
+    late = trade_date_flags(run, legs, prior_as_of)
+    moved_book = (status == CARRIED) & (legs.row1 >= 0) & (
+        run.positions["book"].to_numpy(dtype=object)[np.maximum(legs.row1, 0)] != legs.book)
+    flags = _flags([
+        (amended, "amended"),
+        (amended & np.isnan(trade_price1), "amended_at_mark"),
+        (status == NEW_UNPRICED, "unpriced"),
+        (late, "booked_late"),
+        (moved_book, "moved_book"),
+        ((has_prior & market0.vol_solved[i0]) | (~expired & market1.vol_solved[i1]), "vol_solved"),
+        ((has_prior & market0.vol_mismatch[i0]) | (~expired & market1.vol_mismatch[i1]), "vol_price_mismatch"),
+    ], n)
+
+    frame = pd.DataFrame({
+        "as_of": pd.Timestamp(as_of), "prior_as_of": pd.Timestamp(prior_as_of),
+        "book": legs.book, "trade_id": legs.trade_id, "instrument_id": legs.instrument_id,
+        "underlying": market1.underlying[i1], "currency": market1.currency[i1], "status": status, "flags": flags,
+        "option_type": market1.option_type[i1], "strike": strike,
+        "expiry": market1.expiry[i1].astype("datetime64[s]"),
+        "quantity": np.where(is_new, qty1, qty0), "quantity_run_date": qty1, "multiplier": mult,
+        "fx_rate": legs.fx_rate,
+        "spot_prior": np.where(has_prior, market0.spot[i0], np.nan), "spot_run": market1.spot[i1],
+        "vol_prior": np.where(has_prior, market0.vol[i0], np.nan),
+        "vol_run": np.where(expired, np.nan, market1.vol[i1]),
+        "tau_prior_years": np.where(has_prior, market0.tau_years[i0], np.nan),
+        "tau_run_years": market1.tau_years[i1],
+        "rate_prior": np.where(has_prior, market0.rate[i0], np.nan), "rate_run": market1.rate[i1],
+        "div_yield_prior": np.where(has_prior, market0.div_yield[i0], np.nan), "div_yield_run": market1.div_yield[i1],
+        "price_prior": price0, "price_run": price1,
+        **cols,
+        "limit_state": "within",
+    })
+    return frame[[name for name, _ in POSITION_PNL]]
+
+
+def stale_flags(frame: pd.DataFrame, stale_instruments: NDArray[np.object_]) -> pd.DataFrame:
+    """Add the ``stale_mark`` flag to rows whose run-date mark was found stale."""
+    hit = frame["instrument_id"].isin(stale_instruments).to_numpy() & (frame["status"] != EXPIRED).to_numpy()
+    if hit.any():
+        flags = frame["flags"].to_numpy(dtype=object).copy()
+        flags[hit] = np.where(flags[hit] == "", "stale_mark", flags[hit] + ",stale_mark")
+        frame = frame.assign(flags=flags)
+    return frame
