@@ -1,0 +1,309 @@
+"""Command line: ``attribution run | backfill | check | demo | history | quality | bench``.
+
+Exit codes: 0 success; 1 failure (unusable input file, archive busy, unexpected error; the
+archive is left as it was); 2 usage error; 3 finished, with rejected rows or limit breaches.
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import datetime as dt
+import json
+import logging
+import math
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+
+from attribution import __version__
+from attribution.archive import ArchiveBusyError
+from attribution.config import ConfigError, JobConfig, load_job, validate
+from attribution.engine import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE, NightOutcome
+from attribution.loading import InputFileError
+
+log = logging.getLogger("attribution")
+
+
+def _date(text: str) -> dt.date:
+    try:
+        return dt.date.fromisoformat(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a date of the form YYYY-MM-DD") from exc
+
+
+def _job_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--job", type=Path, help="TOML job file (see jobs/nightly.toml); flags override it")
+    p.add_argument("--data", type=Path, help="data root holding the as_of=YYYY-MM-DD folders")
+    p.add_argument("--archive", type=Path, help="DuckDB archive file")
+    p.add_argument("--reports", type=Path, help="folder the HTML reports are written to")
+    p.add_argument("--basis", choices=("ACT/365F", "BUS/252"), help="time basis (default ACT/365F)")
+    p.add_argument("--engine", choices=("local", "dask"), help="where the night is computed")
+    p.add_argument("--scheduler", help="Dask scheduler address (with --engine dask); none starts a local cluster")
+    p.add_argument("--no-reports", action="store_true", help="archive only, write no HTML")
+    p.add_argument("--no-revaluation", action="store_true", help="skip the order-independent revaluation split")
+
+
+def _verbosity(p: argparse.ArgumentParser) -> None:
+    p.add_argument("-v", "--verbose", action="count", default=0, help="more log lines (-vv for debug)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The whole command line (also used by the documentation test)."""
+    parser = argparse.ArgumentParser(
+        prog="attribution",
+        description="End-of-day P&L attribution for options books: explain each book's night, "
+                    "archive it, report it.",
+        epilog="Exit codes: 0 success, 1 failure (archive unchanged), 2 usage error, "
+               "3 finished with rejected rows or limit breaches.")
+    parser.add_argument("--version", action="version", version=f"attribution {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    p = sub.add_parser("run", help="explain one night into the archive and write its reports")
+    p.add_argument("--as-of", type=_date, required=True, help="run date YYYY-MM-DD")
+    p.add_argument("--prior", type=_date, help="prior date (default: the latest as_of folder before the run date)")
+    _job_options(p)
+    _verbosity(p)
+
+    p = sub.add_parser("backfill", help="run every night of a date range, in order")
+    p.add_argument("--from", dest="start", type=_date, required=True, help="first run date")
+    p.add_argument("--to", dest="end", type=_date, required=True, help="last run date")
+    p.add_argument("--reports-last", type=int, default=1, metavar="N",
+                   help="write reports for the last N nights only (default 1; 0 for none, -1 for all)")
+    _job_options(p)
+    _verbosity(p)
+
+    p = sub.add_parser("check", help="validate one night's inputs and print the exception ledger; writes nothing")
+    p.add_argument("--as-of", type=_date, required=True, help="run date YYYY-MM-DD")
+    p.add_argument("--prior", type=_date, help="prior date (default: the latest before the run date)")
+    p.add_argument("--json", action="store_true", help="print the ledger as JSON")
+    _job_options(p)
+    _verbosity(p)
+
+    p = sub.add_parser("demo", help="build the demo desk's year of data, backfill it and write the reports")
+    p.add_argument("--into", type=Path, default=Path("demo"), help="folder for data, archive and reports (./demo)")
+    p.add_argument("--days", type=int, default=261, help="business days of demo history (default 261)")
+    p.add_argument("--seed", type=int, default=7, help="random seed of the demo market (default 7)")
+    _verbosity(p)
+
+    p = sub.add_parser("history", help="a book's nightly series from the archive")
+    p.add_argument("--book", required=True, help="book name, exactly as archived")
+    p.add_argument("--from", dest="start", type=_date, help="first date")
+    p.add_argument("--to", dest="end", type=_date, help="last date")
+    p.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    p.add_argument("--job", type=Path, help="job file naming the archive")
+    p.add_argument("--archive", type=Path, help="DuckDB archive file")
+    _verbosity(p)
+
+    p = sub.add_parser("quality", help="the attribution-quality test per book over the archived history")
+    p.add_argument("--as-of", type=_date, required=True, help="last night of the window")
+    p.add_argument("--json", action="store_true", help="print a JSON array, one object per book")
+    p.add_argument("--job", type=Path, help="job file naming the archive")
+    p.add_argument("--archive", type=Path, help="DuckDB archive file")
+    _verbosity(p)
+
+    p = sub.add_parser("bench", help="time a synthetic night of the given size through the whole job")
+    p.add_argument("--positions", type=int, default=1_000_000, help="positions (default 1,000,000)")
+    p.add_argument("--books", type=int, default=1_000, help="books (default 1,000)")
+    p.add_argument("--instruments", type=int, default=20_000, help="instruments (default 20,000)")
+    p.add_argument("--underlyings", type=int, default=500, help="underlyings (default 500)")
+    p.add_argument("--engine", choices=("local", "dask"), default="local")
+    p.add_argument("--keep", type=Path, help="keep the synthetic night, archive and reports in this folder")
+    _verbosity(p)
+    return parser
+
+
+def config_from(args: argparse.Namespace) -> JobConfig:
+    """The job file (or defaults) with the command line's overrides."""
+    config = load_job(args.job) if getattr(args, "job", None) else JobConfig()
+    changes: dict[str, object] = {}
+    for flag, name in (("data", "data_root"), ("archive", "archive_path"), ("reports", "reports_dir"),
+                       ("basis", "time_basis"), ("engine", "engine"), ("scheduler", "scheduler")):
+        value = getattr(args, flag, None)
+        if value is not None:
+            changes[name] = value
+    if getattr(args, "no_reports", False):
+        changes["write_reports"] = False
+    if getattr(args, "no_revaluation", False):
+        changes["revaluation"] = False
+    return validate(dataclasses.replace(config, **changes), "command line")
+
+
+class ProgressLine:
+    """One progress line on a terminal's stderr; silent when stderr is not a terminal."""
+
+    def __init__(self, total: int) -> None:
+        self.total, self.done = total, 0
+        self.live = sys.stderr.isatty()
+
+    def show(self, text: str) -> None:
+        if self.live:
+            width = 30
+            filled = int(width * self.done / max(self.total, 1))
+            sys.stderr.write(f"\r[{'#' * filled}{'.' * (width - filled)}] {self.done}/{self.total} {text:<40}")
+            sys.stderr.flush()
+
+    def step(self, text: str) -> None:
+        self.done += 1
+        self.show(text)
+
+    def close(self) -> None:
+        if self.live:
+            sys.stderr.write("\n")
+
+
+def _money(x: float) -> str:
+    return f"{x:,.0f}"
+
+
+def summary(outcome: NightOutcome, config: JobConfig) -> str:
+    """The closing summary of one night."""
+    ccy = config.reporting_currency
+    share = (f"{outcome.explained / outcome.overnight_actual:.1%}" if outcome.overnight_actual else "n/a")
+    zones = ", ".join(f"{k} {v}" for k, v in sorted(outcome.zones.items())) or "not computed"
+    lines = [
+        f"Night {outcome.as_of} (prior {outcome.prior_as_of}, basis {config.time_basis})",
+        f"  positions   {outcome.positions_in:,} in = {outcome.archived:,} archived + {outcome.rejected:,} rejected",
+        f"  books       {outcome.books:,}; residual limit breaches: {outcome.book_breaches} book(s), "
+        f"{outcome.position_breaches} position(s)",
+        f"  P&L {ccy}     total {_money(outcome.total_pnl)}; held overnight {_money(outcome.overnight_actual)}, "
+        f"explained {_money(outcome.explained)} ({share}), residual {_money(outcome.residual)}",
+        f"  exceptions  {outcome.rejected:,} position(s) rejected, {outcome.warnings:,} warning(s); "
+        f"new trades without a price: {outcome.unpriced_new}",
+        f"  quality     {zones}",
+        f"  seconds     {outcome.seconds:.2f}",
+    ]
+    if outcome.index_path:
+        lines.append(f"  report      {outcome.index_path}")
+    return "\n".join(lines)
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    from attribution.engine import run_night
+    config = config_from(args)
+    progress = ProgressLine(6)
+    outcome = run_night(config, args.as_of, args.prior, progress=progress.step)
+    progress.close()
+    print(summary(outcome, config))
+    return outcome.exit_code
+
+
+def _cmd_backfill(args: argparse.Namespace) -> int:
+    from attribution.backfill import backfill
+    config = config_from(args)
+    return backfill(config, args.start, args.end, args.reports_last, echo=print)
+
+
+def _cmd_check(args: argparse.Namespace) -> int:
+    from attribution.engine import prepare_night
+    config = config_from(args)
+    night = prepare_night(config, args.as_of, args.prior)
+    ledger = night.exceptions.assign(as_of=night.exceptions["as_of"].astype(str))
+    if args.json:
+        print(json.dumps(ledger.to_dict(orient="records"), indent=1))
+    else:
+        for row in ledger.itertuples(index=False):
+            print(f"{row.severity:<8} {row.file}  key={row.key}  rule: {row.rule}  ({row.detail})")
+        print(f"{night.positions_in:,} positions in: {len(night.positions):,} would be explained, "
+              f"{night.rejected_positions:,} rejected; {(ledger['severity'] == 'warning').sum():,} warning(s)")
+    return EXIT_FINDINGS if night.rejected_positions else EXIT_OK
+
+
+def _clean(value: object) -> object:
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, dt.date | dt.datetime):
+        return value.isoformat()[:10]
+    if hasattr(value, "item"):
+        return _clean(value.item())
+    return value
+
+
+def records(frame: object) -> list[dict[str, object]]:
+    """A frame as JSON-ready records: NaN becomes null, dates ISO strings."""
+    return [{k: _clean(v) for k, v in row.items()} for row in frame.to_dict(orient="records")]  # type: ignore[attr-defined]
+
+
+def _archive_of(args: argparse.Namespace) -> Path:
+    if args.archive:
+        return args.archive
+    return load_job(args.job).archive_path if args.job else JobConfig().archive_path
+
+
+def _cmd_history(args: argparse.Namespace) -> int:
+    from attribution.archive import book_history, connect
+    con = connect(_archive_of(args), read_only=True)
+    try:
+        frame = book_history(con, args.book, args.start, args.end)
+    finally:
+        con.close()
+    if frame.empty:
+        print(f"no archived nights for book {args.book!r}", file=sys.stderr)
+        return EXIT_FAILED
+    if args.json:
+        print(json.dumps(records(frame), indent=1))
+        return EXIT_OK
+    shown = ["as_of", "pnl_total", "pnl_actual", "pnl_delta", "pnl_gamma", "pnl_vega", "pnl_volga", "pnl_vanna",
+             "pnl_theta", "pnl_rates", "pnl_dividend", "pnl_explained", "pnl_residual", "limit_state", "zone"]
+    print(frame[shown].to_string(index=False, float_format=lambda x: f"{x:,.0f}"))
+    return EXIT_OK
+
+
+def _cmd_quality(args: argparse.Namespace) -> int:
+    from attribution.archive import connect, quality_series
+    from attribution.quality import quality_frame
+    con = connect(_archive_of(args), read_only=True)
+    try:
+        frame = quality_frame(quality_series(con, args.as_of), args.as_of)
+    finally:
+        con.close()
+    if args.json:
+        print(json.dumps(records(frame), indent=1))
+        return EXIT_OK
+    if frame.empty:
+        print(f"no archived nights up to {args.as_of}")
+        return EXIT_OK
+    print(frame.to_string(index=False, float_format=lambda x: f"{x:.3f}"))
+    return EXIT_OK
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from attribution.demo_run import run_demo
+    return run_demo(args.into, days=args.days, seed=args.seed, echo=print)
+
+
+def _cmd_bench(args: argparse.Namespace) -> int:
+    from attribution.bench import run_bench
+    return run_bench(positions=args.positions, books=args.books, instruments=args.instruments,
+                     underlyings=args.underlyings, engine=args.engine, keep=args.keep, echo=print)
+
+
+COMMANDS = {"run": _cmd_run, "backfill": _cmd_backfill, "check": _cmd_check, "demo": _cmd_demo,
+            "history": _cmd_history, "quality": _cmd_quality, "bench": _cmd_bench}
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``attribution`` console script."""
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:
+        return EXIT_USAGE if exc.code not in (0, None) else EXIT_OK
+    level = [logging.WARNING, logging.INFO, logging.DEBUG][min(args.verbose, 2)]
+    logging.basicConfig(level=level, stream=sys.stderr, format="%(asctime)s %(levelname)s %(message)s")
+    try:
+        return COMMANDS[args.command](args)
+    except ConfigError as exc:
+        print(f"attribution: usage error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except (InputFileError, ArchiveBusyError, FileNotFoundError) as exc:
+        print(f"attribution: failed: {exc}", file=sys.stderr)
+        return EXIT_FAILED
+    except Exception as exc:  # noqa: BLE001 - the scheduler needs one line and a code, the log has the trace
+        log.debug("unexpected error", exc_info=True)
+        print(f"attribution: failed: {type(exc).__name__}: {exc} (rerun with -vv for the trace)", file=sys.stderr)
+        return EXIT_FAILED
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,44 @@
+"""Writes input folders exactly as the data contract fixes them (tests build their nights here).
+
+Every column gets the contract's Arrow type: string, float64, date32; ``trade_price`` and
+``implied_vol`` may be None.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+ARROW = {"string": pa.string(), "float64": pa.float64(), "date32": pa.date32()}
+
+COLUMNS: dict[str, tuple[tuple[str, str], ...]] = {
+    "positions": (("trade_id", "string"), ("book", "string"), ("instrument_id", "string"),
+                  ("quantity", "float64"), ("trade_date", "date32"), ("trade_price", "float64")),
+    "instruments": (("instrument_id", "string"), ("underlying", "string"), ("option_type", "string"),
+                    ("exercise", "string"), ("strike", "float64"), ("expiry", "date32"),
+                    ("multiplier", "float64"), ("currency", "string")),
+    "option_marks": (("instrument_id", "string"), ("price", "float64"), ("implied_vol", "float64")),
+    "underlying_marks": (("underlying", "string"), ("spot", "float64"), ("dividend_yield", "float64")),
+    "rate_curves": (("currency", "string"), ("tenor_years", "float64"), ("zero_rate", "float64")),
+    "fx_rates": (("currency", "string"), ("rate", "float64")),
+}
+
+
+def table(kind: str, rows: Sequence[Mapping[str, object]]) -> pa.Table:
+    """Rows as an Arrow table with the contract's schema for ``kind`` (e.g. "positions")."""
+    schema = pa.schema([(name, ARROW[t]) for name, t in COLUMNS[kind]])
+    return pa.Table.from_pylist([dict(r) for r in rows], schema=schema)
+
+
+def write_folder(root: Path, as_of: dt.date, files: Mapping[str, Sequence[Mapping[str, object]] | pa.Table]) -> Path:
+    """Write ``<root>/as_of=YYYY-MM-DD/<kind>.parquet`` for each kind given; returns the folder."""
+    folder = root / f"as_of={as_of.isoformat()}"
+    folder.mkdir(parents=True, exist_ok=True)
+    for kind, rows in files.items():
+        t = rows if isinstance(rows, pa.Table) else table(kind, rows)
+        pq.write_table(t, folder / f"{kind}.parquet")
+    return folder
