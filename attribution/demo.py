@@ -1,0 +1,566 @@
+"""The demo desk's year of nightly input folders: listing, trading, marks, planted faults, Parquet.
+
+:func:`build_demo` writes ``<root>/as_of=YYYY-MM-DD/{positions, instruments, option_marks,
+underlying_marks, rate_curves, fx_rates}.parquet`` for every business day of an invented desk
+(definition: ``attribution/demo_desk.toml``, market: :mod:`attribution.demo_market`). Each day,
+vectorised over instruments and trades:
+
+* listing: the next monthly and the quarterly expiries, strikes on a grid of standard deviations
+  around spot; later listings add new expiries and strikes beyond the listed range;
+* marks: the BSM price (:func:`attribution.pricing.bsm_price`) at the smile vol, the curve rate at
+  the option's time to expiry (ACT/365F) and the dividend yield; ``implied_vol`` is left null for a
+  fixed share of instruments of clean books; a live option keeps a tiny time value so that its
+  mark lies strictly inside the no-arbitrage bounds;
+* trading: expiries, closes of whole packages, a few quantity amendments, and new trades
+  (single options, short straddles and strangles, or delta-offsetting pairs), a share of them
+  booked without a trade_price.
+
+Planted faults (:class:`PlantedFault`): a stale mark, a fat-finger mark and a missing mark in each
+book whose marks are ``planted_faults``; random errors of the time value on ~15 % of nights in
+each book whose marks are ``noisy``. The same seed gives the same tables, byte for byte.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+from numpy.typing import NDArray
+
+from attribution.demo_market import (
+    DAYS_PER_YEAR,
+    DeskSpec,
+    MarketPaths,
+    default_definition,
+    desk_holidays,
+    load_desk,
+    monthly_expiries,
+    simulate_market,
+    smile_vol,
+    zero_rate,
+)
+from attribution.demo_market import business_days as desk_business_days
+from attribution.pricing import FloatArray, bsm_greeks, bsm_price
+
+IntArray = NDArray[np.int64]
+DEFAULT_START = dt.date(2025, 11, 3)
+SCHEMAS: dict[str, pa.Schema] = {
+    "positions": pa.schema([("trade_id", pa.string()), ("book", pa.string()), ("instrument_id", pa.string()),
+                            ("quantity", pa.float64()), ("trade_date", pa.date32()), ("trade_price", pa.float64())]),
+    "instruments": pa.schema([("instrument_id", pa.string()), ("underlying", pa.string()),
+                              ("option_type", pa.string()), ("exercise", pa.string()), ("strike", pa.float64()),
+                              ("expiry", pa.date32()), ("multiplier", pa.float64()), ("currency", pa.string())]),
+    "option_marks": pa.schema([("instrument_id", pa.string()), ("price", pa.float64()),
+                               ("implied_vol", pa.float64())]),
+    "underlying_marks": pa.schema([("underlying", pa.string()), ("spot", pa.float64()),
+                                   ("dividend_yield", pa.float64())]),
+    "rate_curves": pa.schema([("currency", pa.string()), ("tenor_years", pa.float64()), ("zero_rate", pa.float64())]),
+    "fx_rates": pa.schema([("currency", pa.string()), ("rate", pa.float64())]),
+}
+FAULT_KINDS = ("stale_mark", "fat_finger_mark", "missing_mark", "noisy_marks")
+
+
+@dataclass(frozen=True, slots=True)
+class PlantedFault:
+    """A fault planted in the marks of one night; for ``noisy_marks`` the key is the underlying."""
+
+    as_of: dt.date
+    book: str
+    instrument_or_trade: str
+    kind: str
+    detail: str
+
+
+@dataclass(frozen=True, slots=True)
+class DemoSummary:
+    """What :func:`build_demo` wrote. ``holidays`` run from the first date to the last listed expiry."""
+
+    data_root: Path
+    desk: str
+    definition: Path
+    dates: tuple[dt.date, ...]
+    holidays: tuple[dt.date, ...]
+    books: tuple[str, ...]
+    underlyings: tuple[str, ...]
+    currencies: tuple[str, ...]
+    positions_min: int
+    positions_mean: float
+    positions_max: int
+    trades_new: int
+    trades_new_unpriced: int
+    trades_closed: int
+    trades_expired: int
+    trades_amended: int
+    instruments_listed: int
+    faults: tuple[PlantedFault, ...]
+
+    def describe(self) -> str:
+        """A few lines for a terminal."""
+        lines = [
+            f"{self.desk}: {len(self.dates)} business days {self.dates[0]} to {self.dates[-1]} in {self.data_root}",
+            f"{len(self.books)} books, {len(self.underlyings)} underlyings, currencies {', '.join(self.currencies)}",
+            f"positions per night: min {self.positions_min}, mean {self.positions_mean:.0f}, max {self.positions_max}",
+            f"trades: {self.trades_new} new ({self.trades_new_unpriced} without trade_price), "
+            f"{self.trades_closed} closed, {self.trades_expired} expired, {self.trades_amended} amended",
+            f"holidays: {', '.join(str(h) for h in self.holidays if h <= self.dates[-1])}",
+            f"planted faults: {len(self.faults)}",
+            *(f"  {f.as_of} {f.book} {f.instrument_or_trade} {f.kind}: {f.detail}" for f in self.faults
+              if f.kind != "noisy_marks"),
+        ]
+        return "\n".join(lines)
+
+
+@dataclass(slots=True)
+class _Instruments:
+    """Every instrument listed so far (append-only; the row is the instrument's number)."""
+
+    und: IntArray = field(default_factory=lambda: np.zeros(0, np.int64))
+    is_call: NDArray[np.bool_] = field(default_factory=lambda: np.zeros(0, bool))
+    strike: FloatArray = field(default_factory=lambda: np.zeros(0))
+    expiry: NDArray[np.datetime64] = field(default_factory=lambda: np.zeros(0, "datetime64[D]"))
+    null_vol: NDArray[np.bool_] = field(default_factory=lambda: np.zeros(0, bool))
+
+
+@dataclass(slots=True)
+class _Trades:
+    """Every trade booked so far (append-only) and the rows held tonight."""
+
+    book: IntArray = field(default_factory=lambda: np.zeros(0, np.int64))
+    instrument: IntArray = field(default_factory=lambda: np.zeros(0, np.int64))
+    quantity: FloatArray = field(default_factory=lambda: np.zeros(0))
+    trade_date: NDArray[np.datetime64] = field(default_factory=lambda: np.zeros(0, "datetime64[D]"))
+    trade_price: FloatArray = field(default_factory=lambda: np.zeros(0))
+    package: IntArray = field(default_factory=lambda: np.zeros(0, np.int64))
+    live: IntArray = field(default_factory=lambda: np.zeros(0, np.int64))
+    counts: dict[str, int] = field(default_factory=lambda: dict.fromkeys(
+        ("new", "unpriced", "closed", "expired", "amended"), 0))
+
+
+@dataclass(slots=True)
+class _Night:
+    """One date: live instruments with their marks (as written), bounds, and the positions held."""
+
+    live: IntArray
+    price: FloatArray
+    vol: FloatArray          # NaN where implied_vol is written as null
+    keep: NDArray[np.bool_]  # False where the mark row is left out
+    tau: FloatArray
+    spot: FloatArray
+    lower: FloatArray
+    upper: FloatArray
+    rows: IntArray
+    quantity: FloatArray
+
+
+@dataclass(frozen=True, slots=True)
+class _Pool:
+    """Instruments open for new trades tonight (at least the minimum days to expiry), with their clean marks."""
+
+    instrument: IntArray
+    und: IntArray
+    series: IntArray         # (expiry, underlying, call/put) as one integer; flipping bit 0 flips call/put
+    is_call: NDArray[np.bool_]
+    log_strike: FloatArray
+    spot: FloatArray
+    tau: FloatArray
+    vol: FloatArray
+    rate: FloatArray
+    div: FloatArray
+    price: FloatArray
+    weight: FloatArray
+
+
+def _series(und: IntArray, expiry: NDArray[np.datetime64]) -> IntArray:
+    return expiry.astype(np.int64) * 4096 + und
+
+
+def _nearest(series: IntArray, log_strike: FloatArray, q_series: IntArray, q_log_strike: FloatArray) -> IntArray:
+    """Index of the nearest strike of the same series for every query, -1 where the series is empty."""
+    best = np.full(q_series.shape, -1, dtype=np.int64)
+    if series.size == 0:
+        return best
+    order = np.lexsort((log_strike, series))
+    k_sorted = log_strike[order]
+    uniq, rank = np.unique(series[order], return_inverse=True)
+    q_rank = np.minimum(np.searchsorted(uniq, q_series), uniq.size - 1)
+    present = uniq[q_rank] == q_series
+    pos = np.searchsorted(rank * 100.0 + k_sorted, q_rank * 100.0 + q_log_strike)  # |ln K| < 50: series apart
+    gap = np.full(q_series.shape, np.inf)
+    for cand in (pos - 1, pos):
+        c = np.clip(cand, 0, order.size - 1)
+        ok = present & (cand >= 0) & (cand < order.size) & (rank[c] == q_rank)
+        dist = np.where(ok, np.abs(k_sorted[c] - q_log_strike), np.inf)
+        better = dist < gap
+        best, gap = np.where(better, order[c], best), np.where(better, dist, gap)
+    return best
+
+
+def _strike_step(spot: FloatArray) -> FloatArray:
+    """A round strike spacing near 1 % of spot: 1, 2 or 5 times a power of ten."""
+    base = 0.01 * spot
+    mag = 10.0 ** np.floor(np.log10(base))
+    return mag * np.where(base / mag < 2, 1.0, np.where(base / mag < 5, 2.0, 5.0))
+
+
+def _list(desk: DeskSpec, market: MarketPaths, d: int, store: _Instruments, expiries: NDArray[np.datetime64],
+          clean: NDArray[np.bool_], rng: np.random.Generator) -> None:
+    """List the expiries in the window and the grid strikes not yet covered by a listed strike."""
+    day, tr = market.dates[d], desk.trading
+    ahead = expiries[expiries > day]
+    quarterly = ahead[(ahead <= day + tr.quarterly_horizon_days) & (ahead.astype("datetime64[M]").astype(int) % 3 == 2)]
+    window = np.union1d(ahead[: tr.monthly_expiries], quarterly)
+    grid = np.array(tr.strike_grid_sd)
+    tau = (window - day).astype(float) / DAYS_PER_YEAR
+    sd = market.atm_vol[d][:, None] * np.sqrt(np.maximum(tau, 1.0 / 12.0))[None, :]
+    step = _strike_step(market.spot[d])[:, None, None]
+    strike = np.round(np.round(market.spot[d][:, None, None] * np.exp(grid * sd[:, :, None]) / step) * step, 8)
+    und, exp_idx, _ = np.indices(strike.shape).reshape(3, -1)
+    strike, sd_c, expiry = strike.ravel(), sd[und, exp_idx], window[exp_idx]
+    series = _series(und, expiry)
+    _, first = np.unique(np.stack([series, np.round(strike * 1e6).astype(np.int64)]), axis=1, return_index=True)
+    keep = np.sort(first)
+    keep = keep[strike[keep] > 0]
+    calls = np.flatnonzero(store.is_call & (store.expiry >= day))
+    near = _nearest(_series(store.und[calls], store.expiry[calls]), np.log(store.strike[calls]),
+                    series[keep], np.log(strike[keep]))
+    listed = np.log(np.append(store.strike[calls], 1.0))[near]  # near = -1 (nothing listed) reads the dummy
+    gap = np.where(near >= 0, np.abs(np.log(strike[keep]) - listed), np.inf)
+    new = keep[gap > 0.75 * np.min(np.diff(np.unique(grid))) * sd_c[keep]]
+    n = new.size
+    store.und = np.concatenate([store.und, und[new], und[new]])
+    store.is_call = np.concatenate([store.is_call, np.ones(n, bool), np.zeros(n, bool)])
+    store.strike = np.concatenate([store.strike, strike[new], strike[new]])
+    store.expiry = np.concatenate([store.expiry, expiry[new], expiry[new]])
+    store.null_vol = np.concatenate([store.null_vol,
+                                     (rng.random(2 * n) < tr.null_vol_share) & np.tile(clean[und[new]], 2)])
+
+
+def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: _Instruments) -> tuple[_Night, _Pool]:
+    """Clean marks of every live instrument tonight, and the pool open for new trades."""
+    day = market.dates[d]
+    live = np.flatnonzero(store.expiry >= day)
+    und, strike, is_call = store.und[live], store.strike[live], store.is_call[live]
+    tau = (store.expiry[live] - day).astype(float) / DAYS_PER_YEAR
+    spot, div = market.spot[d, und], market.dividend_yield[d, und]
+    codes = [c.code for c in desk.currencies]
+    ccy = np.array([codes.index(u.currency) for u in desk.underlyings])[und]
+    rate = np.zeros(live.size)
+    for c in range(len(codes)):
+        rate[ccy == c] = zero_rate(market.zero_rates[d, c], market.tenors_years, tau[ccy == c])
+    p = desk.param
+    vol = smile_vol(market.atm_vol[d, und], p("skew")[und], p("smile_curvature")[und], p("term_slope")[und],
+                    np.log(strike / spot), tau)
+    price = bsm_price(spot, strike, tau, vol, rate, div, is_call)
+    sign = np.where(is_call, 1.0, -1.0)
+    lower = np.maximum(sign * (spot * np.exp(-div * tau) - strike * np.exp(-rate * tau)), 0.0)
+    upper = np.where(is_call, spot * np.exp(-div * tau), strike * np.exp(-rate * tau))
+    price = np.where(tau > 0, np.maximum(price, lower + desk.min_time_value_share * spot), price)
+    night = _Night(live=live, price=price, vol=np.where(store.null_vol[live], np.nan, vol),
+                   keep=np.ones(live.size, bool), tau=tau, spot=spot, lower=lower, upper=upper,
+                   rows=np.zeros(0, np.int64), quantity=np.zeros(0))
+    open_ = tau * DAYS_PER_YEAR >= desk.trading.min_days_to_expiry_new
+    z = np.log(strike / spot) / (vol * np.sqrt(np.maximum(tau, 1e-9)))
+    pool = _Pool(instrument=live[open_], und=und[open_], series=(_series(und, store.expiry[live]) * 2 + is_call)[open_],
+                 is_call=is_call[open_], log_strike=np.log(strike[open_]), spot=spot[open_], tau=tau[open_],
+                 vol=vol[open_], rate=rate[open_], div=div[open_], price=price[open_],
+                 weight=(np.exp(-0.5 * (z / 0.8) ** 2) / (1.0 + 2.0 * tau))[open_])
+    return night, pool
+
+
+def _sample(rng: np.random.Generator, pool: _Pool, mask: NDArray[np.bool_], n: int) -> IntArray:
+    cand = np.flatnonzero(mask)
+    if cand.size == 0 or n <= 0:
+        return np.zeros(0, np.int64)
+    w = pool.weight[cand]
+    return cand[rng.choice(cand.size, size=n, p=w / w.sum())]
+
+
+def _pairs(rng: np.random.Generator, pool: _Pool, style: str, mask: NDArray[np.bool_], lots: FloatArray,
+           side: FloatArray) -> tuple[IntArray, FloatArray]:
+    """Two-leg packages, legs interleaved: short straddles/strangles, or pairs whose deltas offset."""
+    if style == "short_vol":
+        anchor = _sample(rng, pool, mask & ~pool.is_call & (pool.log_strike <= np.log(pool.spot * 1.02)), lots.size)
+        straddle = rng.random(anchor.size) < 0.5
+        target = np.where(straddle, pool.log_strike[anchor], 2 * np.log(pool.spot[anchor]) - pool.log_strike[anchor])
+        partner = _nearest(pool.series, pool.log_strike, pool.series[anchor] + 1, target)
+        q_anchor, q_partner = -lots[: anchor.size], -lots[: anchor.size]
+    else:
+        anchor = _sample(rng, pool, mask, lots.size)
+        other = _nearest(pool.series, pool.log_strike, pool.series[anchor] ^ 1, pool.log_strike[anchor])
+        shift = np.where(pool.is_call[anchor], 0.5, -0.5) * pool.vol[anchor] * np.sqrt(pool.tau[anchor])
+        same = _nearest(pool.series, pool.log_strike, pool.series[anchor], pool.log_strike[anchor] + shift)
+        partner = np.where((rng.random(anchor.size) < 0.5) & (same != anchor), same, other)
+        legs = np.concatenate([anchor, partner])
+        delta = bsm_greeks(pool.spot[legs], np.exp(pool.log_strike[legs]), pool.tau[legs], pool.vol[legs],
+                           pool.rate[legs], pool.div[legs], pool.is_call[legs]).delta.reshape(2, -1)
+        ratio = np.clip(np.abs(delta[0] / np.where(delta[1] == 0, 1e-12, delta[1])), 0.2, 5.0)
+        opposite = np.where(pool.is_call[partner] == pool.is_call[anchor], -1.0, 1.0)
+        q_anchor = side[: anchor.size] * lots[: anchor.size]
+        q_partner = side[: anchor.size] * opposite * np.maximum(1.0, np.round(lots[: anchor.size] * ratio))
+    ok = partner >= 0
+    return (np.stack([anchor[ok], partner[ok]], axis=1).ravel(),
+            np.stack([q_anchor[ok], q_partner[ok]], axis=1).ravel())
+
+
+def _open(rng: np.random.Generator, desk: DeskSpec, b: int, pool: _Pool, n: int, trades: _Trades,
+          trade_date: NDArray[np.datetime64], unpriced_share: float) -> None:
+    """Book about ``n`` new positions in book ``b`` at tonight's clean marks (``trade_date``: n + 1 dates)."""
+    book = desk.books[b]
+    names = [u.name for u in desk.underlyings]
+    mask = np.isin(pool.und, [names.index(x) for x in book.underlyings])
+    n_packages = n if book.style == "outright" else -(-n // 2)
+    lots = np.floor(np.exp(rng.uniform(np.log(book.lot_min), np.log(book.lot_max + 1), n_packages)))
+    side = np.where(rng.random(n_packages) < book.long_share, 1.0, -1.0)
+    if book.style == "outright":
+        legs = _sample(rng, pool, mask, n_packages)
+        quantity, per_package = (side * lots)[: legs.size], 1
+    else:
+        legs, quantity = _pairs(rng, pool, book.style, mask, lots, side)
+        per_package = 2
+    spread = np.sign(quantity) * rng.uniform(0.0, desk.trading.half_spread_max, legs.size)
+    price = np.where(rng.random(legs.size) < unpriced_share, np.nan, pool.price[legs] * (1.0 + spread))
+    base = trades.book.size
+    trades.book = np.concatenate([trades.book, np.full(legs.size, b)])
+    trades.instrument = np.concatenate([trades.instrument, pool.instrument[legs]])
+    trades.quantity = np.concatenate([trades.quantity, quantity])
+    trades.trade_date = np.concatenate([trades.trade_date, trade_date[: legs.size]])
+    trades.trade_price = np.concatenate([trades.trade_price, price])
+    trades.package = np.concatenate([trades.package, base + np.arange(legs.size) // per_package * per_package])
+    trades.live = np.concatenate([trades.live, base + np.arange(legs.size)])
+
+
+def _lifecycle(rng: np.random.Generator, desk: DeskSpec, day: np.datetime64, store: _Instruments,
+               trades: _Trades) -> None:
+    """Expiries (expired before tonight), closes of whole packages, and quantity amendments."""
+    live = trades.live
+    expired = store.expiry[trades.instrument[live]] < day
+    live = live[~expired]
+    packages = np.unique(trades.package[live])
+    closing = packages[rng.random(packages.size) < desk.trading.daily_churn]
+    closed = np.isin(trades.package[live], closing)
+    trades.live = live[~closed]
+    carried = trades.live
+    n_amend = min(int(rng.poisson(desk.trading.amend_rate * carried.size)), carried.size)
+    rows = rng.choice(carried, size=n_amend, replace=False)
+    q = trades.quantity[rows]
+    new = np.sign(q) * np.maximum(1.0, np.round(np.abs(q) * rng.choice([0.5, 1.5, 2.0], size=n_amend)))
+    trades.quantity[rows] = np.where(new == q, q + np.sign(q), new)
+    for key, count in (("expired", expired.sum()), ("closed", closed.sum()), ("amended", n_amend)):
+        trades.counts[key] += int(count)
+
+
+def _trade(rng: np.random.Generator, desk: DeskSpec, d: int, market: MarketPaths, store: _Instruments,
+           trades: _Trades, pool: _Pool, targets: IntArray) -> None:
+    day = market.dates[d]
+    if d == 0:  # the opening book, booked on earlier business days
+        hol = np.array(desk_holidays(desk, day.item() - dt.timedelta(days=150), day.item()), dtype="datetime64[D]")
+        for b, target in enumerate(targets):
+            back = rng.integers(1, 60, size=target + 1)
+            dates = np.busday_offset(np.full(target + 1, day), -back, roll="backward", holidays=hol)
+            _open(rng, desk, b, pool, int(target), trades, dates, 0.0)
+        return
+    _lifecycle(rng, desk, day, store, trades)
+    held = np.bincount(trades.book[trades.live], minlength=len(targets))
+    before = trades.book.size
+    for b, target in enumerate(targets):
+        floor = rng.poisson(0.9 * desk.trading.daily_churn * target)
+        n = max(int(floor), int(target + rng.integers(0, 1 + target // 100) - held[b]))
+        _open(rng, desk, b, pool, n, trades, np.full(n + 1, day), desk.trading.unpriced_share)
+    trades.counts["new"] += trades.book.size - before
+    trades.counts["unpriced"] += int(np.isnan(trades.trade_price[before:]).sum())
+
+
+def _carried_in_book(market: MarketPaths, store: _Instruments, trades: _Trades, nights: list[_Night], d: int,
+                     b: int) -> tuple[IntArray, FloatArray]:
+    """Instruments book ``b`` holds on nights d - 1 and d with a week or more to expiry, and sum |qty| x price at d."""
+    now, prev = nights[d].rows, nights[d - 1].rows
+    mine = trades.book[now] == b
+    inst_now = trades.instrument[now][mine]
+    both = np.intersect1d(inst_now, trades.instrument[prev][trades.book[prev] == b])
+    both = both[(store.expiry[both] - market.dates[d]).astype(int) >= 7]
+    inside = np.isin(inst_now, both)
+    units = np.bincount(np.searchsorted(both, inst_now[inside]), np.abs(nights[d].quantity[mine][inside]),
+                        minlength=both.size)
+    return both, units * nights[d].price[np.searchsorted(nights[d].live, both)]
+
+
+def _mark_faults(desk: DeskSpec, market: MarketPaths, store: _Instruments, trades: _Trades, nights: list[_Night],
+                 ids: NDArray[np.str_], b: int) -> list[PlantedFault]:
+    """One stale, one fat-finger and one missing mark, on distinct nights, in positions book ``b`` carries."""
+    n, names = len(nights), [u.name for u in desk.underlyings]
+    move = np.zeros((n, len(names)))
+    move[1:] = np.abs(np.diff(np.log(market.spot), axis=0))
+    used: set[int] = set()
+    out = []
+    for kind, frac in (("stale_mark", 0.35), ("fat_finger_mark", 0.6), ("missing_mark", 0.8)):
+        order = sorted(range(1, n), key=lambda d, f=frac: abs(d - f * (n - 1)))
+        for d in (d for d in order if d not in used):
+            both, score = _carried_in_book(market, store, trades, nights, d, b)
+            if kind == "stale_mark":
+                score = score * move[d, store.und[both]]
+            if both.size == 0 or score.max() <= 0:
+                continue
+            inst = int(both[np.argmax(score)])
+            night, day = nights[d], market.dates[d].item()
+            pos = int(np.searchsorted(night.live, inst))
+            if kind == "stale_mark":
+                prev = nights[d - 1]
+                p_prev = int(np.searchsorted(prev.live, inst))
+                night.price[pos], night.vol[pos] = prev.price[p_prev], prev.vol[p_prev]
+                detail = (f"price {night.price[pos]:.6g} and implied vol {night.vol[pos]:.4f} repeated from "
+                          f"{market.dates[d - 1]} while {names[store.und[inst]]} moved "
+                          f"{np.log(market.spot[d, store.und[inst]] / market.spot[d - 1, store.und[inst]]):+.2%}")
+            elif kind == "fat_finger_mark":
+                factor = desk.faults.fat_finger_factor
+                detail = f"price {night.price[pos] * factor:.6g} written instead of {night.price[pos]:.6g}"
+                night.price[pos] *= factor
+            else:
+                night.keep[pos] = False
+                detail = "no option_marks row although the instrument is held"
+            out.append(PlantedFault(day, desk.books[b].name, str(ids[inst]), kind, detail))
+            used.add(d)
+            break
+        else:
+            raise RuntimeError(f"book {desk.books[b].name}: no carried position to plant a {kind} in")
+    return out
+
+
+def _noisy_marks(desk: DeskSpec, market: MarketPaths, store: _Instruments, nights: list[_Night], b: int,
+                 rng: np.random.Generator) -> list[PlantedFault]:
+    """Random errors of the time value of every live option of book ``b``'s underlyings on some nights."""
+    spec, book, names = desk.faults, desk.books[b], [u.name for u in desk.underlyings]
+    noisy = rng.random(len(nights)) < spec.noisy_night_share
+    noisy[0] = False
+    if not noisy.any():
+        noisy[rng.integers(1, len(nights))] = True
+    out = []
+    for d in np.flatnonzero(noisy):
+        night = nights[d]
+        for name in book.underlyings:
+            sel = (store.und[night.live] == names.index(name)) & (night.tau > 0)
+            common = rng.normal(0.0, spec.noisy_common_sd)
+            error = np.clip(common + rng.normal(0.0, spec.noisy_idio_sd, int(sel.sum())), -0.6, 0.8)
+            lower, upper = night.lower[sel], night.upper[sel]
+            night.price[sel] = np.minimum(lower + (night.price[sel] - lower) * (1.0 + error),
+                                          lower + 0.99 * (upper - lower))
+            out.append(PlantedFault(market.dates[d].item(), book.name, name, "noisy_marks",
+                                    f"time value of {int(sel.sum())} option marks off by {common:+.1%} in common "
+                                    f"and {spec.noisy_idio_sd:.0%} (sd) each"))
+    return out
+
+
+def _ids(desk: DeskSpec, store: _Instruments, trade_count: int) -> tuple[NDArray[np.str_], NDArray[np.str_]]:
+    """Instrument ids ``<underlying>-<YYYYMMDD>-<C|P><strike>`` and trade ids ``<prefix><8 digits>``."""
+    code = np.array([u.name.replace("/", "") for u in desk.underlyings])[store.und]
+    parts = (code, "-", np.char.replace(np.datetime_as_string(store.expiry, unit="D"), "-", ""), "-",
+             np.where(store.is_call, "C", "P"), np.char.mod("%.10g", store.strike))
+    ids = parts[0]
+    for part in parts[1:]:
+        ids = np.char.add(ids, part)
+    if np.unique(ids).size != ids.size:
+        raise RuntimeError("demo instrument ids are not unique")
+    return ids, np.char.mod(f"{desk.trade_id_prefix}%08d", np.arange(trade_count))
+
+
+def _prepare_root(root: Path, dates: NDArray[np.datetime64]) -> None:
+    root.mkdir(parents=True, exist_ok=True)
+    wanted = {f"as_of={d}" for d in dates}
+    stray = sorted(p.name for p in root.glob("as_of=*") if p.name not in wanted)
+    if stray:
+        raise ValueError(f"{root}: holds {len(stray)} as_of folder(s) outside this demo's dates (first {stray[0]}); "
+                         "write the demo into an empty folder")
+
+
+def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: _Instruments, trades: _Trades,
+           nights: list[_Night], ids: NDArray[np.str_], trade_ids: NDArray[np.str_]) -> None:
+    names = np.array([u.name for u in desk.underlyings])
+    codes = np.array([c.code for c in desk.currencies])
+    ccy = np.array([list(codes).index(u.currency) for u in desk.underlyings])
+    instrument_id = pa.array(ids, pa.string())
+    instruments = pa.Table.from_arrays([
+        instrument_id, pa.array(names[store.und], pa.string()),
+        pa.array(np.where(store.is_call, "call", "put"), pa.string()),
+        pa.array(np.full(store.und.size, "european"), pa.string()), pa.array(store.strike, pa.float64()),
+        pa.array(store.expiry, pa.date32()), pa.array(desk.param("multiplier")[store.und], pa.float64()),
+        pa.array(codes[ccy[store.und]], pa.string())], schema=SCHEMAS["instruments"])
+    booked = pa.Table.from_arrays([
+        pa.array(trade_ids, pa.string()), pa.array(np.array([b.name for b in desk.books])[trades.book], pa.string()),
+        instrument_id.take(pa.array(trades.instrument)), pa.array(trades.trade_date, pa.date32()),
+        pa.array(trades.trade_price, pa.float64(), mask=np.isnan(trades.trade_price))],
+        names=["trade_id", "book", "instrument_id", "trade_date", "trade_price"])
+    n_tenor = market.tenors_years.size
+    for d, night in enumerate(nights):
+        folder = root / f"as_of={market.dates[d]}"
+        folder.mkdir(exist_ok=True)
+        held = booked.take(pa.array(night.rows))
+        tables = {
+            "positions": [held["trade_id"], held["book"], held["instrument_id"], pa.array(night.quantity),
+                          held["trade_date"], held["trade_price"]],
+            "instruments": instruments.take(pa.array(night.live)).columns,
+            "option_marks": [instrument_id.take(pa.array(night.live[night.keep])), pa.array(night.price[night.keep]),
+                             pa.array(night.vol[night.keep], mask=np.isnan(night.vol[night.keep]))],
+            "underlying_marks": [pa.array(names, pa.string()), pa.array(market.spot[d]),
+                                 pa.array(market.dividend_yield[d])],
+            "rate_curves": [pa.array(codes.repeat(n_tenor), pa.string()),
+                            pa.array(np.tile(market.tenors_years, codes.size)), pa.array(market.zero_rates[d].ravel())],
+            "fx_rates": [pa.array(codes, pa.string()), pa.array(market.fx_to_reporting[d])],
+        }
+        for name, columns in tables.items():
+            pq.write_table(pa.Table.from_arrays(columns, schema=SCHEMAS[name]), folder / f"{name}.parquet")
+
+
+def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, business_days: int = 261,
+               positions_target: int = 5000, definition: Path | None = None) -> DemoSummary:
+    """Write the demo desk's nightly input folders for ``business_days`` business days from ``start``."""
+    desk = load_desk(definition)
+    if business_days < 5:
+        raise ValueError(f"business_days must be at least 5 to leave room for the planted faults, not {business_days}")
+    if positions_target < 10 * len(desk.books):
+        raise ValueError(f"positions_target must be at least {10 * len(desk.books)} (10 per book), not "
+                         f"{positions_target}")
+    dates = desk_business_days(desk, start, business_days)
+    root = Path(root)
+    _prepare_root(root, dates)
+    market_rng, list_rng, trade_rng, fault_rng = (np.random.default_rng(s) for s in np.random.SeedSequence(seed)
+                                                  .spawn(4))
+    market = simulate_market(desk, dates, market_rng)
+    expiries = monthly_expiries(desk, dates[0].item(), dates[-1].item() + dt.timedelta(days=500))
+    names = [u.name for u in desk.underlyings]
+    clean = np.ones(len(names), bool)
+    for book in desk.books:
+        clean[[names.index(x) for x in book.underlyings]] &= book.marks == "clean"
+    weights = np.array([b.weight for b in desk.books])
+    targets = np.ceil(positions_target * weights / weights.sum()).astype(np.int64)
+    store, trades, nights = _Instruments(), _Trades(), []
+    for d in range(dates.size):
+        if d % desk.trading.listing_every_days == 0:
+            _list(desk, market, d, store, expiries, clean, list_rng)
+        night, pool = _marks(desk, market, d, store)
+        _trade(trade_rng, desk, d, market, store, trades, pool, targets)
+        night.rows, night.quantity = trades.live.copy(), trades.quantity[trades.live]
+        nights.append(night)
+    ids, trade_ids = _ids(desk, store, trades.book.size)
+    faults: list[PlantedFault] = []
+    for b, book in enumerate(desk.books):
+        if book.marks == "planted_faults":
+            faults += _mark_faults(desk, market, store, trades, nights, ids, b)
+        elif book.marks == "noisy":
+            faults += _noisy_marks(desk, market, store, nights, b, fault_rng)
+    _write(root, desk, market, store, trades, nights, ids, trade_ids)
+    counts = np.array([night.rows.size for night in nights])
+    first, last_expiry = dates[0].item(), store.expiry.max().item()
+    return DemoSummary(
+        data_root=root, desk=desk.name, definition=Path(definition) if definition else default_definition(),
+        dates=tuple(d.item() for d in dates), holidays=desk_holidays(desk, first, max(last_expiry, dates[-1].item())),
+        books=tuple(b.name for b in desk.books), underlyings=tuple(names),
+        currencies=tuple(c.code for c in desk.currencies),
+        positions_min=int(counts.min()), positions_mean=float(counts.mean()), positions_max=int(counts.max()),
+        trades_new=trades.counts["new"], trades_new_unpriced=trades.counts["unpriced"],
+        trades_closed=trades.counts["closed"], trades_expired=trades.counts["expired"],
+        trades_amended=trades.counts["amended"], instruments_listed=int(store.und.size),
+        faults=tuple(sorted(faults, key=lambda f: (f.as_of, f.book, f.kind, f.instrument_or_trade))),
+    )

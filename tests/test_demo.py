@@ -1,0 +1,386 @@
+"""Tests of the demo desk generator (attribution.demo, attribution.demo_market) on short slices.
+
+The data contract (/work/shared/data-contract.md) is the reference for files, columns, types and
+row rules; QuantLib 1.x (AnalyticEuropeanEngine, flat curves, Actual365Fixed) is the outside
+reference for the BSM prices of clean marks; the rest are properties the scenario promises.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from attribution.demo import SCHEMAS, DemoSummary, build_demo
+from attribution.demo_market import (
+    DeskDefinitionError,
+    business_days,
+    default_definition,
+    desk_holidays,
+    load_desk,
+    monthly_expiries,
+    simulate_market,
+)
+from attribution.pricing import bsm_greeks, bsm_price
+
+ql = pytest.importorskip("QuantLib")
+
+START = dt.date(2025, 12, 8)   # 14 business days: a monthly expiry (12-19) and two holidays (12-25, 12-26)
+DAYS = 14
+TARGET = 600
+FILES = tuple(SCHEMAS)
+
+
+@dataclass(frozen=True)
+class Built:
+    """A demo slice: its summary and every file of every night as pandas frames."""
+
+    summary: DemoSummary
+    nights: dict[dt.date, dict[str, pd.DataFrame]]
+
+
+def _read(root: Path, day: dt.date) -> dict[str, pd.DataFrame]:
+    return {name: pq.read_table(root / f"as_of={day}" / f"{name}.parquet").to_pandas() for name in FILES}
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory: pytest.TempPathFactory) -> Built:
+    root = tmp_path_factory.mktemp("demo")
+    summary = build_demo(root, start=START, business_days=DAYS, positions_target=TARGET)
+    return Built(summary, {day: _read(root, day) for day in summary.dates})
+
+
+def _faults(built: Built, kind: str) -> list:
+    return [f for f in built.summary.faults if f.kind == kind]
+
+
+def _rates(curves: pd.DataFrame, currency: pd.Series, tau: np.ndarray) -> np.ndarray:
+    """Contract rule: linear in zero rate between tenors, flat beyond the ends."""
+    out = np.empty(tau.size)
+    for code, curve in curves.sort_values("tenor_years").groupby("currency"):
+        sel = (currency == code).to_numpy()
+        out[sel] = np.interp(tau[sel], curve["tenor_years"], curve["zero_rate"])
+    return out
+
+
+def _state(files: dict[str, pd.DataFrame], day: dt.date) -> pd.DataFrame:
+    """Marks joined with their instrument and underlying, with tau (ACT/365F) and the contract's rate."""
+    frame = (files["option_marks"].merge(files["instruments"], on="instrument_id")
+             .merge(files["underlying_marks"], on="underlying"))
+    frame["tau"] = (pd.to_datetime(frame["expiry"]) - pd.Timestamp(day)).dt.days.to_numpy() / 365.0
+    frame["rate"] = _rates(files["rate_curves"], frame["currency"], frame["tau"].to_numpy())
+    return frame
+
+
+def _model(frame: pd.DataFrame) -> np.ndarray:
+    return bsm_price(frame["spot"], frame["strike"], frame["tau"], frame["implied_vol"], frame["rate"],
+                     frame["dividend_yield"], frame["option_type"] == "call")
+
+
+def _faulty_marks(built: Built, day: dt.date) -> set[str]:
+    """Instrument ids and underlyings whose marks carry a planted fault on ``day``."""
+    return {f.instrument_or_trade for f in built.summary.faults if f.as_of == day}
+
+
+def test_default_desk_has_the_scenario_books_and_underlyings() -> None:
+    """The packaged desk: >= 6 books of every style and mark kind, >= 20 underlyings, USD, EUR and more."""
+    desk = load_desk()
+    assert len(desk.books) >= 6 and len(desk.underlyings) >= 20
+    assert {"USD", "EUR"} < {c.code for c in desk.currencies} and desk.reporting_currency == "USD"
+    assert {b.style for b in desk.books} == {"outright", "short_vol", "delta_neutral"}
+    assert {b.marks for b in desk.books} == {"clean", "planted_faults", "noisy"}
+    assert {u.kind for u in desk.underlyings} == {"index", "stock", "fx"}
+    assert all(u.name == f"{u.foreign_currency}/{u.currency}" for u in desk.underlyings if u.kind == "fx")
+    assert default_definition().name == "demo_desk.toml" and default_definition().is_file()
+
+
+def test_every_file_has_the_contract_columns_and_arrow_types(built: Built, tmp_path: Path) -> None:
+    """Each as_of folder holds the six files with the contract's column names, order and Arrow types."""
+    expected = {
+        "positions": [pa.string(), pa.string(), pa.string(), pa.float64(), pa.date32(), pa.float64()],
+        "instruments": [pa.string(), pa.string(), pa.string(), pa.string(), pa.float64(), pa.date32(),
+                        pa.float64(), pa.string()],
+        "option_marks": [pa.string(), pa.float64(), pa.float64()],
+        "underlying_marks": [pa.string(), pa.float64(), pa.float64()],
+        "rate_curves": [pa.string(), pa.float64(), pa.float64()],
+        "fx_rates": [pa.string(), pa.float64()],
+    }
+    root = built.summary.data_root
+    for day in built.summary.dates:
+        folder = root / f"as_of={day}"
+        assert sorted(p.name for p in folder.iterdir()) == sorted(f"{n}.parquet" for n in expected)
+        for name, types in expected.items():
+            schema = pq.read_schema(folder / f"{name}.parquet")
+            assert schema.names == SCHEMAS[name].names
+            assert schema.types == types, (day, name)
+
+
+def test_folders_are_the_business_days_without_weekends_or_holidays(built: Built) -> None:
+    """One folder per business day: no weekend, no desk holiday; the holidays are exposed in the summary."""
+    s = built.summary
+    folders = sorted(p.name for p in s.data_root.iterdir())
+    assert folders == [f"as_of={d}" for d in s.dates] and len(s.dates) == DAYS
+    assert all(d.weekday() < 5 for d in s.dates)
+    assert {dt.date(2025, 12, 25), dt.date(2025, 12, 26), dt.date(2026, 1, 1)} <= set(s.holidays)
+    assert not set(s.holidays) & set(s.dates)
+    calendar_days = pd.date_range(s.dates[0], s.dates[-1]).date
+    missing = {d for d in calendar_days if d.weekday() < 5} - set(s.dates)
+    assert missing == {h for h in s.holidays if h <= s.dates[-1]} and missing
+
+
+def test_keys_are_unique_and_references_resolve(built: Built) -> None:
+    """Unique keys; positions -> instruments -> underlyings; every currency has a curve and an fx rate."""
+    missing_marks = {(f.as_of, f.instrument_or_trade) for f in _faults(built, "missing_mark")}
+    for day, f in built.nights.items():
+        pos, ins, marks, und = f["positions"], f["instruments"], f["option_marks"], f["underlying_marks"]
+        for frame, key in ((pos, "trade_id"), (ins, "instrument_id"), (marks, "instrument_id"), (und, "underlying"),
+                           (f["fx_rates"], "currency")):
+            assert frame[key].is_unique and frame[key].notna().all(), (day, key)
+        assert not f["rate_curves"].duplicated(["currency", "tenor_years"]).any()
+        assert set(pos["instrument_id"]) <= set(ins["instrument_id"])
+        assert set(ins["underlying"]) <= set(und["underlying"])
+        unmarked = set(ins["instrument_id"]) - set(marks["instrument_id"])
+        assert {(day, i) for i in unmarked} <= missing_marks
+        assert set(marks["instrument_id"]) <= set(ins["instrument_id"])
+        currencies = set(ins["currency"])
+        assert currencies <= set(f["rate_curves"]["currency"]) and currencies <= set(f["fx_rates"]["currency"])
+        assert (f["rate_curves"].groupby("currency").size() >= 4).all()
+        fx = f["fx_rates"].set_index("currency")["rate"]
+        assert fx["USD"] == 1.0 and (fx > 0).all()
+
+
+def test_row_rules_of_the_contract_hold(built: Built) -> None:
+    """strike, spot, multiplier > 0; call/put; european; ISO codes; no nulls in required columns; live expiries."""
+    for day, f in built.nights.items():
+        pos, ins, und = f["positions"], f["instruments"], f["underlying_marks"]
+        assert (ins["strike"] > 0).all() and (ins["multiplier"] > 0).all() and (und["spot"] > 0).all()
+        assert set(ins["option_type"]) == {"call", "put"} and set(ins["exercise"]) == {"european"}
+        assert ins["currency"].str.fullmatch(r"[A-Z]{3}").all()
+        assert (pd.to_datetime(ins["expiry"]).dt.date >= day).all()
+        assert ins.notna().all().all() and und.notna().all().all() and f["rate_curves"].notna().all().all()
+        assert pos.drop(columns="trade_price").notna().all().all()
+        assert np.isfinite(pos["quantity"]).all() and (pos["quantity"] != 0).all()
+        assert (pos["trade_date"] <= day).all()
+        unpriced = pos.loc[pos["trade_price"].isna(), "trade_date"]
+        assert (unpriced >= built.summary.dates[1]).all()  # only trades booked in the slice, never the opening book
+        assert (pos["trade_price"].dropna() >= 0).all() and (f["rate_curves"]["tenor_years"] >= 0).all()
+
+
+def test_clean_marks_are_bsm_prices_strictly_inside_the_bounds(built: Built) -> None:
+    """Clean marks equal BSM at their implied vol (rel 1e-9, or the 1e-8 x spot time-value floor) and lie
+    strictly inside max(cp(S e^-qT - K e^-rT), 0) < price < (S e^-qT | K e^-rT); at expiry the intrinsic value."""
+    desk = load_desk()
+    for day, f in built.nights.items():
+        m = _state(f, day)
+        m = m[~m["instrument_id"].isin(_faulty_marks(built, day)) & ~m["underlying"].isin(_faulty_marks(built, day))]
+        assert (m["price"] >= 0).all()
+        call = (m["option_type"] == "call").to_numpy()
+        cp = np.where(call, 1.0, -1.0)
+        fwd_s = m["spot"] * np.exp(-m["dividend_yield"] * m["tau"])
+        fwd_k = m["strike"] * np.exp(-m["rate"] * m["tau"])
+        lower, upper = np.maximum(cp * (fwd_s - fwd_k), 0.0), np.where(call, fwd_s, fwd_k)
+        live = (m["tau"] > 0).to_numpy()
+        assert (m["price"][live] > lower[live]).all() and (m["price"][live] < upper[live]).all()
+        np.testing.assert_allclose(m["price"][~live], lower[~live], rtol=0, atol=0)
+        given = m["implied_vol"].notna().to_numpy()
+        np.testing.assert_allclose(m["price"][given], _model(m[given]), rtol=1e-9,
+                                   atol=desk.min_time_value_share * m["spot"][given].max())
+        assert 0.02 < 1 - given.mean() < 0.3  # some marks leave implied_vol to the job
+
+
+def test_clean_marks_agree_with_quantlib(built: Built) -> None:
+    """A sample of clean live marks equals QuantLib's analytic European price to rel 1e-9 (abs: the floor)."""
+    day = built.summary.dates[3]
+    m = _state(built.nights[day], day)
+    m = m[(m["tau"] > 0) & m["implied_vol"].notna() & ~m["underlying"].isin(_faulty_marks(built, day))]
+    sample = m.sample(40, random_state=1)
+    today = ql.Date(day.day, day.month, day.year)
+    saved = ql.Settings.instance().evaluationDate
+    ql.Settings.instance().evaluationDate = today
+    try:
+        for row in sample.itertuples():
+            expiry = pd.Timestamp(row.expiry)
+            counts = ql.Actual365Fixed()
+            process = ql.BlackScholesMertonProcess(
+                ql.QuoteHandle(ql.SimpleQuote(row.spot)),
+                ql.YieldTermStructureHandle(ql.FlatForward(today, row.dividend_yield, counts)),
+                ql.YieldTermStructureHandle(ql.FlatForward(today, row.rate, counts)),
+                ql.BlackVolTermStructureHandle(ql.BlackConstantVol(today, ql.NullCalendar(), row.implied_vol, counts)))
+            kind = ql.Option.Call if row.option_type == "call" else ql.Option.Put
+            option = ql.EuropeanOption(ql.PlainVanillaPayoff(kind, row.strike),
+                                       ql.EuropeanExercise(ql.Date(expiry.day, expiry.month, expiry.year)))
+            option.setPricingEngine(ql.AnalyticEuropeanEngine(process))
+            floor = load_desk().min_time_value_share * row.spot  # a live mark's least time value
+            assert row.price == pytest.approx(option.NPV(), rel=1e-9, abs=floor), row.instrument_id
+    finally:
+        ql.Settings.instance().evaluationDate = saved
+
+
+def test_planted_faults_are_in_the_data_as_the_summary_says(built: Built) -> None:
+    """Stale, fat-finger and missing marks once each in the faulty book; noisy marks on some nights."""
+    s, desk = built.summary, load_desk()
+    kinds = {f.kind for f in s.faults}
+    assert kinds == {"stale_mark", "fat_finger_mark", "missing_mark", "noisy_marks"}
+    faulty_book = next(b.name for b in desk.books if b.marks == "planted_faults")
+    for kind in ("stale_mark", "fat_finger_mark", "missing_mark"):
+        (fault,) = _faults(built, kind)
+        assert fault.book == faulty_book
+        day = fault.as_of
+        prior = s.dates[s.dates.index(day) - 1]
+        pos = built.nights[day]["positions"]
+        assert set(pos.loc[pos["instrument_id"] == fault.instrument_or_trade, "book"]) == {faulty_book}
+        marks = _state(built.nights[day], day).set_index("instrument_id")
+        if kind == "missing_mark":
+            assert fault.instrument_or_trade not in marks.index
+            continue
+        row = marks.loc[fault.instrument_or_trade]
+        if kind == "stale_mark":
+            before = _state(built.nights[prior], prior).set_index("instrument_id").loc[fault.instrument_or_trade]
+            assert row["price"] == before["price"] and row["implied_vol"] == before["implied_vol"]
+            assert abs(np.log(row["spot"] / before["spot"])) > 0.002
+        else:
+            assert row["price"] / _model(marks.loc[[fault.instrument_or_trade]])[0] == pytest.approx(
+                desk.faults.fat_finger_factor, rel=1e-9)
+
+
+def test_noisy_book_marks_are_off_the_model_on_its_noisy_nights_only(built: Built) -> None:
+    """On a noisy night every live mark of the noisy book's underlyings leaves the model; on others none does."""
+    desk = load_desk()
+    noisy_book = next(b for b in desk.books if b.marks == "noisy")
+    noisy = {(f.as_of, f.instrument_or_trade) for f in _faults(built, "noisy_marks")}
+    assert noisy and {f.book for f in _faults(built, "noisy_marks")} == {noisy_book.name}
+    for day, f in built.nights.items():
+        m = _state(f, day)
+        m = m[m["underlying"].isin(noisy_book.underlyings) & (m["tau"] > 0)]
+        price, spot = m["price"].to_numpy(), m["spot"].to_numpy()
+        gap = np.abs(price - _model(m))
+        for name in noisy_book.underlyings:
+            sel = (m["underlying"] == name).to_numpy()
+            if (day, name) in noisy:
+                assert np.median(gap[sel] / price[sel]) > 1e-4, (day, name)
+            else:  # rel 1e-9, plus the least time value a live mark keeps
+                assert np.all(gap[sel] <= 1e-9 * price[sel] + desk.min_time_value_share * spot[sel]), (day, name)
+
+
+def test_trading_activity_new_closed_expired_amended_and_listed(built: Built) -> None:
+    """Nights carry new trades (priced and unpriced), closes, expiries, amendments and new listings."""
+    s, days = built.summary, built.summary.dates
+    counts = [len(built.nights[d]["positions"]) for d in days]
+    assert (s.positions_min, s.positions_max) == (min(counts), max(counts)) and s.positions_min >= TARGET
+    assert s.positions_mean == pytest.approx(np.mean(counts), rel=1e-12)
+    seen = {"closed": 0, "expired": 0, "amended": 0, "unpriced": 0, "priced": 0, "listed": 0}
+    for prior, day in zip(days, days[1:], strict=False):
+        p0 = built.nights[prior]["positions"].set_index("trade_id")
+        p1 = built.nights[day]["positions"].set_index("trade_id")
+        expiry = built.nights[prior]["instruments"].set_index("instrument_id")["expiry"]
+        gone = p0.index.difference(p1.index)
+        expired = pd.to_datetime(expiry[p0.loc[gone, "instrument_id"]]).dt.date.to_numpy() < day
+        seen["expired"] += int(expired.sum())
+        seen["closed"] += int((~expired).sum())
+        both = p0.index.intersection(p1.index)
+        seen["amended"] += int((p0.loc[both, "quantity"] != p1.loc[both, "quantity"]).sum())
+        assert (p0.loc[both, ["instrument_id", "book", "trade_date"]] == p1.loc[both, ["instrument_id", "book",
+                                                                                          "trade_date"]]).all().all()
+        new = p1.loc[p1.index.difference(p0.index)]
+        assert (new["trade_date"] == day).all()
+        seen["unpriced"] += int(new["trade_price"].isna().sum())
+        seen["priced"] += int(new["trade_price"].notna().sum())
+        seen["listed"] += len(set(built.nights[day]["instruments"]["instrument_id"])
+                              - set(built.nights[prior]["instruments"]["instrument_id"]))
+    assert all(v > 0 for v in seen.values()), seen
+    assert (seen["expired"], seen["closed"], seen["amended"]) == (s.trades_expired, s.trades_closed, s.trades_amended)
+    assert (seen["priced"] + seen["unpriced"], seen["unpriced"]) == (s.trades_new, s.trades_new_unpriced)
+
+
+def test_short_vol_book_is_short_and_delta_neutral_book_offsets_its_delta(built: Built) -> None:
+    """The short-vol book holds only short options; the delta-neutral book's net delta is small against its gross."""
+    day = built.summary.dates[0]
+    f = built.nights[day]
+    pos = f["positions"]
+    assert (pos.loc[pos["book"] == "short-vol", "quantity"] < 0).all()
+    held = pos[pos["book"] == "delta-neutral"].merge(_state(f, day), on="instrument_id")
+    delta = bsm_greeks(held["spot"], held["strike"], held["tau"], held["implied_vol"].fillna(0.2), held["rate"],
+                       held["dividend_yield"], held["option_type"] == "call").delta
+    exposure = held["quantity"] * held["multiplier"] * delta * held["spot"]
+    by_und = exposure.groupby(held["underlying"])
+    assert (by_und.sum().abs() < 0.25 * exposure.abs().groupby(held["underlying"]).sum()).all()
+
+
+def test_same_seed_gives_identical_tables_and_files(tmp_path: Path) -> None:
+    """Two builds with one seed are equal table for table and byte for byte; another seed differs."""
+    kwargs = {"start": dt.date(2026, 3, 2), "business_days": 6, "positions_target": 300}
+    a = build_demo(tmp_path / "a", seed=11, **kwargs)
+    b = build_demo(tmp_path / "b", seed=11, **kwargs)
+    build_demo(tmp_path / "c", seed=12, **kwargs)
+    assert a.faults == b.faults and a.dates == b.dates
+    for day in a.dates:
+        for name in FILES:
+            path_a, path_b = (tmp_path / x / f"as_of={day}" / f"{name}.parquet" for x in ("a", "b"))
+            assert pq.read_table(path_a).equals(pq.read_table(path_b)), (day, name)
+            assert path_a.read_bytes() == path_b.read_bytes(), (day, name)
+    last = f"as_of={a.dates[-1]}/positions.parquet"
+    assert not pq.read_table(tmp_path / "a" / last).equals(pq.read_table(tmp_path / "c" / last))
+
+
+def test_refuses_a_folder_with_other_dates(tmp_path: Path) -> None:
+    """A root holding as_of folders outside the demo's dates is refused, naming the folder."""
+    (tmp_path / "as_of=2020-01-02").mkdir()
+    with pytest.raises(ValueError, match="as_of=2020-01-02"):
+        build_demo(tmp_path, business_days=5, positions_target=100)
+
+
+def test_bad_definitions_are_refused_naming_file_and_entry(tmp_path: Path) -> None:
+    """An unknown underlying in a book, or an unknown key, is refused with the file and the entry named."""
+    text = default_definition().read_text(encoding="utf-8")
+    bad_book = tmp_path / "bad_book.toml"
+    bad_book.write_text(text.replace('underlyings = ["DRVL", "PYNE"]', 'underlyings = ["DRVL", "NOPE"]'))
+    with pytest.raises(DeskDefinitionError, match=r"bad_book\.toml.*special-situations: unknown"):
+        load_desk(bad_book)
+    bad_key = tmp_path / "bad_key.toml"
+    bad_key.write_text(text.replace("daily_churn = 0.015", "daily_churn = 0.015\nchurn_daily = 1"))
+    with pytest.raises(DeskDefinitionError, match=r"bad_key\.toml \[trading\].*churn_daily"):
+        load_desk(bad_key)
+    shared = tmp_path / "shared.toml"
+    shared.write_text(text.replace('underlyings = ["ZMBK", "XOLT", "NIMR"]', 'underlyings = ["ZMBK", "KRV"]'))
+    with pytest.raises(DeskDefinitionError, match="frontier-stocks: a book with noisy marks must trade"):
+        load_desk(shared)
+
+
+def test_holidays_roll_off_weekends_and_expiries_are_business_day_fridays() -> None:
+    """Saturday holidays move to Friday, Sunday ones to Monday; expiries are third Fridays or the business day
+    before (common practice for listed monthly options, no source)."""
+    desk = load_desk()
+    hol = desk_holidays(desk, dt.date(2027, 1, 1), dt.date(2029, 12, 31))
+    assert dt.date(2027, 12, 31) in hol and dt.date(2028, 1, 1) not in hol      # 2028-01-01 is a Saturday
+    in_2025 = desk_holidays(desk, dt.date(2025, 1, 1), dt.date(2025, 12, 31))
+    assert dt.date(2025, 3, 17) in in_2025 and dt.date(2025, 3, 16) not in in_2025  # 2025-03-16 is a Sunday
+    expiries = monthly_expiries(desk, dt.date(2025, 1, 1), dt.date(2040, 12, 31)).astype(object)
+    all_hol = set(desk_holidays(desk, dt.date(2025, 1, 1), dt.date(2040, 12, 31)))
+    assert len(expiries) == 16 * 12
+    for day in expiries:
+        assert day.weekday() < 5 and day not in all_hol
+        third_friday = next(d for d in (day.replace(day=k) for k in range(15, 22)) if d.weekday() == 4)
+        assert day == third_friday or (third_friday in all_hol and day < third_friday)
+
+
+def test_market_moves_vol_against_spot_and_rates_a_little() -> None:
+    """Over a year: equity vol falls when spot rises (negative correlation); curves move by basis points a day."""
+    desk = load_desk()
+    dates = business_days(desk, dt.date(2025, 11, 3), 261)
+    market = simulate_market(desk, dates, np.random.default_rng(3))
+    returns = np.diff(np.log(market.spot), axis=0)
+    vol_moves = np.diff(np.log(market.atm_vol), axis=0)
+    for j, u in enumerate(desk.underlyings):
+        if u.kind != "fx":
+            assert np.corrcoef(returns[:, j], vol_moves[:, j])[0, 1] < -0.2, u.name
+    daily = np.abs(np.diff(market.zero_rates, axis=0))
+    assert 0 < daily.max() < 0.002 and np.median(daily) > 1e-6
+    assert np.all(market.fx_to_reporting[:, 0] == 1.0) and np.all(market.fx_to_reporting > 0)
+    gaps = np.diff(dates).astype(int)
+    assert set(gaps) >= {1, 3} and gaps.max() <= 5
