@@ -52,16 +52,19 @@ POSITIONS = {
 }
 
 
-def ql_option(inst: Inst, as_of: dt.date) -> ql.VanillaOption:
-    """QuantLib's analytic European option for ``inst`` on ``as_of`` (flat curves, ACT/365F)."""
+def ql_option(inst: Inst, as_of: dt.date, vol: float | None = None) -> ql.VanillaOption:
+    """QuantLib's analytic European option for ``inst`` on ``as_of`` (flat curves, ACT/365F).
+
+    ``vol`` overrides the date's vol (for finite differences in vol).
+    """
     today = ql.Date(as_of.day, as_of.month, as_of.year)
     ql.Settings.instance().evaluationDate = today
     dc = ql.Actual365Fixed()
+    vol = VOL[as_of][inst.underlying] if vol is None else vol
     spot = ql.QuoteHandle(ql.SimpleQuote(SPOT[as_of][inst.underlying]))
     rates = ql.YieldTermStructureHandle(ql.FlatForward(today, RATE[as_of][inst.currency], dc, ql.Continuous))
     divs = ql.YieldTermStructureHandle(ql.FlatForward(today, DIV[as_of][inst.underlying], dc, ql.Continuous))
-    vols = ql.BlackVolTermStructureHandle(ql.BlackConstantVol(today, ql.NullCalendar(), VOL[as_of][inst.underlying],
-                                                              dc))
+    vols = ql.BlackVolTermStructureHandle(ql.BlackConstantVol(today, ql.NullCalendar(), vol, dc))
     process = ql.BlackScholesMertonProcess(spot, divs, rates, vols)
     kind = ql.Option.Call if inst.option_type == "call" else ql.Option.Put
     expiry = ql.Date(inst.expiry.day, inst.expiry.month, inst.expiry.year)
