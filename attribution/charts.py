@@ -10,8 +10,10 @@ from __future__ import annotations
 
 import datetime as dt
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+
+import numpy as np
 
 MISSING = "—"  # shown where the archive holds no value (NULL)
 
@@ -21,12 +23,15 @@ def is_missing(value: float | None) -> bool:
     return value is None or value != value
 
 
+_SPECS = {d: f",.{d}f" for d in range(4)}
+
+
 def format_amount(value: float | None, decimals: int = 0) -> str:
     """Thousands separators, a leading minus for negatives, never ``-0``; MISSING for NULL."""
-    if is_missing(value):
+    if value is None or value != value:
         return MISSING
-    text = f"{value:,.{decimals}f}"
-    if text.startswith("-") and not text.strip("-0.,"):
+    text = format(value, _SPECS.get(decimals) or f",.{decimals}f")
+    if text[0] == "-" and not text.strip("-0.,"):
         return text[1:]
     return text
 
@@ -39,12 +44,12 @@ def format_percent(share: float | None, decimals: int = 1) -> str:
 
 
 def format_compact(value: float) -> str:
-    """Short axis label: ``-1.2m``, ``250k``, ``75``."""
+    """Short axis label: ``-1.25m``, ``250k``, ``75``."""
     size = abs(value)
     for bound, suffix in ((1e9, "bn"), (1e6, "m"), (1e3, "k")):
         if size >= bound:
             scaled = value / bound
-            text = f"{scaled:,.1f}".rstrip("0").rstrip(".")
+            text = f"{scaled:,.2f}".rstrip("0").rstrip(".")
             return ("0" if text in ("-0", "") else text) + suffix
     return format_amount(value)
 
@@ -61,21 +66,24 @@ def nice_ticks(low: float, high: float, count: int = 4) -> tuple[float, ...]:
     return tuple(k * step for k in range(first, last + 1))
 
 
-def _domain(values: Sequence[float]) -> tuple[float, float]:
-    """[min, max] of the values and zero, widened when flat so a scale never divides by zero."""
-    finite = [v for v in values if math.isfinite(v)]
-    low, high = min([0.0, *finite]), max([0.0, *finite])
+def _domain(values: Sequence[float] | np.ndarray) -> tuple[float, float]:
+    """[min, max] of the finite values and zero, widened when flat so a scale never divides by zero."""
+    array = np.asarray(values, dtype=float)
+    finite = array[np.isfinite(array)]
+    low = min(0.0, float(finite.min())) if finite.size else 0.0
+    high = max(0.0, float(finite.max())) if finite.size else 0.0
     if high - low < 1e-12:
         return low - 1.0, high + 1.0
     pad = 0.04 * (high - low)
     return (low - pad if low < 0 else low), (high + pad if high > 0 else high)
 
 
-def _scale(low: float, high: float, start: float, end: float):
+def _scale(low: float, high: float, start: float, end: float) -> Callable[[float], float]:
+    """Linear map from [low, high] to pixels [start, end], rounded to a tenth of a pixel."""
     span = high - low
 
     def to_pixel(value: float) -> float:
-        return start + (value - low) / span * (end - start)
+        return round(start + (value - low) / span * (end - start), 1)
     return to_pixel
 
 
@@ -133,22 +141,22 @@ def waterfall(steps: Sequence[tuple[str, str, float | None, str]], total: tuple[
         ends.append(running)
     total_value = total[2]
     domain = _domain([*ends, 0.0 if is_missing(total_value) else float(total_value)])
-    left, right, top = 170.0, width - 110.0, 22.0
+    left, right, top = 118.0, width - 96.0, 22.0
     to_x = _scale(*domain, left, right)
     bar_height = row_height * 0.66
     laid: list[WaterfallStep] = []
     for row, (key, label, value, note) in enumerate(steps):
         a, b = to_x(ends[row]), to_x(ends[row + 1])
-        laid.append(WaterfallStep(key, label, value, format_amount(value), min(a, b), abs(b - a),
-                                  top + row * row_height, False, (value or 0.0) < 0, note))
+        laid.append(WaterfallStep(key, label, value, format_amount(value), min(a, b), round(abs(b - a), 1),
+                                  round(top + row * row_height, 1), False, (value or 0.0) < 0, note))
     key, label, value = total
     a, b = to_x(0.0), to_x(0.0 if is_missing(value) else float(value))
-    laid.append(WaterfallStep(key, label, value, format_amount(value), min(a, b), abs(b - a),
-                              top + len(steps) * row_height, True, (value or 0.0) < 0, ""))
+    laid.append(WaterfallStep(key, label, value, format_amount(value), min(a, b), round(abs(b - a), 1),
+                              round(top + len(steps) * row_height, 1), True, (value or 0.0) < 0, ""))
     bottom = top + (len(steps) + 1) * row_height
     ticks = tuple(Tick(to_x(t), format_compact(t)) for t in nice_ticks(*domain))
-    return Waterfall(width, bottom + 8.0, left, right, top, bottom, to_x(0.0), row_height, bar_height, ticks,
-                     tuple(laid))
+    return Waterfall(width, round(bottom + 8.0, 1), left, right, top, round(bottom, 1), to_x(0.0), row_height,
+                     round(bar_height, 1), ticks, tuple(laid))
 
 
 @dataclass(frozen=True, slots=True)
@@ -163,18 +171,11 @@ class Series:
 
 
 @dataclass(frozen=True, slots=True)
-class Bar:
-    """A thin vertical bar of a line chart (one night)."""
-
-    x: float
-    y: float
-    width: float
-    height: float
-
-
-@dataclass(frozen=True, slots=True)
 class LineChart:
-    """Lines over dates with a zero line, horizontal gridlines and first/last date labels."""
+    """Lines over nights with a zero line, horizontal gridlines, first/last date labels and optional bars.
+
+    ``bars_path`` is SVG path data (numbers and path commands only) drawing one thin bar per night.
+    """
 
     width: float
     height: float
@@ -187,36 +188,45 @@ class LineChart:
     first_date: str
     last_date: str
     series: tuple[Series, ...]
-    bars: tuple[Bar, ...]
+    bars_path: str
     nights: int
 
 
-def line_chart(dates: Sequence[dt.date], lines: Sequence[tuple[str, str, Sequence[float]]],
-               bars: Sequence[float] = (), width: float = 520.0, height: float = 190.0) -> LineChart:
+def _pixels(*columns: np.ndarray) -> list[int]:
+    """Interleave coordinate columns as whole pixels: x0, y0, x1, y1, ..."""
+    return np.rint(np.column_stack(columns)).astype(np.int64).ravel().tolist()
+
+
+def line_chart(dates: Sequence[dt.date], lines: Sequence[tuple[str, str, Sequence[float] | np.ndarray]],
+               bars: Sequence[float] | np.ndarray = (), width: float = 520.0, height: float = 190.0) -> LineChart:
     """Plot each (name, style, values) line against night index; optional bars share the y scale."""
     count = len(dates)
-    every = [float(v) for _, _, values in lines for v in values] + [float(v) for v in bars]
-    domain = _domain(every)
+    arrays = [(name, style, np.asarray(values, dtype=float)) for name, style, values in lines]
+    bar_values = np.asarray(bars, dtype=float)
+    low, high = _domain(np.concatenate([a for _, _, a in arrays] + [bar_values]))
     left, right, top, bottom = 58.0, width - 12.0, 10.0, height - 24.0
-    to_y = _scale(*domain, bottom, top)
-    step = (right - left) / max(count - 1, 1)
-
-    def x_at(i: int) -> float:
-        return left + (i * step if count > 1 else (right - left) / 2.0)
+    per_unit = (bottom - top) / (high - low)
+    xs = left + np.arange(count) * (right - left) / (count - 1) if count > 1 else np.full(count, (left + right) / 2)
     series = []
-    for name, style, values in lines:
-        coords = [(x_at(i), to_y(float(v))) for i, v in enumerate(values) if math.isfinite(float(v))]
-        points = " ".join(f"{x:.1f},{y:.1f}" for x, y in coords)
-        last = coords[-1] if coords else (left, to_y(0.0))
-        series.append(Series(name, style, points, last[0], last[1]))
-    zero = to_y(0.0)
-    bar_width = max(min(step * 0.6, 8.0), 1.0)
-    drawn = tuple(Bar(x_at(i) - bar_width / 2.0, min(to_y(v), zero), bar_width, abs(to_y(v) - zero))
-                  for i, v in enumerate(float(b) for b in bars) if math.isfinite(v))
-    ticks = tuple(Tick(to_y(t), format_compact(t)) for t in nice_ticks(*domain))
+    for name, style, values in arrays:
+        keep = np.isfinite(values)
+        px, py = xs[keep], bottom - (values[keep] - low) * per_unit
+        last = (round(float(px[-1]), 1), round(float(py[-1]), 1)) if px.size else (left, bottom)
+        series.append(Series(name, style, ",".join(map(str, _pixels(px, py))), *last))
+    zero = round(bottom - (0.0 - low) * per_unit, 1)
+    path = ""
+    if bar_values.size:
+        half = max(min((right - left) / max(count - 1, 1) * 0.3, 4.0), 0.5)
+        keep = np.isfinite(bar_values)
+        tops = bottom - (bar_values[keep] - low) * per_unit
+        base = np.full(tops.shape, zero)
+        coords = np.rint(np.column_stack([xs[keep] - half, base, tops, xs[keep] + half])).astype(np.int64).tolist()
+        path = "".join([f"M{a} {b}V{c}H{d}V{b}z" for a, b, c, d in coords])
+    ticks = tuple(Tick(round(bottom - (t - low) * per_unit, 1), format_compact(t)) for t in nice_ticks(low, high))
     first = dates[0].isoformat() if count else ""
-    last = dates[-1].isoformat() if count else ""
-    return LineChart(width, height, left, right, top, bottom, zero, ticks, first, last, tuple(series), drawn, count)
+    last_date = dates[-1].isoformat() if count else ""
+    return LineChart(width, height, left, right, top, bottom, zero, ticks, first, last_date, tuple(series), path,
+                     count)
 
 
 @dataclass(frozen=True, slots=True)
@@ -243,6 +253,6 @@ def pair_bars(pairs: Sequence[tuple[float | None, float | None]], width: float =
     for first, second in pairs:
         a = 0.0 if is_missing(first) else float(first) * per_unit
         b = 0.0 if is_missing(second) else float(second) * per_unit
-        out.append(PairBar(min(zero, zero + a), abs(a), min(zero, zero + b), abs(b), zero,
-                           is_missing(first), is_missing(second)))
+        out.append(PairBar(round(min(zero, zero + a), 1), round(abs(a), 1), round(min(zero, zero + b), 1),
+                           round(abs(b), 1), zero, is_missing(first), is_missing(second)))
     return tuple(out)
