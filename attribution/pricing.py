@@ -17,10 +17,18 @@ value, delta is the step (one half exactly at the strike) and every other greek 
 
 Invalid inputs are refused here, never clamped: :func:`invalid_reasons` says why for each
 element, and :func:`bsm_price` / :func:`bsm_greeks` raise :class:`InvalidPricingInput`.
+
+Speed: the kernels work on cache-sized chunks of :data:`CHUNK_OPTIONS` options, so that every
+intermediate array stays in the CPU cache, and spread the chunks of a large call over ``threads``
+threads (numpy and scipy release the GIL inside their loops). Every option is computed by the same
+operations whatever the chunking or the number of threads, so results do not depend on either.
 """
 
 from __future__ import annotations
 
+import os
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -29,6 +37,8 @@ from scipy.special import ndtr
 
 FloatArray = NDArray[np.float64]
 _INV_SQRT_2PI = 1.0 / np.sqrt(2.0 * np.pi)
+CHUNK_OPTIONS = 4096  # options computed together: keeps a chunk's intermediate arrays in the CPU cache
+MIN_OPTIONS_PER_THREAD = 16 * CHUNK_OPTIONS  # below this, a thread costs more than it saves
 
 
 class InvalidPricingInput(ValueError):
@@ -91,16 +101,57 @@ def invalid_reasons(
     return reasons
 
 
-def _require_valid(*inputs: ArrayLike) -> tuple[FloatArray, ...]:
+def _all_valid(s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray, q: FloatArray) -> bool:
+    """True when every input is valid; exact, since min and max propagate NaN and see any infinity."""
+    if s.size == 0:
+        return True
+    low = np.array([s.min(), k.min(), t.min(), v.min(), r.min(), q.min()])
+    high = np.array([s.max(), k.max(), t.max(), v.max(), r.max(), q.max()])
+    finite = bool(np.isfinite(low).all() and np.isfinite(high).all())
+    return finite and low[0] > 0 and low[1] > 0 and low[2] >= 0 and low[3] >= 0
+
+
+def _flatten(*inputs: ArrayLike) -> tuple[tuple[int, ...], tuple[FloatArray, ...]]:
+    """Broadcast shape (at least 1-d) and the inputs broadcast to it as flat float arrays (views when possible)."""
     arrays = np.broadcast_arrays(*(np.asarray(a, dtype=float) for a in inputs))
-    reasons = invalid_reasons(*arrays[:6])
-    bad = reasons != ""
-    if bad.any():
-        first = int(np.flatnonzero(bad.ravel())[0])
+    return np.atleast_1d(arrays[0]).shape, tuple(a.reshape(-1) for a in arrays)
+
+
+def _require_valid(*inputs: ArrayLike) -> tuple[tuple[int, ...], tuple[FloatArray, ...]]:
+    """Broadcast shape (at least 1-d) and the inputs as flat float arrays; raises on the first invalid option."""
+    shape, flat = _flatten(*inputs)
+    if not _all_valid(*flat[:6]):
+        reasons = invalid_reasons(*flat[:6])
+        bad = reasons != ""
+        first = int(np.flatnonzero(bad)[0])
         raise InvalidPricingInput(
-            f"{int(bad.sum())} invalid pricing input(s); first at index {first}: {reasons.ravel()[first]}"
+            f"{int(bad.sum())} invalid pricing input(s); first at index {first}: {reasons[first]}"
         )
-    return tuple(np.atleast_1d(np.array(a, dtype=float)) for a in arrays)
+    return shape, flat
+
+
+def _available_cores() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # platforms without CPU affinity
+        return os.cpu_count() or 1
+
+
+def _for_each_chunk(n: int, block: Callable[[slice], None], threads: int | None) -> None:
+    """Call ``block`` on consecutive chunks of ``range(n)``; large calls split into contiguous runs over threads."""
+    if threads is not None and threads < 1:
+        raise ValueError(f"threads must be >= 1 or None (all available cores), got {threads}")
+    chunks = [slice(lo, min(lo + CHUNK_OPTIONS, n)) for lo in range(0, n, CHUNK_OPTIONS)]
+    workers = min(threads or _available_cores(), n // MIN_OPTIONS_PER_THREAD)
+    if workers <= 1:
+        for chunk in chunks:
+            block(chunk)
+        return
+    per_worker = -(-len(chunks) // workers)
+    runs = [chunks[i:i + per_worker] for i in range(0, len(chunks), per_worker)]
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        for done in [pool.submit(lambda run: [block(chunk) for chunk in run], run) for run in runs]:
+            done.result()
 
 
 def d1_d2(
@@ -113,75 +164,120 @@ def d1_d2(
     return d1, d1 - vol_sqrt_tau, vol_sqrt_tau
 
 
+def _limits(s: FloatArray, k: FloatArray, t: FloatArray, r: FloatArray, q: FloatArray,
+            cp: FloatArray) -> tuple[FloatArray, ...]:
+    """Price and greeks (Greeks field order) at tau = 0 or vol = 0, where the option is its (forward) intrinsic."""
+    disc_q = np.exp(-q * t)
+    disc_r = np.exp(-r * t)
+    forward_intrinsic = cp * (s * disc_q - k * disc_r)
+    itm = (forward_intrinsic > 0).astype(float)
+    expired = t <= 0
+    carried = np.where(expired, 0.0, itm)  # vol = 0 with time left: the discounted forward's sensitivities
+    delta = np.where((s == k) & expired, 0.5 * cp, cp * disc_q * itm)
+    theta = carried * cp * (q * s * disc_q - r * k * disc_r)
+    rho = carried * cp * t * k * disc_r
+    dividend_rho = -carried * cp * t * s * disc_q
+    zeros = np.zeros_like(s)
+    return np.maximum(forward_intrinsic, 0.0), delta, zeros, zeros, theta, rho, dividend_rho, zeros, zeros
+
+
+def _live_inputs(t: FloatArray, v: FloatArray) -> tuple[NDArray[np.intp] | None, FloatArray, FloatArray]:
+    """Indices of the options at a limit (None when there are none) and tau, vol with 1.0 in their place."""
+    if t.min() > 0 and v.min() > 0:
+        return None, t, v
+    live = (t > 0) & (v > 0)
+    return np.flatnonzero(~live), np.where(live, t, 1.0), np.where(live, v, 1.0)
+
+
 def bsm_price(
     spot: ArrayLike, strike: ArrayLike, tau_years: ArrayLike, vol: ArrayLike,
-    rate: ArrayLike, div_yield: ArrayLike, is_call: ArrayLike,
+    rate: ArrayLike, div_yield: ArrayLike, is_call: ArrayLike, *, threads: int | None = None,
 ) -> FloatArray:
-    """Price per unit of underlying. Cheaper than :func:`bsm_greeks` when only the price is needed."""
-    s, k, t, v, r, q, c = _require_valid(spot, strike, tau_years, vol, rate, div_yield, is_call)
-    return price_unchecked(s, k, t, v, r, q, np.where(c != 0, 1.0, -1.0))
+    """Price per unit of underlying. Cheaper than :func:`bsm_greeks` when only the price is needed.
+
+    ``threads``: at most this many threads for a large call (None: every available core).
+    """
+    shape, (s, k, t, v, r, q, c) = _require_valid(spot, strike, tau_years, vol, rate, div_yield, is_call)
+    return price_unchecked(s, k, t, v, r, q, np.where(c != 0, 1.0, -1.0), threads=threads).reshape(shape)
 
 
 def price_unchecked(s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray,
-           q: FloatArray, cp: FloatArray) -> FloatArray:
-    """Price of validated, broadcast 1-d float arrays; ``cp`` is +1 call / -1 put. No checks: the hot path."""
-    disc_q = np.exp(-q * t)
-    disc_r = np.exp(-r * t)
-    live = (t > 0) & (v > 0)
-    out = np.maximum(cp * (s * disc_q - k * disc_r), 0.0)  # tau = 0: intrinsic; vol = 0: forward intrinsic
-    if live.any():
-        idx = np.flatnonzero(live)
-        d1, d2, _ = d1_d2(s[idx], k[idx], t[idx], v[idx], r[idx], q[idx])
-        sign = cp[idx]
-        out[idx] = sign * (s[idx] * disc_q[idx] * ndtr(sign * d1) - k[idx] * disc_r[idx] * ndtr(sign * d2))
-    return out
+                    q: FloatArray, cp: FloatArray, *, threads: int | None = None) -> FloatArray:
+    """Price of validated float arrays of one shape; ``cp`` is +1 call / -1 put. No checks: the hot path."""
+    shape, (s, k, t, v, r, q, cp) = _flatten(s, k, t, v, r, q, cp)
+    out = np.empty(s.size)
+
+    def block(c: slice) -> None:
+        dead, tc, vc = _live_inputs(t[c], v[c])
+        minus_t = -tc
+        disc_q = np.exp(q[c] * minus_t)
+        disc_r = np.exp(r[c] * minus_t)
+        d1, d2, _ = d1_d2(s[c], k[c], tc, vc, r[c], q[c])
+        sign = cp[c]
+        out[c] = sign * (s[c] * disc_q * ndtr(sign * d1) - k[c] * disc_r * ndtr(sign * d2))
+        if dead is not None:  # tau = 0: intrinsic; vol = 0: discounted forward intrinsic
+            lo = c.start
+            out[lo + dead] = _limits(*(a[c][dead] for a in (s, k, t, r, q, cp)))[0]
+
+    _for_each_chunk(s.size, block, threads)
+    return out.reshape(shape)
 
 
 def bsm_greeks(
     spot: ArrayLike, strike: ArrayLike, tau_years: ArrayLike, vol: ArrayLike,
-    rate: ArrayLike, div_yield: ArrayLike, is_call: ArrayLike,
+    rate: ArrayLike, div_yield: ArrayLike, is_call: ArrayLike, *, threads: int | None = None,
 ) -> Greeks:
-    """Price and the full greek set (units in the module docstring) for every option."""
-    s, k, t, v, r, q, c = _require_valid(spot, strike, tau_years, vol, rate, div_yield, is_call)
-    return greeks_unchecked(s, k, t, v, r, q, np.where(c != 0, 1.0, -1.0))
+    """Price and the full greek set (units in the module docstring) for every option.
+
+    ``threads``: at most this many threads for a large call (None: every available core).
+    """
+    shape, (s, k, t, v, r, q, c) = _require_valid(spot, strike, tau_years, vol, rate, div_yield, is_call)
+    g = greeks_unchecked(s, k, t, v, r, q, np.where(c != 0, 1.0, -1.0), threads=threads)
+    return Greeks(*(a.reshape(shape) for a in (getattr(g, name) for name in Greeks.__slots__)))
 
 
 def greeks_unchecked(s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray,
-            q: FloatArray, cp: FloatArray) -> Greeks:
-    shape = s.shape
-    disc_q = np.exp(-q * t)
-    disc_r = np.exp(-r * t)
-    fwd_intrinsic = cp * (s * disc_q - k * disc_r)
-    zeros = np.zeros(shape)
+                     q: FloatArray, cp: FloatArray, *, threads: int | None = None) -> Greeks:
+    """Price and greeks of validated float arrays of one shape; ``cp`` is +1 call / -1 put. No checks."""
+    shape, (s, k, t, v, r, q, cp) = _flatten(s, k, t, v, r, q, cp)
+    out = tuple(np.empty(s.size) for _ in Greeks.__slots__)
+    _for_each_chunk(s.size, lambda c: _greeks_block(s[c], k[c], t[c], v[c], r[c], q[c], cp[c],
+                                                    tuple(a[c] for a in out)), threads)
+    return Greeks(*(a.reshape(shape) for a in out))
 
-    # Limits first (tau = 0, or vol = 0 with time left), then the live options overwrite them.
-    expired = t <= 0
-    itm = (fwd_intrinsic > 0).astype(float)
-    at_strike = (s == k) & expired
-    price = np.maximum(fwd_intrinsic, 0.0)
-    delta = np.where(at_strike, 0.5 * cp, cp * disc_q * itm)
-    dead = expired.astype(float)
-    theta = (1.0 - dead) * itm * cp * (q * s * disc_q - r * k * disc_r)
-    rho = (1.0 - dead) * itm * cp * t * k * disc_r
-    dividend_rho = -(1.0 - dead) * itm * cp * t * s * disc_q
-    gamma, vega, vanna, volga = zeros.copy(), zeros.copy(), zeros.copy(), zeros.copy()
 
-    live = (t > 0) & (v > 0)
-    if live.any():
-        i = np.flatnonzero(live)
-        si, ki, ti, vi, ri, qi, sign = s[i], k[i], t[i], v[i], r[i], q[i], cp[i]
-        dq, dr = disc_q[i], disc_r[i]
-        d1, d2, vol_sqrt_tau = d1_d2(si, ki, ti, vi, ri, qi)
-        n_d1 = normal_pdf(d1)
-        cdf_d1, cdf_d2 = ndtr(sign * d1), ndtr(sign * d2)
-        spot_pdf = si * dq * n_d1
-        price[i] = sign * (si * dq * cdf_d1 - ki * dr * cdf_d2)
-        delta[i] = sign * dq * cdf_d1
-        gamma[i] = dq * n_d1 / (si * vol_sqrt_tau)
-        vega[i] = spot_pdf * np.sqrt(ti)
-        theta[i] = -spot_pdf * vi / (2.0 * np.sqrt(ti)) + sign * (qi * si * dq * cdf_d1 - ri * ki * dr * cdf_d2)
-        rho[i] = sign * ti * ki * dr * cdf_d2
-        dividend_rho[i] = -sign * ti * si * dq * cdf_d1
-        vanna[i] = -dq * n_d1 * d2 / vi
-        volga[i] = vega[i] * d1 * d2 / vi
-    return Greeks(price, delta, gamma, vega, theta, rho, dividend_rho, vanna, volga)
+def _greeks_block(s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray, q: FloatArray,
+                  cp: FloatArray, out: tuple[FloatArray, ...]) -> None:
+    """Fill ``out`` (Greeks field order) for one chunk; live formulas first, then the limits overwrite."""
+    price, delta, gamma, vega, theta, rho, dividend_rho, vanna, volga = out
+    dead, tc, vc = _live_inputs(t, v)
+    minus_t = -tc
+    disc_q = np.exp(q * minus_t)
+    disc_r = np.exp(r * minus_t)
+    d1, d2, vol_sqrt_tau = d1_d2(s, k, tc, vc, r, q)
+    sqrt_t = np.sqrt(tc)
+    cdf_d1 = ndtr(cp * d1)
+    s_cdf = s * disc_q * cdf_d1  # S e^-qT N(cp d1)
+    k_cdf = k * disc_r * ndtr(cp * d2)  # K e^-rT N(cp d2)
+    np.subtract(s_cdf, k_cdf, out=price)
+    price *= cp
+    np.multiply(cp * disc_q, cdf_d1, out=delta)
+    dq_pdf = disc_q * normal_pdf(d1)
+    np.divide(dq_pdf, s * vol_sqrt_tau, out=gamma)
+    spot_pdf = s * dq_pdf
+    np.multiply(spot_pdf, sqrt_t, out=vega)
+    np.multiply(q, s_cdf, out=theta)
+    theta -= r * k_cdf
+    theta *= cp
+    theta -= spot_pdf * vc / (2.0 * sqrt_t)
+    cp_t = cp * tc
+    np.multiply(cp_t, k_cdf, out=rho)
+    np.multiply(-cp_t, s_cdf, out=dividend_rho)
+    np.multiply(dq_pdf, d2, out=vanna)
+    vanna /= -vc
+    np.multiply(vega, d1, out=volga)
+    volga *= d2
+    volga /= vc
+    if dead is not None:
+        for target, value in zip(out, _limits(s[dead], k[dead], t[dead], r[dead], q[dead], cp[dead]), strict=True):
+            target[dead] = value
