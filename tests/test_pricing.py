@@ -262,20 +262,54 @@ def test_put_call_parity_for_price_and_greeks(make_options) -> None:
         assert_allclose(getattr(call, same), getattr(put, same), rtol=1e-12, atol=0.0, err_msg=same)
 
 
+def _options_with_limits(make_options, n: int, seed: int) -> tuple[np.ndarray, ...]:
+    """Random options with expired ones, zero-vol ones and expired-at-strike ones scattered over the array."""
+    s, k, t, v, r, q, c = (a.copy() for a in make_options(n, seed).args())
+    t[::97] = 0.0           # expired
+    v[13::101] = 0.0        # no volatility left
+    s[::194] = k[::194]     # expired exactly at the strike
+    return s, k, t, v, r, q, c
+
+
 def test_vectorised_results_equal_a_scalar_loop(make_options) -> None:
-    """One call on distinct options (limits included) equals option-by-option calls, to rtol 1e-13."""
-    o = make_options(300, 5)
-    s, k, t, v, r, q, c = (a.copy() for a in o.args())
-    t[:20] = 0.0                 # expired
-    v[20:40] = 0.0               # no volatility left
-    s[:10] = k[:10]              # expired exactly at the strike
+    """One call on 10,000 distinct options (limits included) equals option-by-option calls, to rtol 1e-13."""
+    s, k, t, v, r, q, c = _options_with_limits(make_options, 10_000, 5)
     vector = bsm_greeks(s, k, t, v, r, q, c)
-    for j in range(s.size):
+    picks = np.union1d(np.arange(0, s.size, 37), np.flatnonzero((t == 0) | (v == 0))[::3])
+    for j in picks:
         single = bsm_greeks(s[j], k[j], t[j], v[j], r[j], q[j], c[j])
         for name in Greeks.__slots__:
             assert_allclose(getattr(vector, name)[j], getattr(single, name)[0], rtol=1e-13,
                             atol=1e-13 * _greek_unit(name, s[j:j + 1], k[j:j + 1])[0], err_msg=f"{name} at {j}")
     assert_allclose(bsm_price(s, k, t, v, r, q, c), vector.price, rtol=1e-13, atol=1e-13 * np.maximum(s, k).max())
+
+
+def test_results_do_not_depend_on_the_number_of_threads(make_options) -> None:
+    """150,000 options with scattered limits: one thread and two threads give bit-identical arrays."""
+    args = _options_with_limits(make_options, 150_000, 6)
+    one, two = bsm_greeks(*args, threads=1), bsm_greeks(*args, threads=2)
+    for name in Greeks.__slots__:
+        assert_array_equal(getattr(one, name), getattr(two, name), err_msg=name)
+    assert_array_equal(bsm_price(*args, threads=1), bsm_price(*args, threads=2))
+    assert_array_equal(bsm_price(*args, threads=2), two.price)
+
+
+def test_shapes_broadcast_and_are_kept() -> None:
+    """Inputs broadcast together; a 2-d grid keeps its shape, a scalar gives one element, empty gives empty."""
+    spot = np.array([[90.0], [100.0], [110.0]])
+    grid = bsm_greeks(spot, [95.0, 105.0], 0.5, 0.2, 0.03, 0.01, True)
+    flat = bsm_greeks(np.repeat(spot.ravel(), 2), np.tile([95.0, 105.0], 3), 0.5, 0.2, 0.03, 0.01, True)
+    for name in Greeks.__slots__:
+        assert getattr(grid, name).shape == (3, 2)
+        assert_array_equal(getattr(grid, name).ravel(), getattr(flat, name), err_msg=name)
+    assert bsm_price(100.0, 100.0, 0.5, 0.2, 0.03, 0.01, False).shape == (1,)
+    assert bsm_price([], [], [], [], [], [], []).shape == (0,)
+
+
+def test_threads_must_be_positive() -> None:
+    """threads=0 is refused with a ValueError (None means every available core)."""
+    with pytest.raises(ValueError, match="threads"):
+        bsm_greeks(100.0, 100.0, 0.5, 0.2, 0.03, 0.01, True, threads=0)
 
 
 def _quiet_greeks(*args) -> Greeks:
