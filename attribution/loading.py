@@ -93,11 +93,25 @@ def _kind_ok(kind: str, arrow_type: pa.DataType) -> bool:
     return pa.types.is_date(arrow_type) or pa.types.is_null(arrow_type)
 
 
-def _to_frame(table: pa.Table, columns: tuple[tuple[str, str], ...]) -> pd.DataFrame:
-    target = {STRING: pa.string(), FLOAT: pa.float64(), DATE: pa.date32()}
+def _cast(column: pa.ChunkedArray, kind: str) -> pa.ChunkedArray:
+    """The column in the contract's type; integers beyond 2**53 round to the nearest float64.
+
+    Such a value is far above any quantity or price the row rules accept, so the row is still
+    rejected on its value instead of the whole file failing on the conversion.
+    """
+    target = {STRING: pa.string(), FLOAT: pa.float64(), DATE: pa.date32()}[kind]
+    if kind == FLOAT and pa.types.is_integer(column.type):
+        return column.cast(target, safe=False)
+    return column.cast(target)
+
+
+def _to_frame(path: Path, table: pa.Table, columns: tuple[tuple[str, str], ...]) -> pd.DataFrame:
     data: dict[str, pd.Series] = {}
     for name, kind in columns:
-        values = table.column(name).cast(target[kind]).to_numpy(zero_copy_only=False)
+        try:
+            values = _cast(table.column(name), kind).to_numpy(zero_copy_only=False)
+        except pa.ArrowException as exc:
+            raise InputFileError(f"{path}: column '{name}' cannot be read as {kind} ({exc})") from exc
         data[name] = pd.Series(values, dtype=object if kind == STRING else None)
     return pd.DataFrame(data, index=pd.RangeIndex(table.num_rows))
 
@@ -121,7 +135,7 @@ def read_file(folder: Path, file: str) -> tuple[pd.DataFrame | None, str]:
         arrow_type = table.schema.field(name).type
         if not _kind_ok(kind, arrow_type):
             raise InputFileError(f"{path}: column '{name}' has type {arrow_type}, the contract wants {kind}")
-    return _to_frame(table, columns), hashlib.sha256(raw).hexdigest()
+    return _to_frame(path, table, columns), hashlib.sha256(raw).hexdigest()
 
 
 def read_night(data_root: Path, as_of: dt.date) -> RawNight:
