@@ -34,11 +34,15 @@ from numpy.typing import NDArray
 from attribution.demo_market import (
     DAYS_PER_YEAR,
     DeskSpec,
+    ListedInstruments,
     MarketPaths,
     default_definition,
     desk_holidays,
+    list_instruments,
     load_desk,
     monthly_expiries,
+    nearest_strike,
+    series_key,
     simulate_market,
     smile_vol,
     zero_rate,
@@ -115,17 +119,6 @@ class DemoSummary:
 
 
 @dataclass(slots=True)
-class _Instruments:
-    """Every instrument listed so far (append-only; the row is the instrument's number)."""
-
-    und: IntArray = field(default_factory=lambda: np.zeros(0, np.int64))
-    is_call: NDArray[np.bool_] = field(default_factory=lambda: np.zeros(0, bool))
-    strike: FloatArray = field(default_factory=lambda: np.zeros(0))
-    expiry: NDArray[np.datetime64] = field(default_factory=lambda: np.zeros(0, "datetime64[D]"))
-    null_vol: NDArray[np.bool_] = field(default_factory=lambda: np.zeros(0, bool))
-
-
-@dataclass(slots=True)
 class _Trades:
     """Every trade booked so far (append-only) and the rows held tonight."""
 
@@ -174,72 +167,7 @@ class _Pool:
     weight: FloatArray
 
 
-def _series(und: IntArray, expiry: NDArray[np.datetime64]) -> IntArray:
-    return expiry.astype(np.int64) * 4096 + und
-
-
-def _nearest(series: IntArray, log_strike: FloatArray, q_series: IntArray, q_log_strike: FloatArray) -> IntArray:
-    """Index of the nearest strike of the same series for every query, -1 where the series is empty."""
-    best = np.full(q_series.shape, -1, dtype=np.int64)
-    if series.size == 0:
-        return best
-    order = np.lexsort((log_strike, series))
-    k_sorted = log_strike[order]
-    uniq, rank = np.unique(series[order], return_inverse=True)
-    q_rank = np.minimum(np.searchsorted(uniq, q_series), uniq.size - 1)
-    present = uniq[q_rank] == q_series
-    pos = np.searchsorted(rank * 100.0 + k_sorted, q_rank * 100.0 + q_log_strike)  # |ln K| < 50: series apart
-    gap = np.full(q_series.shape, np.inf)
-    for cand in (pos - 1, pos):
-        c = np.clip(cand, 0, order.size - 1)
-        ok = present & (cand >= 0) & (cand < order.size) & (rank[c] == q_rank)
-        dist = np.where(ok, np.abs(k_sorted[c] - q_log_strike), np.inf)
-        better = dist < gap
-        best, gap = np.where(better, order[c], best), np.where(better, dist, gap)
-    return best
-
-
-def _strike_step(spot: FloatArray) -> FloatArray:
-    """A round strike spacing near 1 % of spot: 1, 2 or 5 times a power of ten."""
-    base = 0.01 * spot
-    mag = 10.0 ** np.floor(np.log10(base))
-    return mag * np.where(base / mag < 2, 1.0, np.where(base / mag < 5, 2.0, 5.0))
-
-
-def _list(desk: DeskSpec, market: MarketPaths, d: int, store: _Instruments, expiries: NDArray[np.datetime64],
-          clean: NDArray[np.bool_], rng: np.random.Generator) -> None:
-    """List the expiries in the window and the grid strikes not yet covered by a listed strike."""
-    day, tr = market.dates[d], desk.trading
-    ahead = expiries[expiries > day]
-    quarterly = ahead[(ahead <= day + tr.quarterly_horizon_days) & (ahead.astype("datetime64[M]").astype(int) % 3 == 2)]
-    window = np.union1d(ahead[: tr.monthly_expiries], quarterly)
-    grid = np.array(tr.strike_grid_sd)
-    tau = (window - day).astype(float) / DAYS_PER_YEAR
-    sd = market.atm_vol[d][:, None] * np.sqrt(np.maximum(tau, 1.0 / 12.0))[None, :]
-    step = _strike_step(market.spot[d])[:, None, None]
-    strike = np.round(np.round(market.spot[d][:, None, None] * np.exp(grid * sd[:, :, None]) / step) * step, 8)
-    und, exp_idx, _ = np.indices(strike.shape).reshape(3, -1)
-    strike, sd_c, expiry = strike.ravel(), sd[und, exp_idx], window[exp_idx]
-    series = _series(und, expiry)
-    _, first = np.unique(np.stack([series, np.round(strike * 1e6).astype(np.int64)]), axis=1, return_index=True)
-    keep = np.sort(first)
-    keep = keep[strike[keep] > 0]
-    calls = np.flatnonzero(store.is_call & (store.expiry >= day))
-    near = _nearest(_series(store.und[calls], store.expiry[calls]), np.log(store.strike[calls]),
-                    series[keep], np.log(strike[keep]))
-    listed = np.log(np.append(store.strike[calls], 1.0))[near]  # near = -1 (nothing listed) reads the dummy
-    gap = np.where(near >= 0, np.abs(np.log(strike[keep]) - listed), np.inf)
-    new = keep[gap > 0.75 * np.min(np.diff(np.unique(grid))) * sd_c[keep]]
-    n = new.size
-    store.und = np.concatenate([store.und, und[new], und[new]])
-    store.is_call = np.concatenate([store.is_call, np.ones(n, bool), np.zeros(n, bool)])
-    store.strike = np.concatenate([store.strike, strike[new], strike[new]])
-    store.expiry = np.concatenate([store.expiry, expiry[new], expiry[new]])
-    store.null_vol = np.concatenate([store.null_vol,
-                                     (rng.random(2 * n) < tr.null_vol_share) & np.tile(clean[und[new]], 2)])
-
-
-def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: _Instruments) -> tuple[_Night, _Pool]:
+def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments) -> tuple[_Night, _Pool]:
     """Clean marks of every live instrument tonight, and the pool open for new trades."""
     day = market.dates[d]
     live = np.flatnonzero(store.expiry >= day)
@@ -264,7 +192,8 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: _Instruments) -> 
                    rows=np.zeros(0, np.int64), quantity=np.zeros(0))
     open_ = tau * DAYS_PER_YEAR >= desk.trading.min_days_to_expiry_new
     z = np.log(strike / spot) / (vol * np.sqrt(np.maximum(tau, 1e-9)))
-    pool = _Pool(instrument=live[open_], und=und[open_], series=(_series(und, store.expiry[live]) * 2 + is_call)[open_],
+    series = series_key(und, store.expiry[live]) * 2 + is_call
+    pool = _Pool(instrument=live[open_], und=und[open_], series=series[open_],
                  is_call=is_call[open_], log_strike=np.log(strike[open_]), spot=spot[open_], tau=tau[open_],
                  vol=vol[open_], rate=rate[open_], div=div[open_], price=price[open_],
                  weight=(np.exp(-0.5 * (z / 0.8) ** 2) / (1.0 + 2.0 * tau))[open_])
@@ -286,13 +215,13 @@ def _pairs(rng: np.random.Generator, pool: _Pool, style: str, mask: NDArray[np.b
         anchor = _sample(rng, pool, mask & ~pool.is_call & (pool.log_strike <= np.log(pool.spot * 1.02)), lots.size)
         straddle = rng.random(anchor.size) < 0.5
         target = np.where(straddle, pool.log_strike[anchor], 2 * np.log(pool.spot[anchor]) - pool.log_strike[anchor])
-        partner = _nearest(pool.series, pool.log_strike, pool.series[anchor] + 1, target)
+        partner = nearest_strike(pool.series, pool.log_strike, pool.series[anchor] + 1, target)
         q_anchor, q_partner = -lots[: anchor.size], -lots[: anchor.size]
     else:
         anchor = _sample(rng, pool, mask, lots.size)
-        other = _nearest(pool.series, pool.log_strike, pool.series[anchor] ^ 1, pool.log_strike[anchor])
+        other = nearest_strike(pool.series, pool.log_strike, pool.series[anchor] ^ 1, pool.log_strike[anchor])
         shift = np.where(pool.is_call[anchor], 0.5, -0.5) * pool.vol[anchor] * np.sqrt(pool.tau[anchor])
-        same = _nearest(pool.series, pool.log_strike, pool.series[anchor], pool.log_strike[anchor] + shift)
+        same = nearest_strike(pool.series, pool.log_strike, pool.series[anchor], pool.log_strike[anchor] + shift)
         partner = np.where((rng.random(anchor.size) < 0.5) & (same != anchor), same, other)
         legs = np.concatenate([anchor, partner])
         delta = bsm_greeks(pool.spot[legs], np.exp(pool.log_strike[legs]), pool.tau[legs], pool.vol[legs],
@@ -333,7 +262,7 @@ def _open(rng: np.random.Generator, desk: DeskSpec, b: int, pool: _Pool, n: int,
     trades.live = np.concatenate([trades.live, base + np.arange(legs.size)])
 
 
-def _lifecycle(rng: np.random.Generator, desk: DeskSpec, day: np.datetime64, store: _Instruments,
+def _lifecycle(rng: np.random.Generator, desk: DeskSpec, day: np.datetime64, store: ListedInstruments,
                trades: _Trades) -> None:
     """Expiries (expired before tonight), closes of whole packages, and quantity amendments."""
     live = trades.live
@@ -353,7 +282,7 @@ def _lifecycle(rng: np.random.Generator, desk: DeskSpec, day: np.datetime64, sto
         trades.counts[key] += int(count)
 
 
-def _trade(rng: np.random.Generator, desk: DeskSpec, d: int, market: MarketPaths, store: _Instruments,
+def _trade(rng: np.random.Generator, desk: DeskSpec, d: int, market: MarketPaths, store: ListedInstruments,
            trades: _Trades, pool: _Pool, targets: IntArray) -> None:
     day = market.dates[d]
     if d == 0:  # the opening book, booked on earlier business days
@@ -374,7 +303,7 @@ def _trade(rng: np.random.Generator, desk: DeskSpec, d: int, market: MarketPaths
     trades.counts["unpriced"] += int(np.isnan(trades.trade_price[before:]).sum())
 
 
-def _carried_in_book(market: MarketPaths, store: _Instruments, trades: _Trades, nights: list[_Night], d: int,
+def _carried_in_book(market: MarketPaths, store: ListedInstruments, trades: _Trades, nights: list[_Night], d: int,
                      b: int) -> tuple[IntArray, FloatArray]:
     """Instruments book ``b`` holds on nights d - 1 and d with a week or more to expiry, and sum |qty| x price at d."""
     now, prev = nights[d].rows, nights[d - 1].rows
@@ -388,7 +317,7 @@ def _carried_in_book(market: MarketPaths, store: _Instruments, trades: _Trades, 
     return both, units * nights[d].price[np.searchsorted(nights[d].live, both)]
 
 
-def _mark_faults(desk: DeskSpec, market: MarketPaths, store: _Instruments, trades: _Trades, nights: list[_Night],
+def _mark_faults(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: _Trades, nights: list[_Night],
                  ids: NDArray[np.str_], b: int) -> list[PlantedFault]:
     """One stale, one fat-finger and one missing mark, on distinct nights, in positions book ``b`` carries."""
     n, names = len(nights), [u.name for u in desk.underlyings]
@@ -429,7 +358,7 @@ def _mark_faults(desk: DeskSpec, market: MarketPaths, store: _Instruments, trade
     return out
 
 
-def _noisy_marks(desk: DeskSpec, market: MarketPaths, store: _Instruments, nights: list[_Night], b: int,
+def _noisy_marks(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, nights: list[_Night], b: int,
                  rng: np.random.Generator) -> list[PlantedFault]:
     """Random errors of the time value of every live option of book ``b``'s underlyings on some nights."""
     spec, book, names = desk.faults, desk.books[b], [u.name for u in desk.underlyings]
@@ -440,10 +369,10 @@ def _noisy_marks(desk: DeskSpec, market: MarketPaths, store: _Instruments, night
     out = []
     for d in np.flatnonzero(noisy):
         night = nights[d]
+        common = rng.normal(0.0, spec.noisy_common_sd)  # one bad feed: the book's underlyings err together
         for name in book.underlyings:
             sel = (store.und[night.live] == names.index(name)) & (night.tau > 0)
-            common = rng.normal(0.0, spec.noisy_common_sd)
-            error = np.clip(common + rng.normal(0.0, spec.noisy_idio_sd, int(sel.sum())), -0.6, 0.8)
+            error = np.clip(common + rng.normal(0.0, spec.noisy_idio_sd, int(sel.sum())), -0.9, 1.5)
             lower, upper = night.lower[sel], night.upper[sel]
             night.price[sel] = np.minimum(lower + (night.price[sel] - lower) * (1.0 + error),
                                           lower + 0.99 * (upper - lower))
@@ -453,7 +382,7 @@ def _noisy_marks(desk: DeskSpec, market: MarketPaths, store: _Instruments, night
     return out
 
 
-def _ids(desk: DeskSpec, store: _Instruments, trade_count: int) -> tuple[NDArray[np.str_], NDArray[np.str_]]:
+def _ids(desk: DeskSpec, store: ListedInstruments, trade_count: int) -> tuple[NDArray[np.str_], NDArray[np.str_]]:
     """Instrument ids ``<underlying>-<YYYYMMDD>-<C|P><strike>`` and trade ids ``<prefix><8 digits>``."""
     code = np.array([u.name.replace("/", "") for u in desk.underlyings])[store.und]
     parts = (code, "-", np.char.replace(np.datetime_as_string(store.expiry, unit="D"), "-", ""), "-",
@@ -475,7 +404,7 @@ def _prepare_root(root: Path, dates: NDArray[np.datetime64]) -> None:
                          "write the demo into an empty folder")
 
 
-def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: _Instruments, trades: _Trades,
+def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: _Trades,
            nights: list[_Night], ids: NDArray[np.str_], trade_ids: NDArray[np.str_]) -> None:
     names = np.array([u.name for u in desk.underlyings])
     codes = np.array([c.code for c in desk.currencies])
@@ -535,10 +464,10 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
         clean[[names.index(x) for x in book.underlyings]] &= book.marks == "clean"
     weights = np.array([b.weight for b in desk.books])
     targets = np.ceil(positions_target * weights / weights.sum()).astype(np.int64)
-    store, trades, nights = _Instruments(), _Trades(), []
+    store, trades, nights = ListedInstruments(), _Trades(), []
     for d in range(dates.size):
         if d % desk.trading.listing_every_days == 0:
-            _list(desk, market, d, store, expiries, clean, list_rng)
+            list_instruments(desk, market, d, store, expiries, clean, list_rng)
         night, pool = _marks(desk, market, d, store)
         _trade(trade_rng, desk, d, market, store, trades, pool, targets)
         night.rows, night.quantity = trades.live.copy(), trades.quantity[trades.live]

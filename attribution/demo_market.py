@@ -10,14 +10,16 @@
   with occasional announcements, and FX rates into the reporting currency;
 * :func:`smile_vol` and :func:`zero_rate` turn that state into the implied vol and the rate of an
   option (the rate interpolated exactly as the data contract says: linear in zero rate, flat
-  beyond the ends).
+  beyond the ends);
+* :func:`list_instruments` lists the next monthly and the quarterly expiries with strikes on a
+  grid of standard deviations around spot, and later only what the listed range does not cover.
 """
 
 from __future__ import annotations
 
 import datetime as dt
 import tomllib
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, field, fields
 from importlib import resources
 from pathlib import Path
 from typing import Any
@@ -26,6 +28,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 FloatArray = NDArray[np.float64]
+IntArray = NDArray[np.int64]
 KINDS = ("index", "stock", "fx")
 STYLES = ("outright", "short_vol", "delta_neutral")
 MARKS = ("clean", "planted_faults", "noisy")
@@ -401,3 +404,86 @@ def simulate_market(desk: DeskSpec, dates: NDArray[np.datetime64], rng: np.rando
     return MarketPaths(dates=dates, spot=spot, atm_vol=atm_vol, dividend_yield=dividend_yield,
                        zero_rates=zero_rates, fx_to_reporting=_fx_to_reporting(desk, spot),
                        tenors_years=np.array(desk.curve_tenors_years))
+
+
+# ---- listing ---------------------------------------------------------------------------------
+
+@dataclass(slots=True)
+class ListedInstruments:
+    """Every instrument listed so far (append-only; the row is the instrument's number); mutable."""
+
+    und: IntArray = field(default_factory=lambda: np.zeros(0, np.int64))
+    is_call: NDArray[np.bool_] = field(default_factory=lambda: np.zeros(0, bool))
+    strike: FloatArray = field(default_factory=lambda: np.zeros(0))
+    expiry: NDArray[np.datetime64] = field(default_factory=lambda: np.zeros(0, "datetime64[D]"))
+    null_vol: NDArray[np.bool_] = field(default_factory=lambda: np.zeros(0, bool))
+
+
+def series_key(und: IntArray, expiry: NDArray[np.datetime64]) -> IntArray:
+    """(expiry, underlying) as one integer: the key of a series of listed strikes."""
+    return expiry.astype(np.int64) * 4096 + und
+
+
+def nearest_strike(series: IntArray, log_strike: FloatArray, q_series: IntArray, q_log_strike: FloatArray) -> IntArray:
+    """Index of the nearest strike of the same series for every query, -1 where the series is empty."""
+    best = np.full(q_series.shape, -1, dtype=np.int64)
+    if series.size == 0:
+        return best
+    order = np.lexsort((log_strike, series))
+    k_sorted = log_strike[order]
+    uniq, rank = np.unique(series[order], return_inverse=True)
+    q_rank = np.minimum(np.searchsorted(uniq, q_series), uniq.size - 1)
+    present = uniq[q_rank] == q_series
+    pos = np.searchsorted(rank * 100.0 + k_sorted, q_rank * 100.0 + q_log_strike)  # |ln K| < 50: series apart
+    gap = np.full(q_series.shape, np.inf)
+    for cand in (pos - 1, pos):
+        c = np.clip(cand, 0, order.size - 1)
+        ok = present & (cand >= 0) & (cand < order.size) & (rank[c] == q_rank)
+        dist = np.where(ok, np.abs(k_sorted[c] - q_log_strike), np.inf)
+        better = dist < gap
+        best, gap = np.where(better, order[c], best), np.where(better, dist, gap)
+    return best
+
+
+def strike_step(spot: FloatArray) -> FloatArray:
+    """A round strike spacing near 1 % of spot: 1, 2 or 5 times a power of ten."""
+    base = 0.01 * spot
+    mag = 10.0 ** np.floor(np.log10(base))
+    return mag * np.where(base / mag < 2, 1.0, np.where(base / mag < 5, 2.0, 5.0))
+
+
+def list_instruments(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments,
+                     expiries: NDArray[np.datetime64], clean: NDArray[np.bool_], rng: np.random.Generator) -> None:
+    """List on date ``d`` the expiries in the window and the grid strikes the listed ones do not cover.
+
+    ``expiries``: the monthly expiry dates; ``clean``: per underlying, whether only clean books trade it
+    (only their instruments may be marked without an implied vol).
+    """
+    day, tr = market.dates[d], desk.trading
+    ahead = expiries[expiries > day]
+    quarterly = ahead[(ahead <= day + tr.quarterly_horizon_days) & (ahead.astype("datetime64[M]").astype(int) % 3 == 2)]
+    window = np.union1d(ahead[: tr.monthly_expiries], quarterly)
+    grid = np.array(tr.strike_grid_sd)
+    tau = (window - day).astype(float) / DAYS_PER_YEAR
+    sd = market.atm_vol[d][:, None] * np.sqrt(np.maximum(tau, 1.0 / 12.0))[None, :]
+    step = strike_step(market.spot[d])[:, None, None]
+    strike = np.round(np.round(market.spot[d][:, None, None] * np.exp(grid * sd[:, :, None]) / step) * step, 8)
+    und, exp_idx, _ = np.indices(strike.shape).reshape(3, -1)
+    strike, sd_c, expiry = strike.ravel(), sd[und, exp_idx], window[exp_idx]
+    series = series_key(und, expiry)
+    _, first = np.unique(np.stack([series, np.round(strike * 1e6).astype(np.int64)]), axis=1, return_index=True)
+    keep = np.sort(first)
+    keep = keep[strike[keep] > 0]
+    calls = np.flatnonzero(store.is_call & (store.expiry >= day))
+    near = nearest_strike(series_key(store.und[calls], store.expiry[calls]), np.log(store.strike[calls]),
+                    series[keep], np.log(strike[keep]))
+    listed = np.log(np.append(store.strike[calls], 1.0))[near]  # near = -1 (nothing listed) reads the dummy
+    gap = np.where(near >= 0, np.abs(np.log(strike[keep]) - listed), np.inf)
+    new = keep[gap > 0.75 * np.min(np.diff(np.unique(grid))) * sd_c[keep]]
+    n = new.size
+    store.und = np.concatenate([store.und, und[new], und[new]])
+    store.is_call = np.concatenate([store.is_call, np.ones(n, bool), np.zeros(n, bool)])
+    store.strike = np.concatenate([store.strike, strike[new], strike[new]])
+    store.expiry = np.concatenate([store.expiry, expiry[new], expiry[new]])
+    store.null_vol = np.concatenate([store.null_vol,
+                                     (rng.random(2 * n) < tr.null_vol_share) & np.tile(clean[und[new]], 2)])
