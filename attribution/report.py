@@ -36,6 +36,7 @@ TERM_COLUMNS: tuple[str, ...] = (
     "pnl_higher_order", "pnl_mark_gap", "pnl_new_trade", "pnl_expiry", "pnl_amendment", "pnl_total",
 )
 TOP_POSITIONS = 20
+EXCEPTIONS_SHOWN = 50  # rows listed on a book page; the night's exceptions page lists them all
 POSITION_TEXT: tuple[str, ...] = ("trade_id", "instrument_id", "underlying", "status", "flags", "limit_state")
 POSITION_VALUES: tuple[str, ...] = ("quantity", "quantity_run_date", *TERM_COLUMNS)
 _LIMIT_RANK = {"breach": 0, "watch": 1}
@@ -162,6 +163,7 @@ class BookPage:
     history_residual: charts.LineChart | None
     quality: Quality | None
     exceptions: tuple[ExceptionRow, ...]
+    exception_rules: tuple[tuple[str, str, int], ...]
 
 
 def file_name_for(book: str) -> str:
@@ -390,6 +392,14 @@ def _exceptions(frame: pd.DataFrame) -> dict[str, tuple[ExceptionRow, ...]]:
     return _by_book(frame, rows)
 
 
+def _rule_counts(rows: tuple[ExceptionRow, ...]) -> tuple[tuple[str, str, int], ...]:
+    """(severity, rule, rows) of a book's exceptions, rejected first."""
+    counts: dict[tuple[str, str], int] = {}
+    for row in rows:
+        counts[(row.severity, row.rule)] = counts.get((row.severity, row.rule), 0) + 1
+    return tuple((severity, rule, n) for (severity, rule), n in sorted(counts.items()))
+
+
 _COUNT_COLUMNS = ("positions", "carried", "closed", "new", "new_unpriced", "expired", "rejected", "warnings",
                   "position_breaches")
 
@@ -428,7 +438,8 @@ def book_pages(frames: NightFrames, config: JobConfig) -> list[BookPage]:
             methods=methods, method_total=method_total,
             underlyings=underlyings.get(name, ()), exposures=exposures.get(name, ()),
             positions=positions.get(name, ()), unpriced=unpriced.get(name, ()),
-            history_lines=lines, history_residual=cumulative, quality=q, exceptions=exceptions.get(name, ())))
+            history_lines=lines, history_residual=cumulative, quality=q, exceptions=exceptions.get(name, ()),
+            exception_rules=_rule_counts(exceptions.get(name, ()))))
     pages.sort(key=_attention)
     return pages
 
@@ -474,6 +485,13 @@ class NightView:
     rule_counts: tuple[tuple[str, str, int], ...]
 
 
+def _run_text(value: object) -> str:
+    """A run-record value as text; timestamps to the second."""
+    if isinstance(value, dt.datetime) and not pd.isna(value):
+        return value.strftime("%Y-%m-%d %H:%M:%S")
+    return _text(value)
+
+
 def night_view(frames: NightFrames, pages: list[BookPage], as_of: dt.date, conventions: Conventions) -> NightView:
     """The index's rows (pages already in attention order), the night's totals and every exception."""
     links = frames.links
@@ -490,7 +508,7 @@ def night_view(frames: NightFrames, pages: list[BookPage], as_of: dt.date, conve
     books = frames.books
     totals = {c: float(books[c].fillna(0.0).sum()) if len(books) else 0.0
               for c in ("pnl_total", "pnl_actual", "pnl_explained", "pnl_residual")}
-    run = {c: _text(v) for c, v in frames.run.iloc[0].items()} if len(frames.run) else {}
+    run = {c: _run_text(v) for c, v in frames.run.iloc[0].items()} if len(frames.run) else {}
     return NightView(as_of, conventions, tuple(p.summary for p in pages), totals, run, rows,
                      tuple((str(k), int(v)) for k, v in severity.items()),
                      tuple((str(k[0]), str(k[1]), int(v)) for k, v in rules.items()))
@@ -535,7 +553,9 @@ def make_environment() -> jinja2.Environment:
     env.filters["quantity"] = _format_quantity
     env.filters["amount_cells"] = amount_cells
     env.filters["position_cells"] = position_cells
+    env.filters["file_name"] = lambda path: str(path).replace("\\", "/").rsplit("/", 1)[-1]
     env.globals["missing"] = charts.is_missing
+    env.globals["exceptions_shown"] = EXCEPTIONS_SHOWN
     return env
 
 

@@ -378,3 +378,22 @@ def test_pair_bars_share_one_scale() -> None:
     assert bars[0].first_width == pytest.approx(50.0, abs=0.05)
     assert bars[0].second_width == pytest.approx(25.0, abs=0.05) and bars[0].second_x < bars[0].zero_x
     assert bars[1].first_missing and not bars[1].second_missing
+
+
+def test_book_page_caps_its_exception_list_and_counts_them_all(tmp_path: Path) -> None:
+    """Past EXCEPTIONS_SHOWN rows a book page lists rejected rows first, counts every row by rule and links the rest."""
+    con = build_archive(tmp_path / "a.duckdb", ("Busy Book",), per_book=6, history_nights=3)
+    extra = report.EXCEPTIONS_SHOWN + 10
+    con.executemany("INSERT INTO input_exceptions VALUES (?, ?, ?, ?, ?, ?)",
+                    [[AS_OF, "/data/as_of=2026-03-16/underlying_marks.parquet", "KRLX", "mark unchanged",
+                      f"night {i}", "warning"] for i in range(extra)])
+    index = report.render_night(con, AS_OF, tmp_path / "reports", JobConfig())
+    page = _page(index, "Busy Book")
+    matched = con.execute("SELECT count(*) FROM input_exceptions WHERE as_of = ? AND key IN ('KRLX', 'TAPR', "
+                          "'TREJ-0001') OR key LIKE 'KRLX-%' OR key LIKE 'VOMB-%' OR key LIKE 'TAPR-%' OR "
+                          "key LIKE 'EURXAU-%'", [AS_OF]).fetchone()[0]
+    rows = page.tables["book-exception-table"][1:]
+    assert len(rows) == report.EXCEPTIONS_SHOWN
+    assert rows[0][0] == "rejected" and rows[0][1] == "positions.parquet"
+    assert sum(int(r[2]) for r in page.tables["book-exception-rules"][1:]) == matched
+    assert f"the other {matched - report.EXCEPTIONS_SHOWN}" in page.text("book-exceptions-more")
