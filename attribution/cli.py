@@ -293,6 +293,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     logging.basicConfig(level=level, stream=sys.stderr, format="%(asctime)s %(levelname)s %(message)s")
     try:
         return COMMANDS[args.command](args)
+    except BrokenPipeError:  # the reader went away (e.g. piped into head): not an error of the job
+        sys.stderr.close()
+        return EXIT_OK
     except ConfigError as exc:
         print(f"attribution: usage error: {exc}", file=sys.stderr)
         return EXIT_USAGE
