@@ -317,42 +317,63 @@ def _carried_in_book(market: MarketPaths, store: ListedInstruments, trades: _Tra
     return both, units * nights[d].price[np.searchsorted(nights[d].live, both)]
 
 
+def _fault_candidates(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: _Trades,
+                      nights: list[_Night], d: int, b: int, kind: str) -> tuple[IntArray, FloatArray]:
+    """Carried instruments of book ``b`` on night ``d`` and a score (> 0 where the fault may go, larger first).
+
+    The stale and fat-finger marks stay strictly inside the night's no-arbitrage bounds, so that they reach
+    the explain as marks the controls must catch; a stale mark needs its underlying to move by 0.5 % or more.
+    """
+    both, score = _carried_in_book(market, store, trades, nights, d, b)
+    night = nights[d]
+    pos = np.searchsorted(night.live, both)
+    if kind == "stale_mark":
+        prev = nights[d - 1]
+        stale = prev.price[np.searchsorted(prev.live, both)]
+        move = np.abs(np.log(market.spot[d] / market.spot[d - 1]))[store.und[both]]
+        ok = (stale > night.lower[pos]) & (stale < night.upper[pos]) & (move >= 0.005)
+        return both, np.where(ok, score * move, 0.0)
+    if kind == "fat_finger_mark":
+        return both, np.where(night.price[pos] * desk.faults.fat_finger_factor < night.upper[pos], score, 0.0)
+    return both, score
+
+
+def _plant_mark_fault(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, nights: list[_Night], d: int,
+                      inst: int, kind: str) -> str:
+    """Plant one fault in night ``d``'s mark of instrument ``inst``; returns its description."""
+    night, name = nights[d], desk.underlyings[store.und[inst]].name
+    pos = int(np.searchsorted(night.live, inst))
+    if kind == "stale_mark":
+        prev = nights[d - 1]
+        p_prev = int(np.searchsorted(prev.live, inst))
+        night.price[pos], night.vol[pos] = prev.price[p_prev], prev.vol[p_prev]
+        move = np.log(market.spot[d, store.und[inst]] / market.spot[d - 1, store.und[inst]])
+        return (f"price {night.price[pos]:.6g} and implied vol {night.vol[pos]:.4f} repeated from "
+                f"{market.dates[d - 1]} while {name} moved {move:+.2%}")
+    if kind == "fat_finger_mark":
+        factor = desk.faults.fat_finger_factor
+        night.price[pos] *= factor
+        return f"price {night.price[pos]:.6g} written instead of {night.price[pos] / factor:.6g}"
+    night.keep[pos] = False
+    return "no option_marks row although the instrument is held"
+
+
 def _mark_faults(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: _Trades, nights: list[_Night],
                  ids: NDArray[np.str_], b: int) -> list[PlantedFault]:
     """One stale, one fat-finger and one missing mark, on distinct nights, in positions book ``b`` carries."""
-    n, names = len(nights), [u.name for u in desk.underlyings]
-    move = np.zeros((n, len(names)))
-    move[1:] = np.abs(np.diff(np.log(market.spot), axis=0))
+    n = len(nights)
     used: set[int] = set()
     out = []
     for kind, frac in (("stale_mark", 0.35), ("fat_finger_mark", 0.6), ("missing_mark", 0.8)):
         order = sorted(range(1, n), key=lambda d, f=frac: abs(d - f * (n - 1)))
         for d in (d for d in order if d not in used):
-            both, score = _carried_in_book(market, store, trades, nights, d, b)
-            if kind == "stale_mark":
-                score = score * move[d, store.und[both]]
-            if both.size == 0 or score.max() <= 0:
-                continue
-            inst = int(both[np.argmax(score)])
-            night, day = nights[d], market.dates[d].item()
-            pos = int(np.searchsorted(night.live, inst))
-            if kind == "stale_mark":
-                prev = nights[d - 1]
-                p_prev = int(np.searchsorted(prev.live, inst))
-                night.price[pos], night.vol[pos] = prev.price[p_prev], prev.vol[p_prev]
-                detail = (f"price {night.price[pos]:.6g} and implied vol {night.vol[pos]:.4f} repeated from "
-                          f"{market.dates[d - 1]} while {names[store.und[inst]]} moved "
-                          f"{np.log(market.spot[d, store.und[inst]] / market.spot[d - 1, store.und[inst]]):+.2%}")
-            elif kind == "fat_finger_mark":
-                factor = desk.faults.fat_finger_factor
-                detail = f"price {night.price[pos] * factor:.6g} written instead of {night.price[pos]:.6g}"
-                night.price[pos] *= factor
-            else:
-                night.keep[pos] = False
-                detail = "no option_marks row although the instrument is held"
-            out.append(PlantedFault(day, desk.books[b].name, str(ids[inst]), kind, detail))
-            used.add(d)
-            break
+            both, score = _fault_candidates(desk, market, store, trades, nights, d, b, kind)
+            if both.size and score.max() > 0:
+                inst = int(both[np.argmax(score)])
+                detail = _plant_mark_fault(desk, market, store, nights, d, inst, kind)
+                out.append(PlantedFault(market.dates[d].item(), desk.books[b].name, str(ids[inst]), kind, detail))
+                used.add(d)
+                break
         else:
             raise RuntimeError(f"book {desk.books[b].name}: no carried position to plant a {kind} in")
     return out

@@ -83,6 +83,14 @@ def _model(frame: pd.DataFrame) -> np.ndarray:
                      frame["dividend_yield"], frame["option_type"] == "call")
 
 
+def _bounds(m: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """No-arbitrage bounds max(cp(S e^-qT - K e^-rT), 0) and (S e^-qT for a call, K e^-rT for a put)."""
+    call = (m["option_type"] == "call").to_numpy()
+    fwd_s = (m["spot"] * np.exp(-m["dividend_yield"] * m["tau"])).to_numpy()
+    fwd_k = (m["strike"] * np.exp(-m["rate"] * m["tau"])).to_numpy()
+    return np.maximum(np.where(call, 1.0, -1.0) * (fwd_s - fwd_k), 0.0), np.where(call, fwd_s, fwd_k)
+
+
 def _faulty_marks(built: Built, day: dt.date) -> set[str]:
     """Instrument ids and underlyings whose marks carry a planted fault on ``day``."""
     return {f.instrument_or_trade for f in built.summary.faults if f.as_of == day}
@@ -180,11 +188,7 @@ def test_clean_marks_are_bsm_prices_strictly_inside_the_bounds(built: Built) -> 
         m = _state(f, day)
         m = m[~m["instrument_id"].isin(_faulty_marks(built, day)) & ~m["underlying"].isin(_faulty_marks(built, day))]
         assert (m["price"] >= 0).all()
-        call = (m["option_type"] == "call").to_numpy()
-        cp = np.where(call, 1.0, -1.0)
-        fwd_s = m["spot"] * np.exp(-m["dividend_yield"] * m["tau"])
-        fwd_k = m["strike"] * np.exp(-m["rate"] * m["tau"])
-        lower, upper = np.maximum(cp * (fwd_s - fwd_k), 0.0), np.where(call, fwd_s, fwd_k)
+        lower, upper = _bounds(m)
         live = (m["tau"] > 0).to_numpy()
         assert (m["price"][live] > lower[live]).all() and (m["price"][live] < upper[live]).all()
         np.testing.assert_allclose(m["price"][~live], lower[~live], rtol=0, atol=0)
@@ -240,6 +244,8 @@ def test_planted_faults_are_in_the_data_as_the_summary_says(built: Built) -> Non
             assert fault.instrument_or_trade not in marks.index
             continue
         row = marks.loc[fault.instrument_or_trade]
+        lower, upper = _bounds(marks.loc[[fault.instrument_or_trade]])
+        assert lower[0] < row["price"] < upper[0]  # inside the bounds: it reaches the explain, not the reject pile
         if kind == "stale_mark":
             before = _state(built.nights[prior], prior).set_index("instrument_id").loc[fault.instrument_or_trade]
             assert row["price"] == before["price"] and row["implied_vol"] == before["implied_vol"]
