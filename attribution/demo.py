@@ -16,8 +16,10 @@ vectorised over instruments and trades:
   booked without a trade_price.
 
 Planted faults (:class:`PlantedFault`): a stale mark, a fat-finger mark and a missing mark in each
-book whose marks are ``planted_faults``; random errors of the time value on ~15 % of nights in
-each book whose marks are ``noisy``. The same seed gives the same tables, byte for byte.
+book whose marks are ``planted_faults``, each inside the no-arbitrage bounds where it has a price;
+random errors of the time value (one shared by the book's options that night, plus one per option)
+on ~15 % of nights in each book whose marks are ``noisy``, with ``implied_vol`` left at its clean
+value. The same seed gives the same tables, byte for byte.
 """
 
 from __future__ import annotations
@@ -142,7 +144,6 @@ class _Night:
     vol: FloatArray          # NaN where implied_vol is written as null
     keep: NDArray[np.bool_]  # False where the mark row is left out
     tau: FloatArray
-    spot: FloatArray
     lower: FloatArray
     upper: FloatArray
     rows: IntArray
@@ -188,7 +189,7 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments
     upper = np.where(is_call, spot * np.exp(-div * tau), strike * np.exp(-rate * tau))
     price = np.where(tau > 0, np.maximum(price, lower + desk.min_time_value_share * spot), price)
     night = _Night(live=live, price=price, vol=np.where(store.null_vol[live], np.nan, vol),
-                   keep=np.ones(live.size, bool), tau=tau, spot=spot, lower=lower, upper=upper,
+                   keep=np.ones(live.size, bool), tau=tau, lower=lower, upper=upper,
                    rows=np.zeros(0, np.int64), quantity=np.zeros(0))
     open_ = tau * DAYS_PER_YEAR >= desk.trading.min_days_to_expiry_new
     z = np.log(strike / spot) / (vol * np.sqrt(np.maximum(tau, 1e-9)))

@@ -17,7 +17,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from attribution.demo import SCHEMAS, DemoSummary, build_demo
+from attribution.demo import FAULT_KINDS, SCHEMAS, DemoSummary, build_demo
 from attribution.demo_market import (
     DeskDefinitionError,
     business_days,
@@ -230,7 +230,7 @@ def test_planted_faults_are_in_the_data_as_the_summary_says(built: Built) -> Non
     """Stale, fat-finger and missing marks once each in the faulty book; noisy marks on some nights."""
     s, desk = built.summary, load_desk()
     kinds = {f.kind for f in s.faults}
-    assert kinds == {"stale_mark", "fat_finger_mark", "missing_mark", "noisy_marks"}
+    assert kinds == set(FAULT_KINDS) == {"stale_mark", "fat_finger_mark", "missing_mark", "noisy_marks"}
     faulty_book = next(b.name for b in desk.books if b.marks == "planted_faults")
     for kind in ("stale_mark", "fat_finger_mark", "missing_mark"):
         (fault,) = _faults(built, kind)
