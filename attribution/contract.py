@@ -9,6 +9,7 @@ a price outside its no-arbitrage bounds) live in :mod:`attribution.market` and
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -33,8 +34,28 @@ class CleanNight:
     rejected_trades: pd.DataFrame  # trade_id, book, rule of positions rejected by a row rule
 
 
+Detail = str | Callable[[np.ndarray], object]
+
+
 def _key(frame: pd.DataFrame, column: str) -> pd.Series:
     return frame[column].where(frame[column].notna(), "(null) row " + frame.index.astype(str))
+
+
+def _blank(values: pd.Series) -> np.ndarray:
+    """Null, or a string of only white space (an empty key is no key)."""
+    text = values.astype(object)
+    missing = text.isna().to_numpy()
+    if values.dtype == object:
+        missing = missing | text.where(~missing, "x").astype(str).str.strip().eq("").to_numpy()
+    return missing
+
+
+def shown(frame: pd.DataFrame, column: str) -> Callable[[np.ndarray], object]:
+    """Detail text ``column = value`` for the masked rows (null and NaN shown as such)."""
+    def text(mask: np.ndarray) -> object:
+        values = frame[column].to_numpy(dtype=object)[mask]
+        return np.array([f"{column} = {'null' if v is None else v}" for v in values], dtype=object)
+    return text
 
 
 class _Rules:
@@ -45,18 +66,22 @@ class _Rules:
         self.ok = np.ones(len(frame), dtype=bool)
         self.reasons = np.full(len(frame), "", dtype=object)
 
-    def reject(self, bad: np.ndarray | pd.Series, rule: str, detail: str | pd.Series = "") -> None:
+    def reject(self, bad: np.ndarray | pd.Series, rule: str, detail: Detail = "") -> None:
+        """Rows where ``bad`` holds (and no earlier rule fired) leave the clean table with a ledger row.
+
+        ``detail`` is one text for every row, or a function of the mask giving one text per
+        rejected row (so that detail text is only built for the few rows that need it).
+        """
         mask = np.asarray(bad, dtype=bool) & self.ok
         if mask.any():
             keys = _key(self.frame, self.key_column)[mask]
-            det = detail[mask] if isinstance(detail, pd.Series) else detail
-            self.log.add(self.path, keys.to_numpy(), rule, det)
+            self.log.add(self.path, keys.to_numpy(), rule, detail(mask) if callable(detail) else detail)
             self.reasons[mask] = rule
             self.ok &= ~mask
 
     def required(self, *columns: str) -> None:
         for column in columns:
-            self.reject(self.frame[column].isna(), f"{column} is null", f"{column} is required")
+            self.reject(_blank(self.frame[column]), f"{column} is null", f"{column} is required (null or blank)")
 
     def unique(self, column: str) -> None:
         dup = self.frame[column].duplicated(keep=False) & self.frame[column].notna()
@@ -65,13 +90,12 @@ class _Rules:
     def finite(self, *columns: str) -> None:
         for column in columns:
             values = self.frame[column].to_numpy(dtype=float)
-            self.reject(~np.isfinite(values), f"{column} is not a finite number",
-                        self.frame[column].astype(str).radd(f"{column} = "))
+            self.reject(~np.isfinite(values), f"{column} is not a finite number", shown(self.frame, column))
 
     def positive(self, *columns: str) -> None:
         for column in columns:
             values = self.frame[column].to_numpy(dtype=float)
-            self.reject(values <= 0, f"{column} must be > 0", self.frame[column].astype(str).radd(f"{column} = "))
+            self.reject(values <= 0, f"{column} must be > 0", shown(self.frame, column))
 
     def clean(self) -> pd.DataFrame:
         return self.frame[self.ok]
@@ -86,12 +110,13 @@ def _positions(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> tuple
     rules.finite("quantity")
     quantity = frame["quantity"].to_numpy(dtype=float)
     rules.reject(np.abs(quantity) > checks.max_abs_quantity, "quantity is absurdly large",
-                 frame["quantity"].astype(str).radd(f"|quantity| above {checks.max_abs_quantity:g} contracts: "))
+                 lambda m: shown(frame, "quantity")(m) + f" contracts, above {checks.max_abs_quantity:g}")
     price = frame["trade_price"].to_numpy(dtype=float)
     rules.reject(np.isinf(price) | (price < 0), "trade_price must be a finite number >= 0 when given",
-                 frame["trade_price"].astype(str).radd("trade_price = "))
-    rejected = frame.loc[~rules.ok & frame["trade_id"].notna().to_numpy(), ["trade_id", "book"]].copy()
-    rejected["rule"] = rules.reasons[~rules.ok & frame["trade_id"].notna().to_numpy()]
+                 shown(frame, "trade_price"))
+    keyed = ~rules.ok & frame["trade_id"].notna().to_numpy()
+    rejected = frame.loc[keyed, ["trade_id", "book"]].copy()
+    rejected["rule"] = rules.reasons[keyed]
     return rules.clean().reset_index(drop=True), rejected
 
 
@@ -102,14 +127,12 @@ def _instruments(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
     rules.required("instrument_id", "underlying", "option_type", "exercise", "expiry", "currency")
     rules.unique("instrument_id")
     rules.reject(~frame["option_type"].isin(["call", "put"]), "option_type must be call or put",
-                 frame["option_type"].astype(str).radd("option_type = "))
-    rules.reject(frame["exercise"] != "european", "only european exercise is supported",
-                 frame["exercise"].astype(str).radd("exercise = "))
+                 shown(frame, "option_type"))
+    rules.reject(frame["exercise"] != "european", "only european exercise is supported", shown(frame, "exercise"))
     rules.finite("strike", "multiplier")
     rules.positive("strike", "multiplier")
     currency = frame["currency"].astype(str)
-    rules.reject(~currency.str.fullmatch(r"[A-Z]{3}"), "currency must be an ISO 4217 code",
-                 currency.radd("currency = "))
+    rules.reject(~currency.str.fullmatch(r"[A-Z]{3}"), "currency must be an ISO 4217 code", shown(frame, "currency"))
     return rules.clean().set_index("instrument_id")
 
 
@@ -121,14 +144,14 @@ def _marks(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.DataFr
     rules.unique("instrument_id")
     rules.finite("price")
     price = frame["price"].to_numpy(dtype=float)
-    rules.reject(price < 0, "price must be >= 0", frame["price"].astype(str).radd("price = "))
+    rules.reject(price < 0, "price must be >= 0", shown(frame, "price"))
     vol = frame["implied_vol"].to_numpy(dtype=float)
     given = ~np.isnan(vol)
-    vol_text = frame["implied_vol"].astype(str).radd("implied_vol = ")
+    vol_text = shown(frame, "implied_vol")
     rules.reject(given & ~np.isfinite(vol), "implied_vol is not a finite number", vol_text)
     rules.reject(given & (vol <= 0), "implied_vol must be > 0", vol_text)
     rules.reject(given & (vol > checks.max_vol), "implied_vol is absurd",
-                 vol_text + f" is above {checks.max_vol:g}; vols are decimals (0.25 for 25 %)")
+                 lambda m: vol_text(m) + f" is above {checks.max_vol:g}; vols are decimals (0.25 for 25 %)")
     return rules.clean().set_index("instrument_id")
 
 
@@ -150,8 +173,14 @@ def _curves(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
     rules = _Rules(log, raw.path(file), frame, "point")
     rules.required("currency")
     rules.finite("tenor_years", "zero_rate")
-    rules.reject(frame["tenor_years"].to_numpy(dtype=float) < 0, "tenor_years must be >= 0")
+    rules.reject(frame["tenor_years"].to_numpy(dtype=float) < 0, "tenor_years must be >= 0",
+                 shown(frame, "tenor_years"))
     rules.unique("point")
+    # A curve missing one of its points would be interpolated across the gap: the whole curve is left out.
+    broken = frame["currency"].isin(frame.loc[~rules.ok, "currency"].dropna()).to_numpy()
+    rules.reject(broken, "curve has a rejected point",
+                 lambda m: "another point of the " + frame["currency"].to_numpy(dtype=object)[m].astype(str)
+                 + " curve breaks a rule, so the whole curve is left out")
     return rules.clean().drop(columns="point").sort_values(["currency", "tenor_years"]).reset_index(drop=True)
 
 
@@ -165,6 +194,9 @@ def _fx(raw: RawNight, log: ExceptionLog, reporting_currency: str) -> pd.Series:
     rules.unique("currency")
     rules.finite("rate")
     rules.positive("rate")
+    rules.reject((frame["currency"] == reporting_currency).to_numpy() & (frame["rate"].to_numpy(dtype=float) != 1.0),
+                 "the reporting currency's rate must be 1",
+                 lambda m: shown(frame, "rate")(m) + f" for the reporting currency {reporting_currency}")
     rates = rules.clean().set_index("currency")["rate"].astype(float)
     if reporting_currency not in rates.index:
         rates[reporting_currency] = 1.0
