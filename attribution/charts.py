@@ -36,6 +36,12 @@ def format_amount(value: float | None, decimals: int = 0) -> str:
     return text
 
 
+def format_amounts(values: Sequence[float | None]) -> list[str]:
+    """``format_amount(v)`` for each value, whole units, in one pass (the tables' hot loop)."""
+    texts = [MISSING if v is None or v != v else format(v, ",.0f") for v in values]
+    return ["0" if t == "-0" else t for t in texts]
+
+
 def format_percent(share: float | None, decimals: int = 1) -> str:
     """A decimal share as a percentage (0.125 -> ``12.5 %``)."""
     if is_missing(share):
@@ -97,7 +103,7 @@ class Tick:
 
 @dataclass(frozen=True, slots=True)
 class WaterfallStep:
-    """One row of the horizontal waterfall: a bar from ``x`` to ``x + width`` at row ``y``."""
+    """One row of the horizontal waterfall: a bar from ``x`` to ``x + width``; ``style`` is a CSS class."""
 
     key: str
     label: str
@@ -105,9 +111,10 @@ class WaterfallStep:
     value_text: str
     x: float
     width: float
-    y: float
+    bar_y: float
+    text_y: float
+    style: str
     is_total: bool
-    falls: bool
     note: str
 
 
@@ -122,8 +129,9 @@ class Waterfall:
     plot_top: float
     plot_bottom: float
     zero_x: float
-    row_height: float
     bar_height: float
+    label_x: float
+    value_x: float
     ticks: tuple[Tick, ...]
     steps: tuple[WaterfallStep, ...]
 
@@ -139,24 +147,25 @@ def waterfall(steps: Sequence[tuple[str, str, float | None, str]], total: tuple[
     for _, _, value, _ in steps:
         running += 0.0 if is_missing(value) else float(value)
         ends.append(running)
-    total_value = total[2]
-    domain = _domain([*ends, 0.0 if is_missing(total_value) else float(total_value)])
+    key, label, total_value = total
+    total_end = 0.0 if is_missing(total_value) else float(total_value)
+    domain = _domain([*ends, total_end])
     left, right, top = 118.0, width - 96.0, 22.0
     to_x = _scale(*domain, left, right)
-    bar_height = row_height * 0.66
-    laid: list[WaterfallStep] = []
-    for row, (key, label, value, note) in enumerate(steps):
-        a, b = to_x(ends[row]), to_x(ends[row + 1])
-        laid.append(WaterfallStep(key, label, value, format_amount(value), min(a, b), round(abs(b - a), 1),
-                                  round(top + row * row_height, 1), False, (value or 0.0) < 0, note))
-    key, label, value = total
-    a, b = to_x(0.0), to_x(0.0 if is_missing(value) else float(value))
-    laid.append(WaterfallStep(key, label, value, format_amount(value), min(a, b), round(abs(b - a), 1),
-                              round(top + len(steps) * row_height, 1), True, (value or 0.0) < 0, ""))
-    bottom = top + (len(steps) + 1) * row_height
+    rows = [(k, lab, v, note, ends[i], ends[i + 1], False) for i, (k, lab, v, note) in enumerate(steps)]
+    rows.append((key, label, total_value, "", 0.0, total_end, True))
+    laid = []
+    for row, (k, lab, v, note, start, end, is_total) in enumerate(rows):
+        a, b = to_x(start), to_x(end)
+        falls = not is_missing(v) and float(v) < 0  # type: ignore[arg-type]
+        style = "bar-total" if is_total else ("bar-fall" if falls else "bar-rise")
+        y = top + row * row_height
+        laid.append(WaterfallStep(k, lab, v, format_amount(v), min(a, b), round(abs(b - a), 1), round(y + 3.0, 1),
+                                  round(y + row_height * 0.62, 1), style, is_total, note))
+    bottom = top + len(rows) * row_height
     ticks = tuple(Tick(to_x(t), format_compact(t)) for t in nice_ticks(*domain))
-    return Waterfall(width, round(bottom + 8.0, 1), left, right, top, round(bottom, 1), to_x(0.0), row_height,
-                     round(bar_height, 1), ticks, tuple(laid))
+    return Waterfall(width, round(bottom + 8.0, 1), left, right, top, round(bottom, 1), to_x(0.0),
+                     round(row_height * 0.66, 1), left - 8.0, width - 6.0, ticks, tuple(laid))
 
 
 @dataclass(frozen=True, slots=True)
@@ -238,11 +247,12 @@ class PairBar:
     second_x: float
     second_width: float
     zero_x: float
+    width: float
     first_missing: bool
     second_missing: bool
 
 
-def pair_bars(pairs: Sequence[tuple[float | None, float | None]], width: float = 150.0) -> tuple[PairBar, ...]:
+def pair_bars(pairs: Sequence[tuple[float | None, float | None]], width: float = 110.0) -> tuple[PairBar, ...]:
     """Small bars for a table of (first, second) values, all rows on one scale so rows compare."""
     values = [float(v) for pair in pairs for v in pair if not is_missing(v)]
     top = max([abs(v) for v in values] + [0.0])
@@ -254,5 +264,5 @@ def pair_bars(pairs: Sequence[tuple[float | None, float | None]], width: float =
         a = 0.0 if is_missing(first) else float(first) * per_unit
         b = 0.0 if is_missing(second) else float(second) * per_unit
         out.append(PairBar(round(min(zero, zero + a), 1), round(abs(a), 1), round(min(zero, zero + b), 1),
-                           round(abs(b), 1), zero, is_missing(first), is_missing(second)))
+                           round(abs(b), 1), zero, width, is_missing(first), is_missing(second)))
     return tuple(out)

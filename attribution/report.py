@@ -517,22 +517,25 @@ def night_view(frames: NightFrames, pages: list[BookPage], as_of: dt.date, conve
 _NEW_TRADE_AT = TERM_COLUMNS.index("pnl_new_trade")
 
 
+def _cells(texts: Sequence[str]) -> str:
+    return "<td>" + "</td><td>".join(texts) + "</td>" if texts else ""
+
+
 def amount_cells(values: Sequence[float | None]) -> markupsafe.Markup:
     """Table cells of formatted amounts, one ``<td>`` each, in one call (the pages' hot loop).
 
-    The cell text comes from :func:`charts.format_amount` only (digits, separators, a minus
+    The cell text comes from :func:`charts.format_amounts` only (digits, separators, a minus
     sign or the missing-value dash), so it holds nothing to escape.
     """
-    return markupsafe.Markup("".join([f"<td>{charts.format_amount(v)}</td>" for v in values]))
+    return markupsafe.Markup(_cells(charts.format_amounts(values)))
 
 
 def position_cells(values: Sequence[float | None]) -> markupsafe.Markup:
     """Cells of a position row (POSITION_VALUES): two quantities, then amounts; a NULL day-one P&L is unpriced."""
-    quantities = "".join(f"<td>{_format_quantity(v)}</td>" for v in values[:2])
-    amounts = [f"<td>{charts.format_amount(v)}</td>" for v in values[2:]]
+    amounts = charts.format_amounts(values[2:])
     if charts.is_missing(values[2 + _NEW_TRADE_AT]):
-        amounts[_NEW_TRADE_AT] = "<td>unpriced</td>"
-    return markupsafe.Markup(quantities + "".join(amounts))
+        amounts[_NEW_TRADE_AT] = "unpriced"
+    return markupsafe.Markup(_cells([_format_quantity(v) for v in values[:2]] + amounts))
 
 
 def _format_quantity(value: float | None) -> str:

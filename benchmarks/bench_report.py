@@ -11,6 +11,7 @@ A script with figures, not a timed test: nothing fails when the machine is slow.
 from __future__ import annotations
 
 import argparse
+import os
 import statistics
 import sys
 import tempfile
@@ -42,6 +43,7 @@ def main(argv: list[str] | None = None) -> int:
         print(f"archive: {args.books} books x {args.positions} positions, {args.history + 1} nights of book rows, "
               f"built in {time.perf_counter() - started:.1f} s")
 
+        load = os.getloadavg()
         started = time.perf_counter()
         frames = report.load_night(con, AS_OF, config.history_nights)
         loaded = time.perf_counter()
@@ -49,16 +51,18 @@ def main(argv: list[str] | None = None) -> int:
         laid_out = time.perf_counter()
         print(f"split: load {loaded - started:.2f} s, lay out {laid_out - loaded:.2f} s ({len(pages)} pages)")
 
-        times = []
+        times, cpu = [], []
         for _ in range(max(args.repeat, 1)):
-            started = time.perf_counter()
+            started, started_cpu = time.perf_counter(), time.process_time()
             index = report.render_night(con, AS_OF, root / "reports", config)
             times.append(time.perf_counter() - started)
+            cpu.append(time.process_time() - started_cpu)
         folder = index.parent
         sizes = sorted(p.stat().st_size for p in folder.glob("book-*.html"))
         total = sum(p.stat().st_size for p in folder.iterdir())
-        print(f"render_night: best {min(times):.2f} s, median {statistics.median(times):.2f} s "
-              f"over {len(times)} runs ({len(sizes)} book pages + index + exceptions)")
+        print(f"render_night: best {min(times):.2f} s, median {statistics.median(times):.2f} s wall "
+              f"(CPU {min(cpu):.2f} s) over {len(times)} runs ({len(sizes)} book pages + index + exceptions); "
+              f"load average before {load[0]:.2f} on {os.cpu_count()} cores")
         print(f"book page: median {sizes[len(sizes) // 2] / 1024:.1f} KiB, largest {sizes[-1] / 1024:.1f} KiB; "
               f"index {index.stat().st_size / 1024:.1f} KiB; night folder {total / 1024 / 1024:.1f} MiB")
         con.close()

@@ -345,6 +345,8 @@ def test_amounts_are_formatted_with_separators_and_minus() -> None:
     assert charts.format_amount(-0.004, 2) == "0.00"
     assert charts.format_amount(None) == charts.format_amount(float("nan")) == charts.MISSING
     assert charts.format_percent(-0.1234) == "-12.3 %"
+    sample = [1234567.4, -1234.6, -0.3, 0.0, None, float("nan"), 1e12, -999.5]
+    assert charts.format_amounts(sample) == [charts.format_amount(v) for v in sample]
     assert charts.format_compact(-1_250_000) == "-1.25m" and charts.format_compact(250_000) == "250k"
 
 
@@ -358,7 +360,7 @@ def test_waterfall_layout_runs_from_zero_to_total() -> None:
     assert w.steps[2].width == 0.0                                                  # missing: no bar
     assert w.steps[-1].x == pytest.approx(w.zero_x, abs=0.11)
     assert w.steps[-1].width == pytest.approx(75.0 * per_unit, abs=0.2)
-    assert w.steps[1].falls and not w.steps[0].falls
+    assert w.steps[1].style == "bar-fall" and w.steps[0].style == "bar-rise" and w.steps[-1].style == "bar-total"
 
 
 def test_line_chart_and_ticks_cover_the_values() -> None:
