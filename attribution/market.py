@@ -32,7 +32,10 @@ class InstrumentMarket:
 
     ``usable`` is True where an active position can be priced and explained; otherwise
     ``reason`` says why. ``spot_known`` is True where the underlying has a spot (enough to
-    settle an expiry).
+    settle an expiry). ``listed`` is True where this date's instruments file has a clean row for
+    the instrument (a position of this date needs one); where it is False and ``terms_rejected``
+    is False the terms were taken from the other date's file, which is how a closed or expired
+    trade is settled in an option this date no longer lists.
     """
 
     as_of: dt.date
@@ -56,10 +59,20 @@ class InstrumentMarket:
     spot_known: NDArray[np.bool_]
     usable: NDArray[np.bool_]
     reason: NDArray[np.object_]
+    listed: NDArray[np.bool_]
+    terms_rejected: NDArray[np.bool_]
 
     def locate(self, instrument_ids: NDArray[np.object_]) -> NDArray[np.intp]:
         """Index of each id in this market, -1 where absent."""
         return self.ids.get_indexer(instrument_ids)
+
+
+def take(values: NDArray[np.generic], index: NDArray[np.intp], fill: object) -> NDArray[np.generic]:
+    """``values[index]``, with ``fill`` where ``index`` is -1 (safe when ``values`` is empty)."""
+    found = index >= 0
+    out = np.full(len(index), fill, dtype=np.result_type(values.dtype, np.asarray(fill).dtype))
+    out[found] = values[index[found]]
+    return out
 
 
 def instrument_terms(own: CleanNight, other: CleanNight | None) -> pd.DataFrame:
@@ -91,11 +104,18 @@ def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, check
     tau = basis.year_fraction(np.datetime64(as_of, "D"), expiry) if n else np.zeros(0)
     reason = np.full(n, "", dtype=object)
 
+    listed = np.asarray(ids.isin(own_ids))
+    terms_rejected = ~listed & np.asarray(ids.isin(night.raw.tables["instruments.parquet"]["instrument_id"]))
+    _first_reason(reason, terms_rejected, f"its row in instruments.parquet of {as_of} breaks a rule (see that row)")
+    _first_reason(reason, tau < 0, f"the option expired before {as_of}")
+
     u_idx = night.underlyings.index.get_indexer(underlying)
     spot_known = u_idx >= 0
-    spot = np.where(spot_known, night.underlyings["spot"].to_numpy(float)[u_idx], np.nan)
-    div_yield = np.where(spot_known, night.underlyings["dividend_yield"].to_numpy(float)[u_idx], np.nan)
-    unknown_u = ~spot_known & np.asarray(ids.isin(own_ids))
+    spot = take(night.underlyings["spot"].to_numpy(float), u_idx, np.nan)
+    div_yield = take(night.underlyings["dividend_yield"].to_numpy(float), u_idx, np.nan)
+    # An underlying whose row was rejected has its own exception row; only an absent one gets a row here.
+    unknown_u = ~spot_known & listed & ~pd.Index(underlying).isin(
+        night.raw.tables["underlying_marks.parquet"]["underlying"])
     log.add(night.raw.path("instruments.parquet"), ids[unknown_u].to_numpy(), "unknown underlying",
             pd.Series(underlying[unknown_u], dtype=object).astype(str).radd("no row in underlying_marks for "))
     _first_reason(reason, ~spot_known, "underlying " + pd.Series(underlying, dtype=object).astype(str).to_numpy()
@@ -110,9 +130,8 @@ def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, check
 
     m_idx = night.marks.index.get_indexer(ids)
     marked = m_idx >= 0
-    price = np.where(marked, night.marks["price"].to_numpy(float)[m_idx], np.nan)
-    marked_vol = np.where(marked, night.marks["implied_vol"].to_numpy(float)[m_idx], np.nan)
-    _first_reason(reason, tau < 0, f"the option expired before {as_of}")
+    price = take(night.marks["price"].to_numpy(float), m_idx, np.nan)
+    marked_vol = take(night.marks["implied_vol"].to_numpy(float), m_idx, np.nan)
     _first_reason(reason, ~marked, f"no usable option mark on {as_of}")
 
     vol, vol_solved, vol_mismatch = _vols(night, ids, reason, price, marked_vol, spot, strike, tau, rate,
@@ -120,7 +139,8 @@ def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, check
     usable = reason == ""
     return InstrumentMarket(as_of, ids, underlying, currency, option_type, cp, strike,
                             terms["multiplier"].to_numpy(dtype=float), expiry, tau, spot, div_yield, rate, price,
-                            vol, marked_vol, vol_solved, vol_mismatch, spot_known, usable, reason)
+                            vol, marked_vol, vol_solved, vol_mismatch, spot_known, usable, reason, listed,
+                            terms_rejected)
 
 
 def _vols(night: CleanNight, ids: pd.Index, reason: NDArray[np.object_], price: FloatArray, marked_vol: FloatArray,

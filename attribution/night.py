@@ -14,7 +14,7 @@ from numpy.typing import NDArray
 from attribution.contract import CleanNight
 from attribution.explain import MarketState, explain_overnight
 from attribution.lifecycle import CARRIED, CLOSED, EXPIRED, NEW, NEW_UNPRICED, Legs, trade_date_flags
-from attribution.market import InstrumentMarket
+from attribution.market import InstrumentMarket, take
 from attribution.pricing import greeks_unchecked
 from attribution.revaluation import shapley_shares
 from attribution.schema import EXPOSURE_COLUMNS, PNL_COLUMNS, POSITION_PNL, REVAL_COLUMNS, TAYLOR_TERMS
@@ -50,11 +50,10 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     expired = status == EXPIRED
     i0 = np.maximum(legs.inst0, 0)
     i1 = legs.inst1
-    qty0 = np.where(has_prior, prior.positions["quantity"].to_numpy(float)[np.maximum(legs.row0, 0)], 0.0)
+    qty0 = np.where(has_prior, take(prior.positions["quantity"].to_numpy(float), legs.row0, 0.0), 0.0)
     held1 = (legs.row1 >= 0) & ~expired
-    qty1 = np.where(held1, run.positions["quantity"].to_numpy(float)[np.maximum(legs.row1, 0)], 0.0)
-    trade_price1 = np.where(legs.row1 >= 0, run.positions["trade_price"].to_numpy(float)[np.maximum(legs.row1, 0)],
-                            np.nan)
+    qty1 = np.where(held1, take(run.positions["quantity"].to_numpy(float), legs.row1, 0.0), 0.0)
+    trade_price1 = take(run.positions["trade_price"].to_numpy(float), legs.row1, np.nan)
     mult = market1.multiplier[i1]
     strike, cp = market1.strike[i1], market1.cp[i1]
     units0 = qty0 * mult * legs.fx_rate
@@ -115,7 +114,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
 
     late = trade_date_flags(run, legs, prior_as_of)
     moved_book = (status == CARRIED) & (legs.row1 >= 0) & (
-        run.positions["book"].to_numpy(dtype=object)[np.maximum(legs.row1, 0)] != legs.book)
+        take(run.positions["book"].to_numpy(dtype=object), legs.row1, None) != legs.book)
     flags = _flags([
         (amended, "amended"),
         (amended & np.isnan(trade_price1), "amended_at_mark"),
