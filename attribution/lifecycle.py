@@ -23,7 +23,7 @@ from numpy.typing import NDArray
 
 from attribution.contract import CleanNight
 from attribution.exceptions_log import ExceptionLog
-from attribution.market import InstrumentMarket
+from attribution.market import InstrumentMarket, take
 
 CARRIED, CLOSED, NEW, NEW_UNPRICED, EXPIRED = "carried", "closed", "new", "new_unpriced", "expired"
 STATUSES = (CARRIED, CLOSED, NEW, NEW_UNPRICED, EXPIRED)
@@ -61,6 +61,41 @@ def _reject_by_reason(log: ExceptionLog, file: str, trade_ids: NDArray[np.object
     _reject(log, file, trade_ids, bad & ~lapsed, rule, reason)
 
 
+def _leg_reason(night: CleanNight, market: InstrumentMarket, inst_ids: NDArray[np.object_],
+                idx: NDArray[np.intp]) -> NDArray[np.object_]:
+    """Why a position of ``night``'s date cannot be priced on that date ("" where it can).
+
+    A position needs a clean row for its instrument in its own date's instruments file: terms
+    borrowed from the other date are only for settling trades this date no longer holds.
+    """
+    as_of = night.raw.as_of
+    in_file = pd.Series(inst_ids, dtype=object).isin(night.raw.tables["instruments.parquet"]["instrument_id"])
+    absent = np.where(in_file.to_numpy(), f"its row in instruments.parquet of {as_of} breaks a rule (see that row)",
+                      f"instrument_id not in instruments.parquet of {as_of}").astype(object)
+    return np.where(take(market.listed, idx, False), take(market.reason, idx, ""), absent).astype(object)
+
+
+def _terms_changed(market0: InstrumentMarket, market1: InstrumentMarket, instruments_file: str,
+                   log: ExceptionLog) -> NDArray[np.bool_]:
+    """Per instrument of ``market0``: listed on both dates with different terms (logged per instrument)."""
+    j = market1.locate(market0.ids.to_numpy())
+    both = market0.listed & take(market1.listed, j, False)
+    detail = np.full(len(j), "", dtype=object)
+    jj = np.where(both, j, 0)
+    for name in ("underlying", "option_type", "strike", "expiry", "multiplier", "currency"):  # six fields, not rows
+        if not both.any():
+            break
+        before, after = getattr(market0, name), getattr(market1, name)
+        differs = both & (before != after[jj])
+        if differs.any():
+            text = pd.Series(before[differs]).astype(str) + " -> " + pd.Series(after[jj][differs]).astype(str)
+            detail[differs] = detail[differs] + f"{name} " + text.to_numpy(dtype=object) + "; "
+    changed = detail != ""
+    log.add(instruments_file, market0.ids[changed].to_numpy(), "instrument terms changed between dates",
+            pd.Series(detail[changed], dtype=object).str.rstrip("; ").to_numpy(dtype=object))
+    return changed
+
+
 def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, market1: InstrumentMarket,
                log: ExceptionLog) -> Legs:
     """Match trades across the two dates, run each leg's checks, and return the accepted ones."""
@@ -74,8 +109,8 @@ def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, ma
     ok1 = np.ones(len(p1), dtype=bool)
 
     # The other leg was rejected by a row rule on its own date.
-    gone1 = np.isin(ids0, run.rejected_trades["trade_id"].to_numpy(dtype=object))
-    gone0 = np.isin(ids1, prior.rejected_trades["trade_id"].to_numpy(dtype=object))
+    gone1 = pd.Series(ids0, dtype=object).isin(run.rejected_trades["trade_id"]).to_numpy()
+    gone0 = pd.Series(ids1, dtype=object).isin(prior.rejected_trades["trade_id"]).to_numpy()
     _reject(log, file0, ids0, gone1, "trade rejected on the other date",
             f"its row in {file1} breaks a rule (see that row)")
     _reject(log, file1, ids1, gone0, "trade rejected on the other date",
@@ -88,55 +123,74 @@ def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, ma
     both = j1 >= 0
     changed = np.zeros(len(p0), dtype=bool)
     changed[both] = inst_p0[both] != inst_p1[j1[both]]
-    _reject(log, file1, ids0, changed, "trade changed instrument between dates",
+    _reject(log, file1, ids0, ok0 & changed, "trade changed instrument between dates",
             "a trade_id must keep its instrument; book a close and a new trade instead")
     ok0 &= ~changed
     ok1[j1[changed]] = False
 
     i0 = market0.locate(inst_p0)
     i1_of_p1 = market1.locate(inst_p1)
-    expiry0 = np.where(i0 >= 0, market0.expiry[np.maximum(i0, 0)], np.datetime64("NaT"))
+    i1_of_p0 = market1.locate(inst_p0)
+    expiry0 = take(market0.expiry, i0, np.datetime64("NaT"))
     expired = (i0 >= 0) & (expiry0 <= run_day)
 
-    # Prior leg: the instrument must be priced on the prior date (this also catches a position
-    # held on the prior date in an option that had already expired).
-    bad0 = ok0 & ~((i0 >= 0) & market0.usable[np.maximum(i0, 0)])
-    reason0 = np.where(i0 >= 0, market0.reason[np.maximum(i0, 0)],
-                       "instrument_id not in instruments.parquet")
-    _reject_by_reason(log, file0, ids0, bad0, "position cannot be priced on the prior date", reason0.astype(object))
+    # Instruments are static: every trade in an option whose terms differ between the two files is
+    # rejected (the instrument gets a row of its own); a carried trade gets one row, on the prior date.
+    moved = _terms_changed(market0, market1, run.raw.path("instruments.parquet"), log)
+    moved0 = ok0 & take(moved, i0, False)
+    moved1 = ok1 & (j0 < 0) & take(moved, market0.locate(inst_p1), False)
+    for file, ids, inst, bad in ((file0, ids0, inst_p0, moved0), (file1, ids1, inst_p1, moved1)):  # two dates
+        _reject(log, file, ids, bad, "instrument terms changed between dates",
+                "the terms of " + inst.astype(str) + " differ between the two instruments files (see that row)")
+    ok0 &= ~moved0
+    ok1 &= ~moved1
+
+    # Prior leg: the instrument must be listed and priced on the prior date (this also catches a
+    # position held on the prior date in an option that had already expired).
+    reason0 = _leg_reason(prior, market0, inst_p0, i0)
+    bad0 = ok0 & (reason0 != "")
+    _reject_by_reason(log, file0, ids0, bad0, "position cannot be priced on the prior date", reason0)
     ok0 &= ~bad0
 
-    # Run leg of trades still held and not expired: priced on the run date.
+    # Run leg of trades still held and not expired: listed and priced on the run date.
     active1 = np.ones(len(p1), dtype=bool)
     expires_tonight = expired & (expiry0 == run_day)
     active1[j0 >= 0] = ~expires_tonight[j0[j0 >= 0]]
-    bad1 = ok1 & active1 & ~((i1_of_p1 >= 0) & market1.usable[np.maximum(i1_of_p1, 0)])
-    reason1 = np.where(i1_of_p1 >= 0, market1.reason[np.maximum(i1_of_p1, 0)],
-                       "instrument_id not in instruments.parquet").astype(object)
+    reason1 = _leg_reason(run, market1, inst_p1, i1_of_p1)
+    bad1 = ok1 & active1 & (reason1 != "")
     _reject_by_reason(log, file1, ids1, bad1, "position cannot be priced on the run date", reason1)
     ok1 &= ~bad1
 
-    # Closed and expired trades need the run date's mark (closed) or spot (expired).
-    i1_of_p0 = market1.locate(inst_p0)
-    closed = ok0 & ~both & ~expired
-    bad_closed = closed & ~((i1_of_p0 >= 0) & market1.usable[np.maximum(i1_of_p0, 0)])
-    _reject(log, file0, ids0, bad_closed, "closed position cannot be priced on the run date",
-            np.where(i1_of_p0 >= 0, market1.reason[np.maximum(i1_of_p0, 0)], "no run-date terms").astype(object))
-    ok0 &= ~bad_closed
-    settle_on_run = expired & (expiry0 > np.datetime64(prior.raw.as_of, "D"))
-    bad_exp = ok0 & settle_on_run & ~((i1_of_p0 >= 0) & market1.spot_known[np.maximum(i1_of_p0, 0)])
-    _reject(log, file0, ids0, bad_exp, "expired position cannot be settled",
-            f"its underlying has no spot on {run.raw.as_of}")
-    ok0 &= ~bad_exp
+    ok0 &= ~_settle_checks(prior, run, market1, ids0, ok0, both, expired, expiry0, i1_of_p0, log)
 
     # A failure on either leg rejects the trade on both dates.
-    held = both & ok0 & ok1[np.where(both, j1, 0)]
+    held = both & ok0 & take(ok1, np.where(both, j1, -1), False)
     ok0 &= held | ~both
     ok1[j1[both & ~held]] = False
     ok1[(j0 >= 0)] &= ok0[j0[j0 >= 0]]
 
     legs = _assemble(p0, p1, ids0, ids1, j1, j0, ok0, ok1, expired, i0, i1_of_p0, i1_of_p1, run)
     return _apply_fx(legs, prior, run, market1, log)
+
+
+def _settle_checks(prior: CleanNight, run: CleanNight, market1: InstrumentMarket, ids0: NDArray[np.object_],
+                   ok0: NDArray[np.bool_], both: NDArray[np.bool_], expired: NDArray[np.bool_],
+                   expiry0: NDArray[np.datetime64], i1_of_p0: NDArray[np.intp], log: ExceptionLog,
+                   ) -> NDArray[np.bool_]:
+    """Prior-date trades gone or expired by the run date: closed ones need the run date's mark,
+    expired ones the run date's spot and no rejected run-date terms. Returns the failures."""
+    file0 = prior.raw.path("positions.parquet")
+    closed = ok0 & ~both & ~expired
+    bad_closed = closed & ~take(market1.usable, i1_of_p0, False)
+    _reject(log, file0, ids0, bad_closed, "closed position cannot be priced on the run date",
+            take(market1.reason, i1_of_p0, "no run-date terms").astype(object))
+    settle_on_run = ok0 & expired & (expiry0 > np.datetime64(prior.raw.as_of, "D"))
+    terms_bad = take(market1.terms_rejected, i1_of_p0, True)
+    bad_exp = settle_on_run & (terms_bad | ~take(market1.spot_known, i1_of_p0, False))
+    detail = np.where(terms_bad, f"its row in instruments.parquet of {run.raw.as_of} breaks a rule (see that row)",
+                      f"its underlying has no spot on {run.raw.as_of}").astype(object)
+    _reject(log, file0, ids0, bad_exp, "expired position cannot be settled", detail)
+    return bad_closed | bad_exp
 
 
 def _assemble(p0: pd.DataFrame, p1: pd.DataFrame, ids0: NDArray[np.object_], ids1: NDArray[np.object_],
@@ -192,7 +246,6 @@ def select(legs: Legs, keep: NDArray[np.bool_]) -> Legs:
 
 def trade_date_flags(run: CleanNight, legs: Legs, prior_day: dt.date) -> NDArray[np.bool_]:
     """New trades whose trade_date is on or before the prior date: booked late."""
-    rows = np.maximum(legs.row1, 0)
-    trade_date = run.positions["trade_date"].to_numpy(dtype="datetime64[D]")[rows]
+    trade_date = take(run.positions["trade_date"].to_numpy(dtype="datetime64[D]"), legs.row1, np.datetime64("NaT"))
     is_new = np.isin(legs.status, [NEW, NEW_UNPRICED])
     return is_new & (trade_date <= np.datetime64(prior_day, "D"))
