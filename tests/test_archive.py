@@ -1,0 +1,257 @@
+"""The DuckDB archive: a rerun replaces a date in every table, a failed run changes nothing, each run is
+recorded with its inputs' hashes and settings, and every SQL statement takes its values as parameters.
+
+The helpers at the top (checksums, night rows) are also used by test_crash_safety and test_concurrency.
+"""
+
+from __future__ import annotations
+
+import ast
+import contextlib
+import datetime as dt
+import hashlib
+import json
+import re
+import shutil
+from pathlib import Path
+
+import duckdb
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+import pytest
+
+import attribution
+import attribution.archive as archive_module
+from attribution.cli import main
+from attribution.config import JobConfig
+from attribution.schema import TABLES
+from tests.mini_desk import PRIOR, RUN, write_mini_desk
+
+VOLATILE_RUN_COLUMNS = ["run_id", "started_at", "finished_at", "seconds"]
+ORDER = {"position_pnl": ["trade_id"], "book_pnl": ["book"], "input_exceptions": ["file", "key", "rule", "detail"],
+         "book_quality": ["book"], "runs": ["as_of"]}
+
+
+# ---------------------------------------------------------------- helpers shared with other archive-level tests
+
+def checksums(con: duckdb.DuckDBPyConnection, before: dt.date | None = None) -> dict[str, tuple[int, int]]:
+    """Row count and sum of row hashes of every table (only rows dated before ``before`` when given)."""
+    out = {}
+    for table in TABLES:
+        count, total = con.execute(
+            f"SELECT count(*), coalesce(sum(hash(t)), 0) FROM {table} t WHERE as_of < coalesce(?, DATE '9999-12-31')",
+            [before]).fetchone()
+        out[table] = (int(count), int(total))
+    return out
+
+
+def night_rows(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> dict[str, pd.DataFrame]:
+    """Every table's rows of one date, in a fixed order, without the run's clock readings."""
+    out = {}
+    for table in TABLES:
+        frame = con.execute(f"SELECT * FROM {table} WHERE as_of = ?", [as_of]).df()
+        if table == "runs":
+            frame = frame.drop(columns=VOLATILE_RUN_COLUMNS)
+        out[table] = frame.sort_values(ORDER[table]).reset_index(drop=True)
+    return out
+
+
+def assert_same_rows(got: dict[str, pd.DataFrame], want: dict[str, pd.DataFrame]) -> None:
+    """Identical rows, table by table (exact: same code, same inputs, same machine)."""
+    for table in TABLES:
+        pd.testing.assert_frame_equal(got[table], want[table], check_exact=True, obj=table)
+
+
+def read_archive(path: Path, as_of: dt.date) -> tuple[dict[str, tuple[int, int]], dict[str, pd.DataFrame]]:
+    """All-row checksums and one night's rows, read-only."""
+    con = duckdb.connect(str(path), read_only=True)
+    try:
+        return checksums(con), night_rows(con, as_of)
+    finally:
+        con.close()
+
+
+# ---------------------------------------------------------------- a mini desk with one rejected position
+
+@pytest.fixture(scope="module")
+def desk(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The mini desk, plus a run-date position in an unknown instrument (so every table gets rows)."""
+    root = write_mini_desk(tmp_path_factory.mktemp("archive") / "data")
+    path = root / f"as_of={RUN.isoformat()}" / "positions.parquet"
+    positions = pq.read_table(path)
+    extra = pa.Table.from_pylist([{"trade_id": "TX", "book": "Index vol", "instrument_id": "NO-SUCH-OPTION",
+                                   "quantity": 1.0, "trade_date": RUN, "trade_price": 1.0}], schema=positions.schema)
+    pq.write_table(pa.concat_tables([positions, extra]), path)
+    return root
+
+
+def run(data: Path, box: Path) -> int:
+    """``attribution run`` of the mini desk's run date in ``box`` (BUS/252; no reports: the archive is tested).
+
+    Archive and reports are named relative to ``box``, so copies of a box record the same settings.
+    """
+    with contextlib.chdir(box):
+        return main(["run", "--as-of", RUN.isoformat(), "--data", str(data), "--archive", "a.duckdb",
+                     "--reports", "reports", "--basis", "BUS/252", "--no-reports"])
+
+
+@pytest.fixture(scope="module")
+def archived(desk: Path, tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A folder whose archive holds one run of the desk's run date."""
+    box = tmp_path_factory.mktemp("archived")
+    assert run(desk, box) == 3  # the rejected position makes it exit 3
+    return box
+
+
+def copy_of(box: Path, into: Path) -> Path:
+    """A private copy of an archive folder."""
+    shutil.copytree(box, into, ignore=shutil.ignore_patterns("*.lock"))
+    return into
+
+
+def test_rerun_replaces_the_date_in_every_table(archived, desk, tmp_path):
+    """A rerun leaves each table with the same rows for the date as one run: nothing duplicated, nothing lost."""
+    box = copy_of(archived, tmp_path / "box")
+    sums_once, rows_once = read_archive(box / "a.duckdb", RUN)
+    assert all(len(rows_once[t]) > 0 for t in TABLES), {t: len(f) for t, f in rows_once.items()}
+    assert run(desk, box) == 3
+    sums_twice, rows_twice = read_archive(box / "a.duckdb", RUN)
+    assert {t: n for t, (n, _) in sums_twice.items()} == {t: n for t, (n, _) in sums_once.items()}
+    assert_same_rows(rows_twice, rows_once)
+    assert rows_twice["position_pnl"]["trade_id"].is_unique and rows_twice["book_pnl"]["book"].is_unique
+    assert len(rows_twice["runs"]) == 1
+
+
+def test_rerun_with_changed_inputs_leaves_no_stale_rows(archived, desk, tmp_path):
+    """A rerun after a position left the run date's file drops that position's old row (replace, not merge)."""
+    box = copy_of(archived, tmp_path / "box")
+    data = shutil.copytree(desk, tmp_path / "data")
+    path = data / f"as_of={RUN.isoformat()}" / "positions.parquet"
+    positions = pq.read_table(path)
+    pq.write_table(positions.filter(pc.not_equal(positions["trade_id"], "T8")), path)
+    assert "T8" in set(read_archive(box / "a.duckdb", RUN)[1]["position_pnl"]["trade_id"])
+    assert run(data, box) == 3
+    _, rows = read_archive(box / "a.duckdb", RUN)
+    assert sorted(rows["position_pnl"]["trade_id"]) == ["T1", "T2", "T3", "T4", "T5", "T6", "T7"]
+    assert int(rows["runs"]["positions_in"].iloc[0]) == 8  # T1-T7 and the rejected TX
+    assert len(rows["runs"]) == 1
+
+
+def _fail_quality(series: pd.DataFrame, as_of: object) -> pd.DataFrame:
+    raise RuntimeError("injected failure in the quality step")
+
+
+def _fail_runs_insert(original):
+    def insert(con: duckdb.DuckDBPyConnection, table: str, frame: pd.DataFrame) -> None:
+        if table == "runs":
+            raise RuntimeError("injected failure inserting the run record")
+        original(con, table, frame)
+    return insert
+
+
+@pytest.mark.parametrize("where", ["quality step", "run record insert"])
+def test_failed_write_leaves_the_archive_exactly_as_it_was(archived, desk, tmp_path, monkeypatch, capsys, where):
+    """A failure inside write_night after its deletes rolls everything back; the run exits 1 naming the error."""
+    box = copy_of(archived, tmp_path / "box")
+    before, rows_before = read_archive(box / "a.duckdb", RUN)
+    if where == "quality step":
+        monkeypatch.setattr(archive_module, "quality_frame", _fail_quality)
+    else:
+        monkeypatch.setattr(archive_module, "_insert", _fail_runs_insert(archive_module._insert))
+    capsys.readouterr()
+    assert run(desk, box) == 1
+    assert "injected failure" in capsys.readouterr().err
+    after, rows_after = read_archive(box / "a.duckdb", RUN)
+    assert after == before
+    assert_same_rows(rows_after, rows_before)
+
+
+def test_run_record_holds_input_hashes_and_settings(archived, desk):
+    """The runs row names every input file with its SHA-256 (checked with hashlib) and the job's settings."""
+    _, rows = read_archive(archived / "a.duckdb", RUN)
+    record = rows["runs"].iloc[0]
+    hashes = json.loads(record["input_hashes"])
+    files = sorted(p for d in (PRIOR, RUN) for p in (desk / f"as_of={d.isoformat()}").glob("*.parquet"))
+    assert len(files) == 12
+    assert hashes == {str(p): hashlib.sha256(p.read_bytes()).hexdigest() for p in files}
+    settings = json.loads(record["job_settings"])
+    expected = JobConfig(data_root=desk, archive_path=Path("a.duckdb"), reports_dir=Path("reports"),
+                         time_basis="BUS/252", write_reports=False)
+    assert settings == json.loads(json.dumps(expected.as_record()))
+    assert record["tool_version"] == attribution.__version__ and record["status"] == "complete"
+    assert pd.Timestamp(record["prior_as_of"]).date() == PRIOR and int(record["exit_code"]) == 3
+    assert int(record["positions_in"]) == int(record["positions_archived"]) + int(record["positions_rejected"])
+    assert int(record["positions_archived"]) == len(rows["position_pnl"])
+
+
+# ---------------------------------------------------------------- SQL takes values as parameters
+
+SQL_WORDS = re.compile(r"\b(SELECT|INSERT|DELETE|UPDATE|CREATE|DROP|ALTER|ATTACH|COPY|PRAGMA)\b")
+
+# Expressions that may be formatted into SQL: table and column names taken from attribution.schema
+# (checked below to be plain identifiers), never a value. A new one needs a reviewer's look.
+ALLOWED_IN_SQL = {
+    "archive.py": {"table", "body", "view"},
+    "report.py": {"_columns(BOOK_PNL)", "_columns(BOOK_QUALITY)", "_columns(RUNS)", "terms", "row_cols",
+                  "exception_cols"},
+}
+
+
+def _is_sql(node: ast.AST) -> bool:
+    if isinstance(node, ast.Constant) and isinstance(node.value, str):
+        return bool(SQL_WORDS.search(node.value))
+    if isinstance(node, ast.JoinedStr):
+        return any(_is_sql(part) for part in node.values)
+    return False
+
+
+def sql_formatting_findings(source: str, file_name: str) -> list[str]:
+    """Places where ``source`` formats something other than an allowed identifier list into SQL text."""
+    allowed = ALLOWED_IN_SQL.get(file_name, set())
+    findings = []
+    for node in ast.walk(ast.parse(source)):
+        where = f"{file_name}:{getattr(node, 'lineno', '?')}"
+        if isinstance(node, ast.JoinedStr) and _is_sql(node):
+            for part in node.values:
+                if isinstance(part, ast.FormattedValue) and ast.unparse(part.value) not in allowed:
+                    findings.append(f"{where}: f-string puts {ast.unparse(part.value)!r} into SQL")
+        elif isinstance(node, ast.BinOp) and isinstance(node.op, ast.Mod | ast.Add) and \
+                (_is_sql(node.left) or _is_sql(node.right)):
+            findings.append(f"{where}: SQL built with {type(node.op).__name__}")
+        elif isinstance(node, ast.Call) and isinstance(node.func, ast.Attribute) and \
+                node.func.attr == "format" and _is_sql(node.func.value):
+            findings.append(f"{where}: SQL built with str.format")
+    return sorted(findings, key=lambda f: int(f.split(":")[1]))
+
+
+def test_every_sql_statement_takes_values_as_parameters():
+    """No f-string, %-format, + or .format puts anything but a schema identifier list into SQL in attribution/."""
+    package = Path(attribution.__file__).parent
+    findings = [f for path in sorted(package.glob("*.py"))
+                for f in sql_formatting_findings(path.read_text(encoding="utf-8"), path.name)]
+    assert findings == []
+
+
+def test_sql_scan_flags_values_formatted_into_statements():
+    """The scan above catches each way of formatting a value into SQL (so its silence means something)."""
+    bad = '''
+def f(con, as_of, book):
+    con.execute(f"DELETE FROM position_pnl WHERE as_of = '{as_of}'")
+    con.execute("SELECT * FROM book_pnl WHERE book = '%s'" % book)
+    con.execute("SELECT * FROM book_pnl WHERE book = '" + book + "'")
+    con.execute("SELECT * FROM runs WHERE as_of = '{}'".format(as_of))
+    con.execute(f"INSERT INTO {table} SELECT 1")
+'''
+    findings = sql_formatting_findings(bad, "archive.py")
+    assert [f.split(": ", 1)[1] for f in findings] == [
+        "f-string puts 'as_of' into SQL", "SQL built with Mod", "SQL built with Add",
+        "SQL built with str.format"]
+
+
+def test_schema_names_are_plain_identifiers():
+    """Every table and column name is a lower-case identifier, so formatting them into SQL cannot inject."""
+    names = [t for t in TABLES] + [c for cols in TABLES.values() for c, _ in cols]
+    assert all(re.fullmatch(r"[a-z][a-z0-9_]*", n) for n in names), [n for n in names
+                                                                    if not re.fullmatch(r"[a-z][a-z0-9_]*", n)]
