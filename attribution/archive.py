@@ -27,8 +27,9 @@ class ArchiveBusyError(RuntimeError):
 
 
 def lock_path(archive: Path) -> Path:
-    """The lock file beside the archive."""
-    return archive.with_name(archive.name + ".lock")
+    """The lock file beside the archive file, links followed: every name of one archive shares one lock."""
+    real = archive.resolve()
+    return real.with_name(real.name + ".lock")
 
 
 @contextlib.contextmanager
