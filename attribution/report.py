@@ -562,9 +562,24 @@ def make_environment() -> jinja2.Environment:
     return env
 
 
+def _remove_leftovers(target: Path) -> None:
+    """Remove the staging and set-aside folders of ``target``'s date that an interrupted render left.
+
+    Safe because one date is rendered by one run at a time (the engine renders under the archive lock).
+    """
+    for pattern in (f".{target.name}.tmp-*", f".{target.name}.old-*"):
+        for stale in target.parent.glob(pattern):
+            if stale.is_dir() and not stale.is_symlink():
+                shutil.rmtree(stale, ignore_errors=True)
+
+
 def _write_atomically(target: Path, files: Mapping[str, str]) -> None:
-    """Write ``files`` into a temporary folder beside ``target``, then move it into place."""
+    """Write ``files`` into a temporary folder beside ``target``, then move it into place.
+
+    Leftovers of an earlier interrupted render of the same date are removed first.
+    """
     target.parent.mkdir(parents=True, exist_ok=True)
+    _remove_leftovers(target)
     staging = target.parent / f".{target.name}.tmp-{secrets.token_hex(6)}"
     staging.mkdir()  # the usual permissions (umask), unlike a private mkdtemp folder
     old: Path | None = None

@@ -263,6 +263,17 @@ def test_write_replaces_an_older_folder_and_leaves_no_temp(tmp_path: Path, night
     assert sorted(p.name for p in reports.iterdir()) == [AS_OF.isoformat()]
 
 
+def test_leftovers_of_an_interrupted_render_are_removed(tmp_path: Path, night) -> None:
+    """Staging and set-aside folders of the date left by a killed render go; another date's are not touched."""
+    con, _ = night
+    reports = tmp_path / "reports"
+    for name in (f".{AS_OF.isoformat()}.tmp-1a2b", f".{AS_OF.isoformat()}.old-3c4d", ".2026-03-13.tmp-5e6f"):
+        (reports / name).mkdir(parents=True)
+        (reports / name / "index.html").write_text("half", encoding="utf-8")
+    report.render_night(con, AS_OF, reports, JobConfig())
+    assert sorted(p.name for p in reports.iterdir()) == [".2026-03-13.tmp-5e6f", AS_OF.isoformat()]
+
+
 def test_failed_write_keeps_the_older_folder_and_cleans_up(tmp_path: Path) -> None:
     """A failure while writing leaves the older folder as it was and removes the temporary folder."""
     target = tmp_path / AS_OF.isoformat()
