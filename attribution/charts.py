@@ -133,6 +133,7 @@ class Waterfall:
     label_x: float
     value_x: float
     ticks: tuple[Tick, ...]
+    grid_path: str
     steps: tuple[WaterfallStep, ...]
 
 
@@ -164,8 +165,9 @@ def waterfall(steps: Sequence[tuple[str, str, float | None, str]], total: tuple[
                                   round(y + row_height * 0.62, 1), style, is_total, note))
     bottom = top + len(rows) * row_height
     ticks = tuple(Tick(to_x(t), format_compact(t)) for t in nice_ticks(*domain))
+    grid = "".join(f"M{t.position} {top - 4.0}V{bottom:.1f}" for t in ticks)
     return Waterfall(width, round(bottom + 8.0, 1), left, right, top, round(bottom, 1), to_x(0.0),
-                     round(row_height * 0.66, 1), left - 8.0, width - 6.0, ticks, tuple(laid))
+                     round(row_height * 0.66, 1), left - 8.0, width - 6.0, ticks, grid, tuple(laid))
 
 
 @dataclass(frozen=True, slots=True)
@@ -183,7 +185,8 @@ class Series:
 class LineChart:
     """Lines over nights with a zero line, horizontal gridlines, first/last date labels and optional bars.
 
-    ``bars_path`` is SVG path data (numbers and path commands only) drawing one thin bar per night.
+    ``bars_path`` and ``grid_path`` are SVG path data (numbers and path commands only): one thin bar per
+    night, one horizontal gridline per tick.
     """
 
     width: float
@@ -194,6 +197,7 @@ class LineChart:
     plot_bottom: float
     zero_y: float
     y_ticks: tuple[Tick, ...]
+    grid_path: str
     first_date: str
     last_date: str
     series: tuple[Series, ...]
@@ -201,41 +205,90 @@ class LineChart:
     nights: int
 
 
-def _pixels(*columns: np.ndarray) -> list[int]:
-    """Interleave coordinate columns as whole pixels: x0, y0, x1, y1, ..."""
-    return np.rint(np.column_stack(columns)).astype(np.int64).ravel().tolist()
+def _group_domains(matrix: np.ndarray, starts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per group of rows, [low, high] of the finite values and zero, padded and widened as in ``_domain``."""
+    finite = np.isfinite(matrix)
+    low = np.minimum(np.minimum.reduceat(np.where(finite, matrix, np.inf).min(axis=1), starts), 0.0)
+    high = np.maximum(np.maximum.reduceat(np.where(finite, matrix, -np.inf).max(axis=1), starts), 0.0)
+    flat = high - low < 1e-12
+    pad = 0.04 * (high - low)
+    padded_low = np.where(flat, low - 1.0, np.where(low < 0, low - pad, low))
+    padded_high = np.where(flat, high + 1.0, np.where(high > 0, high + pad, high))
+    return padded_low, padded_high
+
+
+def _whole(values: np.ndarray) -> list[str]:
+    """Pixel coordinates as whole-pixel text (NaN as 0; callers leave those points out)."""
+    return list(map(str, np.rint(np.nan_to_num(values)).astype(np.int64).tolist()))
+
+
+def line_charts(dates: Sequence[dt.date], starts: Sequence[int],
+                lines: Sequence[tuple[str, str, Sequence[float] | np.ndarray]],
+                bars: Sequence[float] | np.ndarray | None = None,
+                width: float = 520.0, height: float = 190.0) -> list[LineChart]:
+    """Many line charts at once: rows ``starts[g]`` up to the next start (or the end) make chart ``g``.
+
+    Each line is (name, style, one value per row); ``bars`` (one per row) share each chart's y scale.
+    Every chart has its own scale; NaN values are left out. The arithmetic runs over all rows at
+    once; only the text of each chart is assembled per chart.
+    """
+    n = len(dates)
+    left, right, top, bottom = 58.0, width - 12.0, 10.0, height - 24.0
+    if n == 0:
+        return [LineChart(width, height, left, right, top, bottom, bottom, (), "", "", "",
+                          tuple(Series(name, style, "", left, bottom) for name, style, _ in lines), "", 0)
+                for _ in starts]
+    first = np.asarray(starts, dtype=np.int64)
+    ends = np.append(first[1:], n)
+    counts = ends - first
+    group = np.repeat(np.arange(first.size), counts)
+    columns = [np.asarray(values, dtype=float) for _, _, values in lines]
+    bar_values = None if bars is None else np.asarray(bars, dtype=float)
+    low, high = _group_domains(np.column_stack(columns + ([] if bar_values is None else [bar_values])), first)
+    per_unit = (bottom - top) / (high - low)
+    step = (right - left) / np.maximum(counts - 1, 1)
+    xs = np.where(counts[group] > 1, left + (np.arange(n) - first[group]) * step[group], (left + right) / 2.0)
+
+    def y_of(values: np.ndarray) -> np.ndarray:
+        return bottom - (values - low[group]) * per_unit[group]
+
+    x_text = _whole(xs)
+    rows = np.arange(n)
+    drawn = []
+    for (name, style, _), values in zip(lines, columns, strict=True):
+        finite = np.isfinite(values)
+        ys = y_of(values)
+        points = [f"{x},{y}" if ok else "" for x, y, ok in zip(x_text, _whole(ys), finite.tolist(), strict=True)]
+        last = np.maximum.reduceat(np.where(finite, rows, -1), first)
+        drawn.append((name, style, points, last, xs, ys))
+    zero = np.round(bottom + low * per_unit, 1)
+    bar_text = [""] * n
+    if bar_values is not None:
+        half = np.clip(step * 0.3, 0.5, 4.0)[group]
+        base = _whole(np.full(n, bottom) + low[group] * per_unit[group])
+        bar_text = [f"M{a} {z}V{t}H{b}V{z}z" if ok else "" for a, b, z, t, ok in
+                    zip(_whole(xs - half), _whole(xs + half), base, _whole(y_of(bar_values)),
+                        np.isfinite(bar_values).tolist(), strict=True)]
+    charts = []
+    for g, (s, e) in enumerate(zip(first.tolist(), ends.tolist(), strict=True)):
+        series = tuple(Series(name, style, " ".join(p for p in points[s:e] if p),
+                              *((round(float(px[last[g]]), 1), round(float(py[last[g]]), 1)) if last[g] >= s
+                                else (left, bottom)))
+                       for name, style, points, last, px, py in drawn)
+        ticks = tuple(Tick(round(bottom - (t - low[g]) * per_unit[g], 1), format_compact(t))
+                      for t in nice_ticks(float(low[g]), float(high[g])))
+        charts.append(LineChart(width, height, left, right, top, bottom, float(zero[g]), ticks,
+                                "".join(f"M{left} {t.position}H{right}" for t in ticks),
+                                dates[s].isoformat(), dates[e - 1].isoformat(), series, "".join(bar_text[s:e]),
+                                e - s))
+    return charts
 
 
 def line_chart(dates: Sequence[dt.date], lines: Sequence[tuple[str, str, Sequence[float] | np.ndarray]],
-               bars: Sequence[float] | np.ndarray = (), width: float = 520.0, height: float = 190.0) -> LineChart:
-    """Plot each (name, style, values) line against night index; optional bars share the y scale."""
-    count = len(dates)
-    arrays = [(name, style, np.asarray(values, dtype=float)) for name, style, values in lines]
-    bar_values = np.asarray(bars, dtype=float)
-    low, high = _domain(np.concatenate([a for _, _, a in arrays] + [bar_values]))
-    left, right, top, bottom = 58.0, width - 12.0, 10.0, height - 24.0
-    per_unit = (bottom - top) / (high - low)
-    xs = left + np.arange(count) * (right - left) / (count - 1) if count > 1 else np.full(count, (left + right) / 2)
-    series = []
-    for name, style, values in arrays:
-        keep = np.isfinite(values)
-        px, py = xs[keep], bottom - (values[keep] - low) * per_unit
-        last = (round(float(px[-1]), 1), round(float(py[-1]), 1)) if px.size else (left, bottom)
-        series.append(Series(name, style, ",".join(map(str, _pixels(px, py))), *last))
-    zero = round(bottom - (0.0 - low) * per_unit, 1)
-    path = ""
-    if bar_values.size:
-        half = max(min((right - left) / max(count - 1, 1) * 0.3, 4.0), 0.5)
-        keep = np.isfinite(bar_values)
-        tops = bottom - (bar_values[keep] - low) * per_unit
-        base = np.full(tops.shape, zero)
-        coords = np.rint(np.column_stack([xs[keep] - half, base, tops, xs[keep] + half])).astype(np.int64).tolist()
-        path = "".join([f"M{a} {b}V{c}H{d}V{b}z" for a, b, c, d in coords])
-    ticks = tuple(Tick(round(bottom - (t - low) * per_unit, 1), format_compact(t)) for t in nice_ticks(low, high))
-    first = dates[0].isoformat() if count else ""
-    last_date = dates[-1].isoformat() if count else ""
-    return LineChart(width, height, left, right, top, bottom, zero, ticks, first, last_date, tuple(series), path,
-                     count)
+               bars: Sequence[float] | np.ndarray | None = None, width: float = 520.0,
+               height: float = 190.0) -> LineChart:
+    """One line chart over ``dates`` (see :func:`line_charts`)."""
+    return line_charts(dates, [0], lines, bars, width, height)[0]
 
 
 @dataclass(frozen=True, slots=True)

@@ -24,6 +24,7 @@ from typing import TypeVar
 import duckdb
 import jinja2
 import markupsafe
+import numpy as np
 import pandas as pd
 
 from attribution import charts
@@ -361,15 +362,14 @@ def _history(frame: pd.DataFrame) -> dict[str, History]:
     dates = pd.to_datetime(frame["as_of"]).dt.date.tolist()
     values = frame[["pnl_actual", "pnl_explained", "pnl_residual"]].fillna(0.0).to_numpy(dtype=float)
     spans = _by_book(frame, list(range(len(frame))))
-    out = {}
-    for book, rows in spans.items():
-        lo, hi = rows[0], rows[-1] + 1
-        when, v = dates[lo:hi], values[lo:hi]
-        out[book] = (charts.line_chart(when, [("Actual", "line-actual", v[:, 0]),
-                                              ("Explained", "line-explained", v[:, 1])]),
-                     charts.line_chart(when, [("Cumulative residual", "line-cumulative", v[:, 2].cumsum())],
-                                       bars=v[:, 2]))
-    return out
+    starts = np.array([rows[0] for rows in spans.values()], dtype=np.int64)
+    residual = values[:, 2]
+    running = np.cumsum(residual)
+    cumulative = running - np.repeat(running[starts] - residual[starts], np.diff(np.append(starts, len(frame))))
+    lines = charts.line_charts(dates, starts, [("Actual", "line-actual", values[:, 0]),
+                                               ("Explained", "line-explained", values[:, 1])])
+    sums = charts.line_charts(dates, starts, [("Cumulative residual", "line-cumulative", cumulative)], bars=residual)
+    return dict(zip(spans, zip(lines, sums, strict=True), strict=True))
 
 
 def _limit_text(f: Mapping[str, float | None], state: str, watch_fraction: float) -> str:
@@ -538,6 +538,21 @@ def position_cells(values: Sequence[float | None]) -> markupsafe.Markup:
     return markupsafe.Markup(_cells([_format_quantity(v) for v in values[:2]] + amounts))
 
 
+def position_text_cells(row: FigureRow) -> markupsafe.Markup:
+    """The text cells of a position row: trade, instrument, underlying, and status with limit word and flags.
+
+    Every text is escaped here (markupsafe.escape), as the template would; one call per row keeps the
+    pages' hot loop short.
+    """
+    esc = markupsafe.escape
+    instrument, underlying, status, flags, limit = row.cells
+    limit_word = f" &middot; <strong>{esc(limit)}</strong>" if limit and limit != "within" else ""
+    flag_line = f'<br><span class="sub small">{esc(flags.replace(",", ", "))}</span>' if flags else ""
+    return markupsafe.Markup(f'<td class="t">{esc(row.label)}</td><td class="t">{esc(instrument)}</td>'
+                             f'<td class="t">{esc(underlying)}</td>'
+                             f'<td class="t wrap">{esc(status)}{limit_word}{flag_line}</td>')
+
+
 def _format_quantity(value: float | None) -> str:
     if charts.is_missing(value):
         return charts.MISSING
@@ -556,6 +571,7 @@ def make_environment() -> jinja2.Environment:
     env.filters["quantity"] = _format_quantity
     env.filters["amount_cells"] = amount_cells
     env.filters["position_cells"] = position_cells
+    env.filters["position_text_cells"] = position_text_cells
     env.filters["file_name"] = lambda path: str(path).replace("\\", "/").rsplit("/", 1)[-1]
     env.globals["missing"] = charts.is_missing
     env.globals["exceptions_shown"] = EXCEPTIONS_SHOWN

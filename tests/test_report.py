@@ -381,8 +381,20 @@ def test_line_chart_and_ticks_cover_the_values() -> None:
                                                                   zip(ticks, ticks[1:], strict=False))) == 1
     dates = [dt.date(2026, 1, 1) + dt.timedelta(days=i) for i in range(5)]
     chart = charts.line_chart(dates, [("x", "line-actual", [1.0, -2.0, 3.0, float("nan"), 5.0])], bars=[1, 2, 3, 4, 5])
-    assert len(chart.series[0].points.split(",")) == 2 * 4                         # NaN night left out
+    assert len(chart.series[0].points.split()) == 4                                 # NaN night left out
     assert chart.bars_path.count("M") == 5 and chart.first_date == "2026-01-01"
+    assert chart.series[0].last_y < chart.zero_y                                    # 5 is above the zero line
+
+
+def test_batched_line_charts_equal_one_chart_at_a_time() -> None:
+    """Charts laid out together for many groups equal each group's chart laid out alone, scale per group."""
+    dates = [dt.date(2026, 1, 1) + dt.timedelta(days=i) for i in range(7)]
+    actual = [1.0, 5.0, -3.0, 100.0, 250.0, -40.0, 7.0]
+    bars = [0.5, -1.0, 2.0, 10.0, -20.0, 5.0, 0.0]
+    together = charts.line_charts(dates, [0, 3, 6], [("a", "line-actual", actual)], bars=bars)
+    for chart, (s, e) in zip(together, [(0, 3), (3, 6), (6, 7)], strict=True):
+        alone = charts.line_chart(dates[s:e], [("a", "line-actual", actual[s:e])], bars=bars[s:e])
+        assert chart == alone
 
 
 def test_pair_bars_share_one_scale() -> None:
