@@ -109,7 +109,10 @@ def write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, frames: dict[str
         _insert(con, "runs", frames["runs"])
         con.execute("COMMIT")
     except BaseException:
-        con.execute("ROLLBACK")
+        # A failed COMMIT (e.g. a full disk) has already ended the transaction, and ROLLBACK would then
+        # raise "no transaction is active" in place of the real cause: the first error is the one to raise.
+        with contextlib.suppress(duckdb.Error):
+            con.execute("ROLLBACK")
         raise
     return quality
 

@@ -24,6 +24,7 @@ import pytest
 
 import attribution
 import attribution.archive as archive_module
+import attribution.engine as engine_module
 from attribution.cli import main
 from attribution.config import JobConfig
 from attribution.schema import TABLES
@@ -166,6 +167,48 @@ def test_failed_write_leaves_the_archive_exactly_as_it_was(archived, desk, tmp_p
     after, rows_after = read_archive(box / "a.duckdb", RUN)
     assert after == before
     assert_same_rows(rows_after, rows_before)
+
+
+class _CommitFailsLikeAFullDisk:
+    """A connection whose COMMIT fails the way DuckDB's does when the disk is full.
+
+    Checked on DuckDB 2.0 with a 3 MB tmpfs: COMMIT raises "TransactionContext Error: Failed to
+    commit: Could not write file ... .wal: No space left on device" and has already ended the
+    transaction, so a following ROLLBACK raises "cannot rollback - no transaction is active".
+    """
+
+    def __init__(self, con: duckdb.DuckDBPyConnection) -> None:
+        self._con = con
+
+    def execute(self, sql: str, *args: object) -> duckdb.DuckDBPyConnection:
+        if sql == "COMMIT":
+            self._con.execute("ROLLBACK")
+            raise duckdb.TransactionException("TransactionContext Error: Failed to commit: Could not write "
+                                              "file \"a.duckdb.wal\": No space left on device")
+        return self._con.execute(sql, *args)
+
+    def __getattr__(self, name: str) -> object:
+        return getattr(self._con, name)
+
+
+def test_failed_commit_reports_its_own_cause(archived, desk, tmp_path, monkeypatch, capsys):
+    """When COMMIT itself fails (disk full), the run exits 1 with that cause, not a rollback error; no change."""
+    box = copy_of(archived, tmp_path / "box")
+    before, _ = read_archive(box / "a.duckdb", RUN)
+    opened = []
+
+    def failing_connect(path: Path, read_only: bool = False) -> _CommitFailsLikeAFullDisk:
+        opened.append(archive_module.connect(path, read_only))
+        return _CommitFailsLikeAFullDisk(opened[-1])
+
+    monkeypatch.setattr(engine_module, "connect", failing_connect)
+    capsys.readouterr()
+    assert run(desk, box) == 1
+    err = capsys.readouterr().err
+    assert "No space left on device" in err and "cannot rollback" not in err, err
+    for con in opened:
+        con.close()
+    assert read_archive(box / "a.duckdb", RUN)[0] == before
 
 
 def test_run_record_holds_input_hashes_and_settings(archived, desk):
