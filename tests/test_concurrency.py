@@ -137,15 +137,17 @@ def archive_state(box: Path) -> dict[str, tuple[int, int]]:
         con.close()
 
 
-def test_second_run_is_refused_at_once_while_the_lock_is_held(data, serial, tmp_path):
-    """While the test process holds the lock, a run exits 1 at once naming the archive and the holder's pid."""
+def test_second_run_is_refused_at_once_while_the_lock_is_held(data, serial, tmp_path, capsys):
+    """While another holder (a thread here) has the lock, a run exits 1 at once naming the archive and its pid."""
     shutil.copytree(serial.box, tmp_path, dirs_exist_ok=True, ignore=shutil.ignore_patterns("*.lock"))
     before = archive_state(tmp_path)
     reports_before = sorted(p.name for p in (tmp_path / REPORTS).rglob("*"))
-    with lock_held_by_this_process(tmp_path / ARCHIVE):
-        refused = run_to_end(tmp_path, data)
-    assert refused.returncode == 1
-    assert ARCHIVE in refused.stderr and f"pid {os.getpid()}" in refused.stderr, refused.stderr
+    capsys.readouterr()
+    with lock_held_by_this_process(tmp_path / ARCHIVE), contextlib.chdir(tmp_path):
+        code = main(args(data))   # a run that waited for the lock would hang here until the holder lets go
+    err = capsys.readouterr().err
+    assert code == 1
+    assert ARCHIVE in err and f"pid {os.getpid()}" in err, err
     assert archive_state(tmp_path) == before
     assert sorted(p.name for p in (tmp_path / REPORTS).rglob("*")) == reports_before
 
@@ -196,13 +198,58 @@ def test_runs_on_two_archives_at_once_do_not_interfere(data, serial, tmp_path):
         assert frozenset(p.name for p in (box / REPORTS / RUN.isoformat()).iterdir()) == pages
 
 
-def test_same_archive_through_a_symbolic_link_is_refused_too(data, tmp_path):
+def test_same_archive_through_a_symbolic_link_is_refused_too(data, tmp_path, capsys):
     """The lock belongs to the archive file, not to the name used for it: a link to a busy archive is refused."""
     connect(tmp_path / ARCHIVE).close()  # an archive with its tables and no night yet
     (tmp_path / "link.duckdb").symlink_to(tmp_path / ARCHIVE)
     before = archive_state(tmp_path)
-    with lock_held_by_this_process(tmp_path / ARCHIVE):
-        refused = run_to_end(tmp_path, data, archive="link.duckdb")
-    assert refused.returncode == 1, refused.stdout
-    assert f"pid {os.getpid()}" in refused.stderr, refused.stderr
+    capsys.readouterr()
+    with lock_held_by_this_process(tmp_path / ARCHIVE), contextlib.chdir(tmp_path):
+        code = main(args(data, archive="link.duckdb"))
+    err = capsys.readouterr().err
+    assert code == 1, err
+    assert f"pid {os.getpid()}" in err, err
     assert archive_state(tmp_path) == before
+
+
+# A run started through this bootstrap stops itself (SIGSTOP) just before it moves its finished report
+# into place, by a Python audit hook on os.rename; the package is unchanged.
+STOP_BEFORE_MOVING_REPORT = """
+import os, signal, sys
+def hook(event, args):
+    if event == "os.rename" and ".tmp-" in str(args[0]):
+        os.kill(os.getpid(), signal.SIGSTOP)
+sys.addaudithook(hook)
+from attribution.cli import main
+sys.exit(main(sys.argv[1:]))
+"""
+
+
+class RunsCollided(AssertionError):
+    """Two runs on different archives writing the same reports folder disturbed each other."""
+
+
+@pytest.mark.xfail(strict=True, raises=RunsCollided,
+                   reason="report._write_atomically is not guarded across archives: the second run's clean-up of "
+                          "the date's leftover folders deletes the first run's live staging folder (or, without that "
+                          "clean-up, the first run's move fails on the folder the second put in place), so the first "
+                          "exits 1 after archiving. Fix in report.py: hold a lock on the reports folder from clean-up "
+                          "to swap")
+def test_runs_on_two_archives_sharing_a_reports_folder_do_not_interfere(data, serial, tmp_path):
+    """Runs on two archives writing one reports folder (the default ./reports) both succeed; one whole report."""
+    first = subprocess.Popen([sys.executable, "-c", STOP_BEFORE_MOVING_REPORT, *args(data, "first.duckdb")],
+                             cwd=tmp_path, stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
+                             stderr=subprocess.PIPE, text=True, start_new_session=True)
+    try:
+        _, status = os.waitpid(first.pid, os.WUNTRACED)   # returns once the first run has stopped itself
+        assert os.WIFSTOPPED(status), status
+        with contextlib.chdir(tmp_path):
+            second = main(args(data, "second.duckdb"))
+    finally:
+        os.kill(first.pid, signal.SIGCONT)
+        _, err = first.communicate(timeout=WAIT_SECONDS)
+    assert second == serial.code
+    if first.returncode != serial.code:
+        raise RunsCollided(f"the first run exited {first.returncode}: {err.strip()}")
+    assert frozenset(p.name for p in (tmp_path / REPORTS / RUN.isoformat()).iterdir()) == serial.pages
+    assert [p.name for p in (tmp_path / REPORTS).iterdir() if p.name.startswith(".")] == []

@@ -366,20 +366,10 @@ def test_kill_while_moving_the_report_into_place_leaves_nothing_half_written(wor
     check_rerun(world, state.sandbox, state.rerun_exit)
 
 
-class LeftoverFolders(AssertionError):
-    """Temporary report folders outlived the next full run (the only failure the xfail below expects)."""
-
-
-@pytest.mark.xfail(strict=True, raises=LeftoverFolders,
-                   reason="report.render_night never removes the temporary folders (.<date>.tmp-*, .<date>.old-*) "
-                          "that a run killed while writing leaves; the fix belongs in report.py: remove a date's "
-                          "stale folders before staging its new report")
 @pytest.mark.parametrize("fixture", ["killed_mid_pages", "killed_at_move"])
 def test_rerun_removes_temporary_folders_left_by_a_killed_render(fixture, request):
     """After a kill inside the report's writes and one full rerun, no temporary folder is left behind."""
     state: KilledInRender = request.getfixturevalue(fixture)
     assert state.rerun_exit in (0, 3)
     assert hidden_entries(state.after_kill / REPORTS)  # the kill did leave folders behind
-    left = hidden_entries(state.sandbox / REPORTS)
-    if left:
-        raise LeftoverFolders(f"left behind after the rerun: {left}")
+    assert hidden_entries(state.sandbox / REPORTS) == []
