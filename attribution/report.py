@@ -451,6 +451,7 @@ def _attention(page: BookPage) -> tuple[int, int, float, str]:
 
 
 def _conventions(frames: NightFrames, as_of: dt.date, config: JobConfig) -> Conventions:
+    """The run's own time basis when its record names one, else the job's; revaluation as archived."""
     basis_name = config.time_basis
     if len(frames.run):
         try:
@@ -468,7 +469,8 @@ def _conventions(frames: NightFrames, as_of: dt.date, config: JobConfig) -> Conv
         time_basis=basis_name, time_basis_words=words, reporting_currency=config.reporting_currency,
         prior_as_of=prior, calendar_days=(as_of - prior).days if prior else None,
         year_fraction=float(basis.year_fraction(prior, as_of)[0]) if prior else None,
-        next_business_day=basis.next_business_day(as_of), revaluation_on=config.revaluation)
+        next_business_day=basis.next_business_day(as_of),
+        revaluation_on=bool(frames.books["reval_spot"].notna().any()) if len(frames.books) else config.revaluation)
 
 
 @dataclass(frozen=True, slots=True)

@@ -331,6 +331,7 @@ def test_revaluation_switched_off_is_shown_as_not_computed(tmp_path: Path) -> No
     page = _page(index, "Skew Desk")
     assert "not computed" in page.text("m-spot-reval") and "not computed" in page.text("m-total-reval")
     assert page.text("m-spot-diff") == charts.MISSING
+    assert "switched off" in page.text("conventions")
 
 
 def test_date_with_nothing_archived_is_refused(night, tmp_path: Path) -> None:
