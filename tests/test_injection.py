@@ -148,10 +148,7 @@ def test_run_with_hostile_names_completes(hostile):
 
 
 def test_no_page_carries_markup_from_the_data(hostile):
-    """No page has a script, image, frame or on* attribute (parsed), nor the raw text '<script' or '<img' anywhere.
-
-    Escaped text may still read 'onerror=' (e.g. in an aria-label value); the parser shows it is no attribute.
-    """
+    """No page has a script, image, frame or on* attribute, nor raw '<script' or '<img'; 'onerror=' only escaped."""
     for name, page in hostile.pages.items():
         lowered = page.lower()
         assert "<script" not in lowered and "<img" not in lowered and "<svg onload" not in lowered, name
