@@ -11,8 +11,10 @@ into place at the end, so a reader never sees a half-written night.
 from __future__ import annotations
 
 import datetime as dt
+import fcntl
 import hashlib
 import json
+import os
 import re
 import secrets
 import shutil
@@ -597,6 +599,18 @@ def _write_atomically(target: Path, files: Mapping[str, str]) -> None:
     Leftovers of an earlier interrupted render of the same date are removed first.
     """
     target.parent.mkdir(parents=True, exist_ok=True)
+    # Runs on different archives may share a reports folder: they take turns here (an OS lock,
+    # released by the kernel however a run ends), so one never cleans up the other's staging.
+    # The lock is on the folder itself, so it leaves no file behind.
+    folder = os.open(target.parent, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        fcntl.flock(folder, fcntl.LOCK_EX)
+        _stage_and_move(target, files)
+    finally:
+        os.close(folder)
+
+
+def _stage_and_move(target: Path, files: Mapping[str, str]) -> None:
     _remove_leftovers(target)
     staging = target.parent / f".{target.name}.tmp-{secrets.token_hex(6)}"
     staging.mkdir()  # the usual permissions (umask), unlike a private mkdtemp folder

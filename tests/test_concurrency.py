@@ -225,12 +225,6 @@ class RunsCollided(AssertionError):
     """Two runs on different archives writing the same reports folder disturbed each other."""
 
 
-@pytest.mark.xfail(strict=True, raises=RunsCollided,
-                   reason="report._write_atomically is not guarded across archives: the second run's clean-up of "
-                          "the date's leftover folders deletes the first run's live staging folder (or, without that "
-                          "clean-up, the first run's move fails on the folder the second put in place), so the first "
-                          "exits 1 after archiving. Fix in report.py: hold a lock on the reports folder from clean-up "
-                          "to swap")
 def test_runs_on_two_archives_sharing_a_reports_folder_do_not_interfere(data, serial, tmp_path):
     """Runs on two archives writing one reports folder (the default ./reports) both succeed; one whole report."""
     first = subprocess.Popen([sys.executable, "-c", STOP_BEFORE_MOVING_REPORT, *args(data, "first.duckdb")],
@@ -239,12 +233,20 @@ def test_runs_on_two_archives_sharing_a_reports_folder_do_not_interfere(data, se
     try:
         _, status = os.waitpid(first.pid, os.WUNTRACED)   # returns once the first run has stopped itself
         assert os.WIFSTOPPED(status), status
+        # The second run archives its night and then waits for the reports folder, which the
+        # stopped first run holds; it must neither fail nor disturb the first run's staging.
+        results: list[int] = []
         with contextlib.chdir(tmp_path):
-            second = main(args(data, "second.duckdb"))
+            worker = threading.Thread(target=lambda: results.append(main(args(data, "second.duckdb"))))
+            worker.start()
+            worker.join(timeout=3.0)
+            assert worker.is_alive(), "the second run should wait for the reports folder"
     finally:
         with contextlib.suppress(ProcessLookupError):  # gone already if it ended instead of stopping
             os.kill(first.pid, signal.SIGCONT)
         _, err = first.communicate(timeout=WAIT_SECONDS)
+    worker.join(timeout=WAIT_SECONDS)
+    second = results[0]
     assert second == serial.code
     if first.returncode != serial.code:
         raise RunsCollided(f"the first run exited {first.returncode}: {err.strip()}")
