@@ -18,11 +18,12 @@ from pathlib import Path
 import duckdb
 import pandas as pd
 
+from attribution.errors import JobFailure
 from attribution.quality import quality_frame
 from attribution.schema import TABLES
 
 
-class ArchiveBusyError(RuntimeError):
+class ArchiveBusyError(JobFailure):
     """Another run holds the archive."""
 
 

@@ -15,12 +15,14 @@ import math
 import sys
 from collections.abc import Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from attribution import __version__
-from attribution.archive import ArchiveBusyError
 from attribution.config import ConfigError, JobConfig, load_job, validate
-from attribution.engine import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE, NightOutcome
-from attribution.loading import InputFileError
+from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE, JobFailure
+
+if TYPE_CHECKING:
+    from attribution.engine import NightOutcome
 
 log = logging.getLogger("attribution")
 
@@ -152,6 +154,13 @@ class ProgressLine:
             sys.stderr.write("\n")
 
 
+def printable(text: str) -> str:
+    """Data-supplied text made safe for a terminal: control characters shown as escapes."""
+    if text.isprintable():
+        return text
+    return "".join(c if c.isprintable() else c.encode("unicode_escape").decode("ascii") for c in text)
+
+
 def _money(x: float) -> str:
     return f"{x:,.0f}"
 
@@ -203,7 +212,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
         print(json.dumps(ledger.to_dict(orient="records"), indent=1))
     else:
         for row in ledger.itertuples(index=False):
-            print(f"{row.severity:<8} {row.file}  key={row.key}  rule: {row.rule}  ({row.detail})")
+            print(printable(f"{row.severity:<8} {row.file}  key={row.key}  rule: {row.rule}  ({row.detail})"))
         print(f"{night.positions_in:,} positions in: {len(night.positions):,} would be explained, "
               f"{night.rejected_positions:,} rejected; {(ledger['severity'] == 'warning').sum():,} warning(s)")
     return EXIT_FINDINGS if night.rejected_positions else EXIT_OK
@@ -299,7 +308,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except ConfigError as exc:
         print(f"attribution: usage error: {exc}", file=sys.stderr)
         return EXIT_USAGE
-    except (InputFileError, ArchiveBusyError, FileNotFoundError) as exc:
+    except (JobFailure, FileNotFoundError) as exc:
         print(f"attribution: failed: {exc}", file=sys.stderr)
         return EXIT_FAILED
     except Exception as exc:  # noqa: BLE001 - the scheduler needs one line and a code, the log has the trace

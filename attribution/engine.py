@@ -22,6 +22,7 @@ from attribution.archive import archive_lock, connect, write_night
 from attribution.config import JobConfig
 from attribution.contract import clean_night
 from attribution.controls import BREACH, WATCH, book_states, position_states
+from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
 from attribution.exceptions_log import REJECTED, WARNING, ExceptionLog
 from attribution.lifecycle import STATUSES, match_legs
 from attribution.loading import InputFileError, RawNight, prior_date, read_night
@@ -30,7 +31,8 @@ from attribution.night import position_rows, stale_flags
 from attribution.schema import BOOK_PNL, EXPOSURE_COLUMNS, PNL_COLUMNS, REVAL_COLUMNS
 from attribution.timebasis import TimeBasis
 
-EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_FINDINGS = 0, 1, 2, 3
+__all__ = ["EXIT_FAILED", "EXIT_FINDINGS", "EXIT_OK", "EXIT_USAGE", "NightOutcome", "PreparedNight",
+           "prepare_night", "run_night"]
 
 Progress = Callable[[str], None]
 

@@ -17,6 +17,8 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from attribution.errors import JobFailure
+
 FOLDER_PATTERN = re.compile(r"^as_of=(\d{4}-\d{2}-\d{2})$")
 
 STRING, FLOAT, DATE = "string", "float64", "date32"
@@ -36,7 +38,7 @@ FILE_COLUMNS: dict[str, tuple[tuple[str, str], ...]] = {
 OPTIONAL_FILES = frozenset({"fx_rates.parquet"})
 
 
-class InputFileError(RuntimeError):
+class InputFileError(JobFailure):
     """A whole input file cannot be used: the run stops and the archive is left untouched."""
 
 
