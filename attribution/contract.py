@@ -43,10 +43,10 @@ def _key(frame: pd.DataFrame, column: str) -> pd.Series:
 
 def _blank(values: pd.Series) -> np.ndarray:
     """Null, or a string of only white space (an empty key is no key)."""
-    text = values.astype(object)
-    missing = text.isna().to_numpy()
-    if values.dtype == object:
-        missing = missing | text.where(~missing, "x").astype(str).str.strip().eq("").to_numpy()
+    missing = values.isna().to_numpy().copy()
+    if values.dtype == object and len(values):
+        text = values.to_numpy(dtype=object)[~missing].astype(str)
+        missing[~missing] = (np.strings.str_len(text) == 0) | np.strings.isspace(text)
     return missing
 
 
