@@ -164,6 +164,7 @@ def _vols(night: CleanNight, ids: pd.Index, reason: NDArray[np.object_], price: 
 
     expiring = (reason == "") & (tau == 0)
     vol[expiring & np.isnan(vol)] = 0.0  # no time left: the value is intrinsic whatever the vol
+    _warn_expiry_marks(ids, expiring, price, spot, strike, cp, checks, marks_file, log)
     solve = (reason == "") & np.isnan(vol)
     vol_solved = np.zeros(len(ids), dtype=bool)
     if solve.any():
@@ -189,6 +190,19 @@ def _vols(night: CleanNight, ids: pd.Index, reason: NDArray[np.object_], price: 
         log.add(marks_file, ids[i[off]].to_numpy(), "implied vol inconsistent with price", detail.to_numpy(),
                 WARNING)
     return vol, vol_solved, vol_mismatch
+
+
+def _warn_expiry_marks(ids: pd.Index, expiring: NDArray[np.bool_], price: FloatArray, spot: FloatArray,
+                       strike: FloatArray, cp: FloatArray, checks: CheckSettings, marks_file: str,
+                       log: ExceptionLog) -> None:
+    """On its expiry date an option is worth its intrinsic value (data contract): a mark above it is warned."""
+    i = np.flatnonzero(expiring)
+    intrinsic = np.maximum(cp[i] * (spot[i] - strike[i]), 0.0)
+    off = np.abs(price[i] - intrinsic) > checks.iv_price_tolerance * np.maximum(price[i], 0.01 * spot[i])
+    detail = pd.Series([f"mark {p:.6g} on the expiry date, intrinsic value {v:.6g}" for p, v in
+                        zip(price[i[off]], intrinsic[off], strict=True)], dtype=object)
+    log.add(marks_file, ids[i[off]].to_numpy(), "expiry-day mark is not the intrinsic value", detail.to_numpy(),
+            WARNING)
 
 
 def flag_stale_marks(prior: InstrumentMarket, run: InstrumentMarket, move: float, marks_file: str,

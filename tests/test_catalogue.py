@@ -286,6 +286,9 @@ CASES = [
     # ---- suspect but explained
     Case("stale mark", _stale,
          Explained((_warn(R, "option_marks", "ZEN-P120-M27", "stale mark"),), statuses={"T2": "carried"})),
+    Case("expiry-day mark above intrinsic", lambda d: d.edit(RUN, "option_marks", "ZEN-C95-EXP", price=9.5),
+         Explained((_warn(R, "option_marks", "ZEN-C95-EXP", "expiry-day mark is not the intrinsic value"),),
+                   statuses={"T4": "expired"})),
     Case("vol does not reprice the mark", lambda d: d.edit(RUN, "option_marks", "ZEN-C100-J27", implied_vol=0.35),
          Explained((_warn(R, "option_marks", "ZEN-C100-J27", "implied vol inconsistent with price"),),
                    statuses={"T1": "carried", "T8": "new_unpriced"})),

@@ -105,6 +105,16 @@ def test_expiring_today_is_priced_at_intrinsic_with_zero_vol(desk: Path) -> None
     np.testing.assert_allclose(m1.price[k], SPOT[RUN]["ZEN"] - 95.0, rtol=0, atol=1e-12)
 
 
+def test_expiry_day_mark_above_intrinsic_is_warned(desk: Path) -> None:
+    """On its expiry date a call marked 1.00 above max(S - K, 0) is warned (the contract values it at intrinsic)."""
+    _edit(desk, RUN, "option_marks", "ZEN-C95-EXP", price=SPOT[RUN]["ZEN"] - 95.0 + 1.0)
+    _, m1, ledger = _markets(desk)
+    assert ledger[["key", "rule", "severity"]].values.tolist() == [
+        ["ZEN-C95-EXP", "expiry-day mark is not the intrinsic value", WARNING]]
+    assert "intrinsic value 8" in ledger["detail"].iloc[0]
+    assert m1.usable[_at(m1, "ZEN-C95-EXP")]
+
+
 @pytest.mark.parametrize(("inst_id", "side"), [  # below: the in-the-money ones, whose lower bound is > 0.5
     ("ZEN-C100-J27", "below"), ("ZEN-P120-M27", "below"),
     ("ZEN-C100-J27", "above"), ("ZEN-P120-M27", "above"), ("QRX-C50-F27", "above"), ("ZEN-P90-D26", "above")])
