@@ -19,13 +19,13 @@ import pandas as pd
 
 from attribution import __version__
 from attribution.archive import archive_lock, connect, write_night
-from attribution.config import JobConfig
+from attribution.config import ConfigError, JobConfig
 from attribution.contract import clean_night
 from attribution.controls import BREACH, WATCH, book_states, position_states
 from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
 from attribution.exceptions_log import REJECTED, WARNING, ExceptionLog
 from attribution.lifecycle import STATUSES, match_legs
-from attribution.loading import InputFileError, RawNight, prior_date, read_night
+from attribution.loading import RawNight, prior_date, read_night
 from attribution.market import build_market, flag_stale_marks, instrument_terms
 from attribution.night import position_rows, stale_flags
 from attribution.schema import BOOK_PNL, EXPOSURE_COLUMNS, PNL_COLUMNS, REVAL_COLUMNS
@@ -96,13 +96,43 @@ def _resolve_prior(config: JobConfig, as_of: dt.date, prior: dt.date | None) -> 
     if prior is None:
         return prior_date(config.data_root, as_of)
     if prior >= as_of:
-        raise InputFileError(f"prior date {prior} must be before the run date {as_of}")
+        raise ConfigError(f"--prior: prior date {prior} must be before the run date {as_of}")
     return prior
 
 
+NULL_KEY = "(null) row "
+
+
+def _position_books(raw0: RawNight, raw1: RawNight, exceptions: pd.DataFrame) -> pd.DataFrame:
+    """The ledger with a ``book`` column (the book of the position a row is about, else null) and
+    ``position``: one identity per input position (its trade_id; file and row for a keyless row)."""
+    on_positions = exceptions["file"].str.endswith("positions.parquet").to_numpy()
+    keys = exceptions["key"].astype(str)
+    keyless = keys.str.startswith(NULL_KEY).to_numpy() & on_positions
+    book = np.full(len(exceptions), None, dtype=object)
+    by_trade = pd.concat([r.tables["positions.parquet"][["trade_id", "book"]] for r in (raw1, raw0)])
+    by_trade = by_trade.dropna(subset=["trade_id"]).drop_duplicates("trade_id").set_index("trade_id")["book"]
+    with_key = on_positions & ~keyless
+    book[with_key] = by_trade.reindex(keys[with_key]).to_numpy(dtype=object)
+    for raw in (raw0, raw1):
+        mine = keyless & (exceptions["file"] == raw.path("positions.parquet")).to_numpy()
+        if mine.any():
+            rows = keys[mine].str.slice(len(NULL_KEY)).astype(int).to_numpy()
+            book[mine] = raw.tables["positions.parquet"]["book"].to_numpy(dtype=object)[rows]
+    book[on_positions] = pd.Series(book[on_positions], dtype=object).fillna("(no book)").to_numpy()
+    position = np.where(keyless, exceptions["file"] + "#" + keys, keys)
+    return exceptions.assign(book=book, position=np.where(on_positions, position, None))
+
+
+def _rejected_positions(ledger: pd.DataFrame) -> pd.DataFrame:
+    """One row per rejected input position (book, position identity)."""
+    rejected = ledger[(ledger["severity"] == REJECTED) & ledger["position"].notna()]
+    return rejected.drop_duplicates("position")[["book", "position"]]
+
+
 def _conservation(raw0: RawNight, raw1: RawNight, archived: pd.Series,
-                  exceptions: pd.DataFrame) -> tuple[int, int, tuple[str, ...]]:
-    """Positions in (distinct trades over both dates, plus keyless rows), rejected, and any unaccounted."""
+                  rejected: pd.DataFrame) -> tuple[int, tuple[str, ...]]:
+    """Positions in (distinct trades over both dates, plus keyless rows) and any unaccounted."""
     ids = []
     keyless = 0
     for raw in (raw0, raw1):
@@ -110,22 +140,12 @@ def _conservation(raw0: RawNight, raw1: RawNight, archived: pd.Series,
         ids.append(tid[tid.notna()].astype(str))
         keyless += int(tid.isna().sum())
     universe = pd.Index(pd.concat(ids).unique())
-    is_pos = exceptions["file"].str.endswith("positions.parquet") & (exceptions["severity"] == REJECTED)
-    rejected_keys = pd.Index(exceptions.loc[is_pos, "key"].unique())
-    rejected = rejected_keys.intersection(universe)
-    accounted = pd.Index(archived.astype(str)).union(rejected)
+    accounted = pd.Index(archived.astype(str)).union(pd.Index(rejected["position"].astype(str)))
     missing = universe.difference(accounted)
-    return len(universe) + keyless, len(rejected) + keyless, tuple(missing[:20].tolist())
+    return len(universe) + keyless, tuple(missing[:20].tolist())
 
 
-def _book_of_rejected(raw0: RawNight, raw1: RawNight, keys: pd.Index) -> pd.Series:
-    frames = [r.tables["positions.parquet"][["trade_id", "book"]] for r in (raw1, raw0)]
-    both = pd.concat(frames).dropna(subset=["trade_id"]).drop_duplicates("trade_id")
-    mapped = both.set_index("trade_id")["book"].reindex(keys)
-    return mapped.fillna("(no book)")
-
-
-def _book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, raw0: RawNight, raw1: RawNight,
+def _book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.DataFrame,
                 config: JobConfig, as_of: dt.date, prior_as_of: dt.date) -> pd.DataFrame:
     """One row per book: sums, counts by status, rejected and warning counts, limit state."""
     amounts = list(PNL_COLUMNS) + list(REVAL_COLUMNS) + list(EXPOSURE_COLUMNS)
@@ -134,9 +154,7 @@ def _book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, raw0: RawNigh
     for column in REVAL_COLUMNS:  # NULL when the method is off
         sums[column] = grouped[column].sum(min_count=1)
     counts = pd.crosstab(positions["book"], positions["status"]).reindex(columns=list(STATUSES), fill_value=0)
-    is_pos = exceptions["file"].str.endswith("positions.parquet") & (exceptions["severity"] == REJECTED)
-    rejected_keys = pd.Index(exceptions.loc[is_pos, "key"].unique())
-    rejected_books = _book_of_rejected(raw0, raw1, rejected_keys).value_counts()
+    rejected_books = rejected["book"].value_counts()
     warn = exceptions[exceptions["severity"] == WARNING]
     touched = pd.concat([positions[["book", "instrument_id"]].rename(columns={"instrument_id": "key"}),
                          positions[["book", "trade_id"]].rename(columns={"trade_id": "key"})]).drop_duplicates()
@@ -190,12 +208,14 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     position_limit = positions["book"].map({b: x.position_abs for b, x in by_book.items()}).to_numpy(float)
     fraction = positions["book"].map({b: x.watch_fraction for b, x in by_book.items()}).to_numpy(float)
     positions["limit_state"] = position_states(positions["pnl_residual"], position_limit, fraction)
-    exceptions = log.frame()
-    books = _book_frame(positions, exceptions, raw0, raw1, config, as_of, prior_as_of)
-    positions_in, rejected, missing = _conservation(raw0, raw1, positions["trade_id"], exceptions)
+    ledger = _position_books(raw0, raw1, log.frame())
+    rejected = _rejected_positions(ledger)
+    exceptions = ledger.drop(columns="position")
+    books = _book_frame(positions, exceptions, rejected, config, as_of, prior_as_of)
+    positions_in, missing = _conservation(raw0, raw1, positions["trade_id"], rejected)
     watch.lap("controls")
     hashes = {raw.path(f): h for raw in (raw0, raw1) for f, h in raw.hashes.items()}
-    return PreparedNight(as_of, prior_as_of, positions, books, exceptions, hashes, positions_in, rejected,
+    return PreparedNight(as_of, prior_as_of, positions, books, exceptions, hashes, positions_in, len(rejected),
                          missing, tuple(watch.stages))
 
 

@@ -214,7 +214,7 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
     prior_date = pd.Timestamp(prior).date() if prior is not None and not pd.isna(prior) else as_of
     terms = ", ".join(f"sum({c}) AS {c}" for c in (*TERM_COLUMNS, *EXPOSURE_COLUMNS))
     row_cols = ", ".join((*POSITION_TEXT, "quantity", "quantity_run_date", *TERM_COLUMNS))
-    exception_cols = "file, key, rule, detail, severity"
+    exception_cols = "file, key, rule, detail, severity, book"
     return NightFrames(
         books=books,
         quality=_frame(con, f"SELECT {_columns(BOOK_QUALITY)} FROM book_quality WHERE as_of = ? ORDER BY book",
@@ -240,9 +240,14 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
                        UNION SELECT book, instrument_id FROM position_pnl WHERE as_of = ?
                        UNION SELECT book, underlying FROM position_pnl WHERE as_of = ?
                        UNION SELECT book, book FROM book_pnl WHERE as_of = ?)
-            SELECT DISTINCT k.book, e.exception_id, e.file, e.key, e.rule, e.detail, e.severity
-            FROM e JOIN k ON e.key = k.key ORDER BY k.book, e.exception_id""",
-                     [as_of, as_of, prior_date, as_of, as_of, as_of]),
+            SELECT DISTINCT book, exception_id, file, key, rule, detail, severity FROM (
+                SELECT k.book, e.exception_id, e.file, e.key, e.rule, e.detail, e.severity
+                FROM e JOIN k ON e.key = k.key
+                UNION ALL  -- a rejected position names its book even when it is in no archived row
+                SELECT e.book, e.exception_id, e.file, e.key, e.rule, e.detail, e.severity FROM e
+                WHERE e.book IS NOT NULL AND e.book IN (SELECT book FROM book_pnl WHERE as_of = ?))
+            ORDER BY book, exception_id""",
+                     [as_of, as_of, prior_date, as_of, as_of, as_of, as_of]),
         history=_frame(con, """
             SELECT book, as_of, pnl_actual, pnl_explained, pnl_residual FROM book_pnl
             WHERE as_of <= ? AND book IN (SELECT book FROM book_pnl WHERE as_of = ?)

@@ -61,6 +61,7 @@ BOOK_PNL: tuple[tuple[str, str], ...] = (
 INPUT_EXCEPTIONS: tuple[tuple[str, str], ...] = (
     ("as_of", "DATE"), ("file", "VARCHAR"), ("key", "VARCHAR"), ("rule", "VARCHAR"),
     ("detail", "VARCHAR"), ("severity", "VARCHAR"),
+    ("book", "VARCHAR"),   # the book of the position a row is about; NULL for rows of other files
 )
 
 BOOK_QUALITY: tuple[tuple[str, str], ...] = (

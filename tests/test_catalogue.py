@@ -177,14 +177,9 @@ CASES = [
     Case("missing column", lambda d: d.column(PRIOR, "option_marks", "implied_vol", None),
          Fails("as_of=2026-11-27/option_marks.parquet", "required column 'implied_vol' is missing")),
     pytest.param(Case("prior equal to run date", lambda d: None, Fails("prior date 2026-11-30", "--prior", EXIT_USAGE),
-                      ("--prior", "2026-11-30")),
-                 marks=pytest.mark.xfail(strict=True, reason="engine._resolve_prior raises InputFileError, so the "
-                                         "exit code is 1; README 'Exit codes' makes a bad date a usage error (2), "
-                                         "and the message does not name the --prior flag")),
+                      ("--prior", "2026-11-30"))),
     pytest.param(Case("prior after run date", lambda d: None, Fails("prior date 2026-12-01", "--prior", EXIT_USAGE),
-                      ("--prior", "2026-12-01")),
-                 marks=pytest.mark.xfail(strict=True, reason="as for a prior equal to the run date: exit 1, "
-                                         "not the usage error (2) of README 'Exit codes'")),
+                      ("--prior", "2026-12-01"))),
     # ---- files that are valid but unusual
     Case("optional fx file absent", lambda d: d.path(RUN, "fx_rates").unlink(),
          Explained((_rej(R, "fx_rates", "EUR", "no FX rate for currency"), _rej(R, "positions", "T3", "no FX rate")),
@@ -212,11 +207,7 @@ CASES = [
          Explained((_rej(R, "positions", "(null) row 4", "trade_id is null"),))),
     pytest.param(Case("null trade_id on both dates, same row", _both_dates("positions", "T2", trade_id=None),
                       Explained((_rej(P, "positions", "(null) row 1", "trade_id is null"),
-                                 _rej(R, "positions", "(null) row 1", "trade_id is null")))),
-                 marks=pytest.mark.xfail(strict=True, reason="engine._book_frame counts rejected rows by key "
-                                         "alone, so '(null) row 1' of both dates counts once: book_pnl.rejected "
-                                         "sums to 1 while runs.positions_rejected is 2 (count by file and key, "
-                                         "and take the book from the row instead of '(no book)')")),
+                                 _rej(R, "positions", "(null) row 1", "trade_id is null"))))),
     Case("unknown instrument", lambda d: d.edit(RUN, "positions", "T8", instrument_id="ZEN-C999-Z27"),
          Explained((_rej(R, "positions", "T8", NO_VOL),), frozenset({"T8"}))),
     Case("unknown underlying", _both_dates("instruments", "QRX-C50-F27", underlying="QRZ"),

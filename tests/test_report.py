@@ -410,9 +410,9 @@ def test_book_page_caps_its_exception_list_and_counts_them_all(tmp_path: Path) -
     """Past EXCEPTIONS_SHOWN rows a book page lists rejected rows first, counts every row by rule and links the rest."""
     con = build_archive(tmp_path / "a.duckdb", ("Busy Book",), per_book=6, history_nights=3)
     extra = report.EXCEPTIONS_SHOWN + 10
-    con.executemany("INSERT INTO input_exceptions VALUES (?, ?, ?, ?, ?, ?)",
+    con.executemany("INSERT INTO input_exceptions VALUES (?, ?, ?, ?, ?, ?, ?)",
                     [[AS_OF, "/data/as_of=2026-03-16/underlying_marks.parquet", "KRLX", "mark unchanged",
-                      f"night {i}", "warning"] for i in range(extra)])
+                      f"night {i}", "warning", None] for i in range(extra)])
     index = report.render_night(con, AS_OF, tmp_path / "reports", JobConfig())
     page = _page(index, "Busy Book")
     matched = con.execute("SELECT count(*) FROM input_exceptions WHERE as_of = ? AND key IN ('KRLX', 'TAPR', "
