@@ -6,7 +6,11 @@ Statuses (see README.md, "Statuses"):
   amendment line;
 * ``closed``: held on the prior date only; explained to the run-date mark;
 * ``new`` / ``new_unpriced``: booked on the run date, with / without a trade price;
-* ``expired``: held on the prior date, expiry on or before the run date; settles at intrinsic.
+* ``expired``: held on the prior date, expiry after it and on or before the run date; settles at
+  intrinsic on the run-date spot;
+* ``settled``: held on the prior date, its expiry date: already settled by that night's run (as
+  ``expired``), it is carried here with the (normally zero) change from its expiry-day mark to
+  intrinsic, so that an expiry is counted once.
 
 A trade whose leg on either date cannot be used is rejected whole: it gets a ``rejected`` row
 keyed by its trade_id for each failing leg, and no row in ``position_pnl``.
@@ -25,8 +29,9 @@ from attribution.contract import CleanNight
 from attribution.exceptions_log import ExceptionLog
 from attribution.market import InstrumentMarket, take
 
-CARRIED, CLOSED, NEW, NEW_UNPRICED, EXPIRED = "carried", "closed", "new", "new_unpriced", "expired"
-STATUSES = (CARRIED, CLOSED, NEW, NEW_UNPRICED, EXPIRED)
+CARRIED, CLOSED, NEW, NEW_UNPRICED, EXPIRED, SETTLED = "carried", "closed", "new", "new_unpriced", "expired", "settled"
+STATUSES = (CARRIED, CLOSED, NEW, NEW_UNPRICED, EXPIRED, SETTLED)
+EXPIRIES = (EXPIRED, SETTLED)
 
 
 @dataclass(frozen=True, slots=True)
@@ -169,7 +174,8 @@ def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, ma
     ok1[j1[both & ~held]] = False
     ok1[(j0 >= 0)] &= ok0[j0[j0 >= 0]]
 
-    legs = _assemble(p0, p1, ids0, ids1, j1, j0, ok0, ok1, expired, i0, i1_of_p0, i1_of_p1, run)
+    settled = expired & (expiry0 <= np.datetime64(prior.raw.as_of, "D"))
+    legs = _assemble(p0, p1, ids0, ids1, j1, j0, ok0, ok1, expired, settled, i0, i1_of_p0, i1_of_p1, run)
     return _apply_fx(legs, prior, run, market1, log)
 
 
@@ -195,8 +201,8 @@ def _settle_checks(prior: CleanNight, run: CleanNight, market1: InstrumentMarket
 
 def _assemble(p0: pd.DataFrame, p1: pd.DataFrame, ids0: NDArray[np.object_], ids1: NDArray[np.object_],
               j1: NDArray[np.intp], j0: NDArray[np.intp], ok0: NDArray[np.bool_], ok1: NDArray[np.bool_],
-              expired: NDArray[np.bool_], i0: NDArray[np.intp], i1_of_p0: NDArray[np.intp],
-              i1_of_p1: NDArray[np.intp], run: CleanNight) -> Legs:
+              expired: NDArray[np.bool_], settled: NDArray[np.bool_], i0: NDArray[np.intp],
+              i1_of_p0: NDArray[np.intp], i1_of_p1: NDArray[np.intp], run: CleanNight) -> Legs:
     from_prior = np.flatnonzero(ok0)
     new_rows = np.flatnonzero(ok1 & (j0 < 0))
     status_prior = np.where(expired[from_prior], EXPIRED, np.where(j1[from_prior] >= 0, CARRIED, CLOSED))
@@ -204,6 +210,7 @@ def _assemble(p0: pd.DataFrame, p1: pd.DataFrame, ids0: NDArray[np.object_], ids
     status_new = np.where(priced, NEW, NEW_UNPRICED)
     row1_prior = np.where(status_prior == CARRIED, j1[from_prior], -1)
     row1_prior = np.where((status_prior == EXPIRED) & (j1[from_prior] >= 0), j1[from_prior], row1_prior)
+    status_prior = np.where(settled[from_prior], SETTLED, status_prior)
     return Legs(
         trade_id=np.concatenate([ids0[from_prior], ids1[new_rows]]),
         book=np.concatenate([p0["book"].to_numpy(dtype=object)[from_prior],

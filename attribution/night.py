@@ -13,7 +13,7 @@ from numpy.typing import NDArray
 
 from attribution.contract import CleanNight
 from attribution.explain import MarketState, explain_overnight
-from attribution.lifecycle import CARRIED, CLOSED, EXPIRED, NEW, NEW_UNPRICED, Legs, trade_date_flags
+from attribution.lifecycle import CARRIED, CLOSED, EXPIRIES, NEW, NEW_UNPRICED, Legs, trade_date_flags
 from attribution.market import InstrumentMarket, take
 from attribution.pricing import greeks_unchecked
 from attribution.revaluation import shapley_shares
@@ -47,7 +47,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     has_prior = legs.row0 >= 0
     overnight = np.isin(status, [CARRIED, CLOSED])
     is_new = np.isin(status, [NEW, NEW_UNPRICED])
-    expired = status == EXPIRED
+    expired = np.isin(status, EXPIRIES)  # expired tonight, or settled on the prior date
     i0 = np.maximum(legs.inst0, 0)
     i1 = legs.inst1
     qty0 = np.where(has_prior, take(prior.positions["quantity"].to_numpy(float), legs.row0, 0.0), 0.0)
@@ -149,7 +149,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
 
 def stale_flags(frame: pd.DataFrame, stale_instruments: NDArray[np.object_]) -> pd.DataFrame:
     """Add the ``stale_mark`` flag to rows whose run-date mark was found stale."""
-    hit = frame["instrument_id"].isin(stale_instruments).to_numpy() & (frame["status"] != EXPIRED).to_numpy()
+    hit = frame["instrument_id"].isin(stale_instruments).to_numpy() & ~frame["status"].isin(EXPIRIES).to_numpy()
     if hit.any():
         flags = frame["flags"].to_numpy(dtype=object).copy()
         flags[hit] = np.where(flags[hit] == "", "stale_mark", flags[hit] + ",stale_mark")

@@ -407,7 +407,7 @@ def _rule_counts(rows: tuple[ExceptionRow, ...]) -> tuple[tuple[str, str, int], 
     return tuple((severity, rule, n) for (severity, rule), n in sorted(counts.items()))
 
 
-_COUNT_COLUMNS = ("positions", "carried", "closed", "new", "new_unpriced", "expired", "rejected", "warnings",
+_COUNT_COLUMNS = ("positions", "carried", "closed", "new", "new_unpriced", "expired", "settled", "rejected", "warnings",
                   "position_breaches")
 
 

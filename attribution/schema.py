@@ -49,7 +49,8 @@ POSITION_PNL: tuple[tuple[str, str], ...] = (
 BOOK_PNL: tuple[tuple[str, str], ...] = (
     ("as_of", "DATE"), ("prior_as_of", "DATE"), ("book", "VARCHAR"),
     ("positions", "BIGINT"), ("carried", "BIGINT"), ("new", "BIGINT"), ("new_unpriced", "BIGINT"),
-    ("closed", "BIGINT"), ("expired", "BIGINT"), ("rejected", "BIGINT"), ("warnings", "BIGINT"),
+    ("closed", "BIGINT"), ("expired", "BIGINT"), ("settled", "BIGINT"), ("rejected", "BIGINT"),
+    ("warnings", "BIGINT"),
     *((c, "DOUBLE") for c in PNL_COLUMNS),
     *((c, "DOUBLE") for c in REVAL_COLUMNS),
     *((c, "DOUBLE") for c in EXPOSURE_COLUMNS),

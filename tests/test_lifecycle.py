@@ -155,12 +155,12 @@ def test_expired_between_the_dates_settles_at_the_run_date_spot(desk: Path) -> N
 
 
 def test_expired_on_the_prior_date_settles_at_the_prior_spot(desk: Path) -> None:
-    """An option expiring on the prior date itself is marked at intrinsic then and settles at the prior spot."""
+    """An option expiring on the prior date (expired in that night's run) is ``settled`` at the prior spot."""
     fri = Inst("ZEN-P104-FRI", "ZEN", "put", 104.0, PRIOR, 100.0, "USD")
     _add_instrument(desk, fri, days=(PRIOR,), marked_on=(PRIOR,))
     _add_position(desk, PRIOR, "T9", fri.instrument_id, -4.0)
     row = _by_trade(_night(desk)).loc["T9"]
-    assert row["status"] == "expired"
+    assert row["status"] == "settled"
     np.testing.assert_allclose(row["pnl_expiry"], -4 * 100.0 * (4.0 - mark(fri, PRIOR)), rtol=0, atol=1e-9)
 
 
