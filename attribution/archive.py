@@ -17,6 +17,7 @@ from pathlib import Path
 
 import duckdb
 import pandas as pd
+import pyarrow as pa
 
 from attribution.errors import JobFailure
 from attribution.quality import quality_frame
@@ -76,15 +77,11 @@ def connect(archive: Path, read_only: bool = False) -> duckdb.DuckDBPyConnection
 
 
 def _insert(con: duckdb.DuckDBPyConnection, table: str, frame: pd.DataFrame) -> None:
+    """Append ``frame``'s rows; its columns are put in the table's order, so the insert is positional."""
     if frame.empty:
         return
     names = [name for name, _ in TABLES[table]]
-    view = f"incoming_{table}"
-    con.register(view, frame[names])
-    try:
-        con.execute(f"INSERT INTO {table} BY NAME SELECT * FROM {view}")
-    finally:
-        con.unregister(view)
+    con.from_arrow(pa.Table.from_pandas(frame[names], preserve_index=False)).insert_into(table)
 
 
 def quality_series(con: duckdb.DuckDBPyConnection, up_to: dt.date) -> pd.DataFrame:

@@ -7,7 +7,7 @@ import datetime as dt
 from collections.abc import Callable
 
 from attribution.config import JobConfig
-from attribution.engine import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, NightOutcome, run_night
+from attribution.engine import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, NightOutcome, open_archive, run_night
 from attribution.loading import InputFileError, available_dates
 
 
@@ -28,10 +28,11 @@ def backfill(config: JobConfig, start: dt.date, end: dt.date, reports_last: int 
         raise InputFileError(f"{config.data_root}: no run date between {start} and {end} with a prior folder")
     progress = ProgressLine(len(nights))
     outcomes: list[NightOutcome] = []
-    for k, night in enumerate(nights):
-        with_reports = config.write_reports and (reports_last < 0 or k >= len(nights) - reports_last)
-        outcomes.append(run_night(dataclasses.replace(config, write_reports=with_reports), night))
-        progress.step(str(night))
+    with open_archive(config) as session:  # held for the whole range: no other run slips in between nights
+        for k, night in enumerate(nights):
+            with_reports = config.write_reports and (reports_last < 0 or k >= len(nights) - reports_last)
+            outcomes.append(run_night(dataclasses.replace(config, write_reports=with_reports), night, session=session))
+            progress.step(str(night))
     progress.close()
     last = outcomes[-1]
     echo(summary(last, config))

@@ -6,14 +6,16 @@
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import json
 import time
 import uuid
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import duckdb
 import numpy as np
 import pandas as pd
 
@@ -235,34 +237,65 @@ def _runs_frame(night: PreparedNight, config: JobConfig, run_id: str, started: d
     }])
 
 
-def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
-              progress: Progress | None = None) -> NightOutcome:
-    """Run one night into the archive (and reports); the archive is locked for the whole run."""
-    started, t0 = dt.datetime.now(), time.perf_counter()
+class ArchiveSession:
+    """The archive held by this process: locked at once, opened (and created) only when first written."""
+
+    def __init__(self, config: JobConfig) -> None:
+        self._path = config.archive_path
+        self._con: duckdb.DuckDBPyConnection | None = None
+
+    @property
+    def con(self) -> duckdb.DuckDBPyConnection:
+        if self._con is None:
+            self._con = connect(self._path)
+        return self._con
+
+    def close(self) -> None:
+        if self._con is not None:
+            self._con.close()
+            self._con = None
+
+
+@contextlib.contextmanager
+def open_archive(config: JobConfig) -> Iterator[ArchiveSession]:
+    """Lock the archive for the runs of this process (one run, or a whole backfill)."""
     with archive_lock(config.archive_path):
-        night = prepare_night(config, as_of, prior, progress)
-        if night.unaccounted:
-            raise RuntimeError(f"{as_of}: positions neither archived nor rejected: {', '.join(night.unaccounted)}")
-        watch = _Stopwatch(progress)
-        book_breaches = int((night.books["limit_state"] == BREACH).sum())
-        position_breaches = int((night.positions["limit_state"] == BREACH).sum())
-        findings = night.rejected_positions > 0 or book_breaches > 0 or position_breaches > 0
-        exit_code = EXIT_FINDINGS if findings else EXIT_OK
-        con = connect(config.archive_path)
+        session = ArchiveSession(config)
         try:
-            frames = {"position_pnl": night.positions, "book_pnl": night.books,
-                      "input_exceptions": night.exceptions,
-                      "runs": _runs_frame(night, config, str(uuid.uuid4()), started, exit_code,
-                                          time.perf_counter() - t0)}
-            quality = write_night(con, as_of, frames)
-            watch.lap("archive")
-            index_path = None
-            if config.write_reports:
-                from attribution.report import render_night
-                index_path = render_night(con, as_of, config.reports_dir, config)
-                watch.lap("report")
+            yield session
         finally:
-            con.close()
+            session.close()
+
+
+def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
+              progress: Progress | None = None, session: ArchiveSession | None = None) -> NightOutcome:
+    """Run one night into the archive (and reports); the archive is locked for the whole run.
+
+    ``session`` is an archive already held with :func:`open_archive` (a backfill keeps one).
+    A run that fails before archiving leaves the archive as it was (not even created).
+    """
+    if session is None:
+        with open_archive(config) as own:
+            return run_night(config, as_of, prior, progress, own)
+    started, t0 = dt.datetime.now(), time.perf_counter()
+    night = prepare_night(config, as_of, prior, progress)
+    if night.unaccounted:
+        raise RuntimeError(f"{as_of}: positions neither archived nor rejected: {', '.join(night.unaccounted)}")
+    watch = _Stopwatch(progress)
+    book_breaches = int((night.books["limit_state"] == BREACH).sum())
+    position_breaches = int((night.positions["limit_state"] == BREACH).sum())
+    findings = night.rejected_positions > 0 or book_breaches > 0 or position_breaches > 0
+    exit_code = EXIT_FINDINGS if findings else EXIT_OK
+    frames = {"position_pnl": night.positions, "book_pnl": night.books, "input_exceptions": night.exceptions,
+              "runs": _runs_frame(night, config, str(uuid.uuid4()), started, exit_code, time.perf_counter() - t0)}
+    con = session.con
+    quality = write_night(con, as_of, frames)
+    watch.lap("archive")
+    index_path = None
+    if config.write_reports:
+        from attribution.report import render_night
+        index_path = render_night(con, as_of, config.reports_dir, config)
+        watch.lap("report")
     pos = night.positions
     return NightOutcome(
         as_of=as_of, prior_as_of=night.prior_as_of, positions_in=night.positions_in, archived=len(pos),
