@@ -60,6 +60,8 @@ def test_planted_faults_are_caught(demo, tmp_path):
                               [day, fault.instrument_or_trade]).fetchone()[0]
             assert gap > 1_000.0
         elif fault.kind == "missing_mark":
-            assert detail >= 1
+            rejected = con.execute("SELECT count(*) FROM input_exceptions WHERE as_of = ? AND severity = 'rejected' "
+                                   "AND detail LIKE '%no usable option mark%'", [day]).fetchone()[0]
+            assert rejected >= 1
     con.close()
     assert {f.kind for f in faults} >= {"stale_mark", "fat_finger_mark", "missing_mark"}
