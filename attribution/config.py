@@ -45,6 +45,7 @@ class CheckSettings:
     stale_spot_move: float = 0.002     # a mark unchanged while its underlying moved more than this share
     iv_price_tolerance: float = 0.005  # |model(marked vol) - price| / max(price, 0.01 * spot) above this warns
     max_abs_quantity: float = 1e9      # contracts; above this a quantity is taken as a booking error
+    max_abs_rate: float = 1.0          # a zero rate or dividend yield beyond +-100 % is a unit error (4 for 0.04)
 
 
 @dataclass(frozen=True, slots=True)

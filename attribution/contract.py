@@ -155,7 +155,7 @@ def _marks(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.DataFr
     return rules.clean().set_index("instrument_id")
 
 
-def _underlyings(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
+def _underlyings(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.DataFrame:
     file = "underlying_marks.parquet"
     frame = raw.tables[file]
     rules = _Rules(log, raw.path(file), frame, "underlying")
@@ -163,10 +163,13 @@ def _underlyings(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
     rules.unique("underlying")
     rules.finite("spot", "dividend_yield")
     rules.positive("spot")
+    rules.reject(np.abs(frame["dividend_yield"].to_numpy(dtype=float)) > checks.max_abs_rate,
+                 "dividend_yield is absurd", lambda m: shown(frame, "dividend_yield")(m)
+                 + f" is beyond +-{checks.max_abs_rate:g}; yields are decimals (0.02 for 2 %)")
     return rules.clean().set_index("underlying")
 
 
-def _curves(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
+def _curves(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.DataFrame:
     file = "rate_curves.parquet"
     frame = raw.tables[file].copy()
     frame["point"] = frame["currency"].astype(str) + " @ " + frame["tenor_years"].astype(str) + "y"
@@ -175,6 +178,9 @@ def _curves(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
     rules.finite("tenor_years", "zero_rate")
     rules.reject(frame["tenor_years"].to_numpy(dtype=float) < 0, "tenor_years must be >= 0",
                  shown(frame, "tenor_years"))
+    rules.reject(np.abs(frame["zero_rate"].to_numpy(dtype=float)) > checks.max_abs_rate, "zero_rate is absurd",
+                 lambda m: shown(frame, "zero_rate")(m)
+                 + f" is beyond +-{checks.max_abs_rate:g}; rates are decimals (0.04 for 4 %)")
     rules.unique("point")
     # A curve missing one of its points would be interpolated across the gap: the whole curve is left out.
     broken = frame["currency"].isin(frame.loc[~rules.ok, "currency"].dropna()).to_numpy()
@@ -211,8 +217,8 @@ def clean_night(raw: RawNight, log: ExceptionLog, checks: CheckSettings, reporti
         positions=positions,
         instruments=_instruments(raw, log),
         marks=_marks(raw, log, checks),
-        underlyings=_underlyings(raw, log),
-        curves=_curves(raw, log),
+        underlyings=_underlyings(raw, log, checks),
+        curves=_curves(raw, log, checks),
         fx=_fx(raw, log, reporting_currency),
         rejected_trades=rejected,
     )

@@ -105,6 +105,7 @@ ROW_CASES = [
     ("underlying_marks", 1, "spot", INF, "spot is not a finite number"),
     ("underlying_marks", 1, "dividend_yield", NAN, "dividend_yield is not a finite number"),
     ("underlying_marks", 1, "dividend_yield", -INF, "dividend_yield is not a finite number"),
+    ("underlying_marks", 1, "dividend_yield", 3.0, "dividend_yield is absurd"),
     ("fx_rates", 1, "currency", None, "currency is null"),
     ("fx_rates", 1, "rate", 0.0, "rate must be > 0"),
     ("fx_rates", 1, "rate", -1.1, "rate must be > 0"),
@@ -215,6 +216,20 @@ def test_curve_with_a_bad_point_is_left_out_whole(desk: Path) -> None:
     assert got == {"USD @ 1.0y": "zero_rate is not a finite number", "EUR @ -1.0y": "tenor_years must be >= 0",
                    "USD @ 0.5y": "curve has a rejected point", "USD @ 2.0y": "curve has a rejected point",
                    "EUR @ 1.0y": "curve has a rejected point"}
+
+
+def test_percent_scaled_zero_rate_rejects_its_curve(desk: Path) -> None:
+    """A zero rate of 4 (meant 0.04) is beyond the +-100 % check: that curve is left out, named by point."""
+    _put(desk, "rate_curves", [
+        {"currency": "USD", "tenor_years": 1.0, "zero_rate": 4.0},
+        {"currency": "USD", "tenor_years": 2.0, "zero_rate": 0.041},
+        {"currency": "EUR", "tenor_years": 1.0, "zero_rate": 0.021},
+    ])
+    night, ledger = _clean(desk)
+    assert night.curves["currency"].tolist() == ["EUR"]
+    got = dict(zip(ledger["key"], ledger["rule"], strict=True))
+    assert got == {"USD @ 1.0y": "zero_rate is absurd", "USD @ 2.0y": "curve has a rejected point"}
+    assert "rates are decimals" in ledger.set_index("key").loc["USD @ 1.0y", "detail"]
 
 
 def test_duplicate_curve_point_and_null_currency(desk: Path) -> None:
