@@ -103,6 +103,7 @@ def _resolve_prior(config: JobConfig, as_of: dt.date, prior: dt.date | None) -> 
 
 
 NULL_KEY = "(null) row "
+NO_BOOK = "(no book)"  # the book shown for a rejected position row without one
 
 
 def _position_books(raw0: RawNight, raw1: RawNight, exceptions: pd.DataFrame) -> pd.DataFrame:
@@ -112,16 +113,18 @@ def _position_books(raw0: RawNight, raw1: RawNight, exceptions: pd.DataFrame) ->
     keys = exceptions["key"].astype(str)
     keyless = keys.str.startswith(NULL_KEY).to_numpy() & on_positions
     book = np.full(len(exceptions), None, dtype=object)
-    by_trade = pd.concat([r.tables["positions.parquet"][["trade_id", "book"]] for r in (raw1, raw0)])
-    by_trade = by_trade.dropna(subset=["trade_id"]).drop_duplicates("trade_id").set_index("trade_id")["book"]
     with_key = on_positions & ~keyless
+    wanted = keys[with_key].unique()  # only the few trades the ledger names, not every position
+    by_trade = pd.concat([r.tables["positions.parquet"].loc[lambda f: f["trade_id"].isin(wanted), ["trade_id", "book"]]
+                          for r in (raw1, raw0)])
+    by_trade = by_trade.drop_duplicates("trade_id").set_index("trade_id")["book"]
     book[with_key] = by_trade.reindex(keys[with_key]).to_numpy(dtype=object)
     for raw in (raw0, raw1):
         mine = keyless & (exceptions["file"] == raw.path("positions.parquet")).to_numpy()
-        if mine.any():
+        if mine.any():  # the key names the row's number in the file, which is the frame's index label
             rows = keys[mine].str.slice(len(NULL_KEY)).astype(int).to_numpy()
-            book[mine] = raw.tables["positions.parquet"]["book"].to_numpy(dtype=object)[rows]
-    book[on_positions] = pd.Series(book[on_positions], dtype=object).fillna("(no book)").to_numpy()
+            book[mine] = raw.tables["positions.parquet"]["book"].loc[rows].to_numpy(dtype=object)
+    book[on_positions] = pd.Series(book[on_positions], dtype=object).fillna(NO_BOOK).to_numpy()
     position = np.where(keyless, exceptions["file"] + "#" + keys, keys)
     return exceptions.assign(book=book, position=np.where(on_positions, position, None))
 
@@ -158,8 +161,11 @@ def _book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.
     counts = pd.crosstab(positions["book"], positions["status"]).reindex(columns=list(STATUSES), fill_value=0)
     rejected_books = rejected["book"].value_counts()
     warn = exceptions[exceptions["severity"] == WARNING]
-    touched = pd.concat([positions[["book", "instrument_id"]].rename(columns={"instrument_id": "key"}),
-                         positions[["book", "trade_id"]].rename(columns={"trade_id": "key"})]).drop_duplicates()
+    keys = warn["key"].unique()  # a warning touches a book through one of its instruments or trades
+    by_instrument = positions.loc[positions["instrument_id"].isin(keys), ["book", "instrument_id"]]
+    by_trade = positions.loc[positions["trade_id"].isin(keys), ["book", "trade_id"]]
+    touched = pd.concat([by_instrument.rename(columns={"instrument_id": "key"}),
+                         by_trade.rename(columns={"trade_id": "key"})]).drop_duplicates()
     warnings = touched.merge(warn[["key"]], on="key").groupby("book").size()
     books = sums.index.union(rejected_books.index)
     frame = sums.reindex(books, fill_value=0.0)
@@ -185,11 +191,18 @@ def _book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.
 
 
 def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
-                  progress: Progress | None = None) -> PreparedNight:
-    """Read, validate, price and explain one night; nothing is written."""
+                  progress: Progress | None = None, books: frozenset[str] | None = None,
+                  keep_null_books: bool = True) -> PreparedNight:
+    """Read, validate, price and explain one night; nothing is written.
+
+    ``books`` limits the night to the positions of those books (plus those without a book when
+    ``keep_null_books``): one part of a night split over a cluster (:mod:`attribution.dask_engine`).
+    Every other file is read and checked whole. None takes every position.
+    """
     watch = _Stopwatch(progress)
     prior_as_of = _resolve_prior(config, as_of, prior)
-    raw0, raw1 = read_night(config.data_root, prior_as_of), read_night(config.data_root, as_of)
+    raw0 = read_night(config.data_root, prior_as_of, books, keep_null_books)
+    raw1 = read_night(config.data_root, as_of, books, keep_null_books)
     watch.lap("read")
     log = ExceptionLog(as_of)
     basis = TimeBasis(config.time_basis, config.holidays)
@@ -278,7 +291,11 @@ def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
         with open_archive(config) as own:
             return run_night(config, as_of, prior, progress, own)
     started, t0 = dt.datetime.now(), time.perf_counter()
-    night = prepare_night(config, as_of, prior, progress)
+    if config.engine == "dask":
+        from attribution.dask_engine import prepare_night_dask
+        night = prepare_night_dask(config, as_of, prior, progress)
+    else:
+        night = prepare_night(config, as_of, prior, progress)
     if night.unaccounted:
         raise RuntimeError(f"{as_of}: positions neither archived nor rejected: {', '.join(night.unaccounted)}")
     watch = _Stopwatch(progress)

@@ -101,6 +101,21 @@ def _terms_changed(market0: InstrumentMarket, market1: InstrumentMarket, instrum
     return changed
 
 
+def match_keys(left: NDArray[np.object_], right: NDArray[np.object_]) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
+    """For unique keys on each side: the row of each left key on the right (-1 if absent), and back.
+
+    One hash pass over both sides (``pd.factorize`` on object arrays) and integer look-ups after it,
+    which is several times faster than building string indexes for millions of trade ids.
+    """
+    codes, uniques = pd.factorize(np.concatenate([left, right]), use_na_sentinel=False)
+    left_codes, right_codes = codes[: len(left)], codes[len(left):]
+    where_right = np.full(len(uniques), -1, dtype=np.intp)
+    where_right[right_codes] = np.arange(len(right), dtype=np.intp)
+    where_left = np.full(len(uniques), -1, dtype=np.intp)
+    where_left[left_codes] = np.arange(len(left), dtype=np.intp)
+    return where_right[left_codes], where_left[right_codes]
+
+
 def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, market1: InstrumentMarket,
                log: ExceptionLog) -> Legs:
     """Match trades across the two dates, run each leg's checks, and return the accepted ones."""
@@ -108,8 +123,7 @@ def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, ma
     file0, file1 = prior.raw.path("positions.parquet"), run.raw.path("positions.parquet")
     run_day = np.datetime64(run.raw.as_of, "D")
     ids0, ids1 = p0["trade_id"].to_numpy(dtype=object), p1["trade_id"].to_numpy(dtype=object)
-    j1 = pd.Index(ids1).get_indexer(ids0)          # prior row -> run row
-    j0 = pd.Index(ids0).get_indexer(ids1)          # run row -> prior row
+    j1, j0 = match_keys(ids0, ids1)               # prior row -> run row, run row -> prior row
     ok0 = np.ones(len(p0), dtype=bool)
     ok1 = np.ones(len(p1), dtype=bool)
 
