@@ -13,8 +13,10 @@ import re
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from attribution.errors import JobFailure
@@ -107,19 +109,44 @@ def _cast(column: pa.ChunkedArray, kind: str) -> pa.ChunkedArray:
     return column.cast(target)
 
 
-def _to_frame(path: Path, table: pa.Table, columns: tuple[tuple[str, str], ...]) -> pd.DataFrame:
+def _to_frame(path: Path, table: pa.Table, columns: tuple[tuple[str, str], ...],
+              index: pd.Index | None = None) -> pd.DataFrame:
     data: dict[str, pd.Series] = {}
+    rows = pd.RangeIndex(table.num_rows) if index is None else index
     for name, kind in columns:
         try:
             values = _cast(table.column(name), kind).to_numpy(zero_copy_only=False)
         except pa.ArrowException as exc:
             raise InputFileError(f"{path}: column '{name}' cannot be read as {kind} ({exc})") from exc
-        data[name] = pd.Series(values, dtype=object if kind == STRING else None)
-    return pd.DataFrame(data, index=pd.RangeIndex(table.num_rows))
+        data[name] = pd.Series(values, index=rows, dtype=object if kind == STRING else None)
+    return pd.DataFrame(data, index=rows)
 
 
-def read_file(folder: Path, file: str) -> tuple[pd.DataFrame | None, str]:
-    """One file as a frame (None when an optional file is absent) and its SHA-256."""
+def blank_books(book: pa.Array | pa.ChunkedArray) -> np.ndarray:
+    """Per row: the book is null, empty or only white space (such rows go with ``keep_null_books``)."""
+    text = book.cast(pa.string())
+    blank = pc.equal(pc.utf8_length(pc.utf8_trim_whitespace(text)), 0)
+    return np.asarray(pc.fill_null(blank, True).to_numpy(zero_copy_only=False), dtype=bool)
+
+
+def _book_rows(table: pa.Table, books: frozenset[str], keep_null_books: bool) -> np.ndarray:
+    """Row numbers (in the file) of the positions of ``books``, and of blank books if asked."""
+    book = table.column("book").cast(pa.string())
+    wanted = pc.fill_null(pc.is_in(book, value_set=pa.array(sorted(books), type=pa.string())), False)
+    keep = np.asarray(wanted.to_numpy(zero_copy_only=False), dtype=bool)
+    if keep_null_books:
+        keep |= blank_books(book)
+    return np.flatnonzero(keep)
+
+
+def read_file(folder: Path, file: str, books: frozenset[str] | None = None,
+              keep_null_books: bool = True) -> tuple[pd.DataFrame | None, str]:
+    """One file as a frame (None when an optional file is absent) and its SHA-256 (of the whole file).
+
+    ``books`` (positions.parquet only): keep only the rows of these books, plus those with a null
+    or blank book when ``keep_null_books``; the frame's index is then each row's number in the
+    file, so messages name the same row as a whole read would. None reads every row.
+    """
     path = folder / file
     columns = FILE_COLUMNS[file]
     if not path.exists():
@@ -137,18 +164,31 @@ def read_file(folder: Path, file: str) -> tuple[pd.DataFrame | None, str]:
         arrow_type = table.schema.field(name).type
         if not _kind_ok(kind, arrow_type):
             raise InputFileError(f"{path}: column '{name}' has type {arrow_type}, the contract wants {kind}")
-    return _to_frame(path, table, columns), hashlib.sha256(raw).hexdigest()
+    digest = hashlib.sha256(raw).hexdigest()
+    if books is None or file != "positions.parquet":
+        return _to_frame(path, table, columns), digest
+    try:
+        rows = _book_rows(table, books, keep_null_books)
+    except pa.ArrowException:
+        _to_frame(path, table, columns)  # raises the error a whole read gives, naming the column
+        raise
+    return _to_frame(path, table.take(pa.array(rows, type=pa.int64())), columns, pd.Index(rows)), digest
 
 
-def read_night(data_root: Path, as_of: dt.date) -> RawNight:
-    """Every file of one date; raises :class:`InputFileError` on the first unusable file."""
+def read_night(data_root: Path, as_of: dt.date, books: frozenset[str] | None = None,
+               keep_null_books: bool = True) -> RawNight:
+    """Every file of one date; raises :class:`InputFileError` on the first unusable file.
+
+    ``books`` and ``keep_null_books`` select positions by book (see :func:`read_file`); every
+    other file is read whole.
+    """
     folder = folder_for(data_root, as_of)
     if not folder.is_dir():
         raise InputFileError(f"{folder}: folder for {as_of} not found")
     tables: dict[str, pd.DataFrame] = {}
     hashes: dict[str, str] = {}
     for file in FILE_COLUMNS:
-        frame, digest = read_file(folder, file)
+        frame, digest = read_file(folder, file, books, keep_null_books)
         if frame is not None:
             tables[file] = frame
             hashes[file] = digest
