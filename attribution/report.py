@@ -39,6 +39,7 @@ TERM_COLUMNS: tuple[str, ...] = (
     "pnl_higher_order", "pnl_mark_gap", "pnl_new_trade", "pnl_expiry", "pnl_amendment", "pnl_total",
 )
 TOP_POSITIONS = 20
+TOP_UNDERLYINGS = 30  # underlyings listed per book (largest residual first); the rest share one line
 EXCEPTIONS_SHOWN = 50  # rows listed on a book page; the night's exceptions page lists them all
 POSITION_TEXT: tuple[str, ...] = ("trade_id", "instrument_id", "underlying", "status", "flags", "limit_state")
 POSITION_VALUES: tuple[str, ...] = ("quantity", "quantity_run_date", *TERM_COLUMNS)
@@ -213,6 +214,8 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
     prior = books["prior_as_of"].dropna().max() if len(books) else None
     prior_date = pd.Timestamp(prior).date() if prior is not None and not pd.isna(prior) else as_of
     terms = ", ".join(f"sum({c}) AS {c}" for c in (*TERM_COLUMNS, *EXPOSURE_COLUMNS))
+    rest_terms = ", ".join("NULL" if c == "delta_units" else f"sum({c})" for c in (*TERM_COLUMNS, *EXPOSURE_COLUMNS))
+    underlying_cols = ", ".join(("book", "underlying", "positions", "unpriced", *TERM_COLUMNS, *EXPOSURE_COLUMNS))
     row_cols = ", ".join((*POSITION_TEXT, "quantity", "quantity_run_date", *TERM_COLUMNS))
     exception_cols = "file, key, rule, detail, severity, book"
     return NightFrames(
@@ -220,9 +223,19 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
         quality=_frame(con, f"SELECT {_columns(BOOK_QUALITY)} FROM book_quality WHERE as_of = ? ORDER BY book",
                        [as_of]),
         underlyings=_frame(con, f"""
-            SELECT book, underlying, count(*) AS positions,
-                   count(*) FILTER (WHERE status = 'new_unpriced') AS unpriced, {terms}
-            FROM position_pnl WHERE as_of = ? GROUP BY book, underlying ORDER BY book, underlying""", [as_of]),
+            WITH u AS (SELECT book, underlying, count(*) AS positions,
+                              count(*) FILTER (WHERE status = 'new_unpriced') AS unpriced, {terms}
+                       FROM position_pnl WHERE as_of = ? GROUP BY book, underlying),
+                 r AS (SELECT *, row_number() OVER (PARTITION BY book ORDER BY abs(pnl_residual) DESC,
+                                                    abs(pnl_total) DESC, underlying) AS rank_in_book,
+                              count(*) OVER (PARTITION BY book) AS underlyings_in_book FROM u)
+            SELECT {underlying_cols} FROM (
+                SELECT 0 AS rest, * EXCLUDE (rank_in_book, underlyings_in_book) FROM r WHERE rank_in_book <= ?
+                UNION ALL  -- the rest of a book's underlyings in one line (delta units do not add up across them)
+                SELECT 1, book, '(' || count(*) || ' other underlyings)', sum(positions)::BIGINT,
+                       sum(unpriced)::BIGINT, {rest_terms}
+                FROM r WHERE rank_in_book > ? GROUP BY book)
+            ORDER BY book, rest, underlying""", [as_of, TOP_UNDERLYINGS, TOP_UNDERLYINGS]),
         positions=_frame(con, f"""
             SELECT book, {row_cols} FROM position_pnl WHERE as_of = ?
             QUALIFY row_number() OVER (PARTITION BY book ORDER BY abs(coalesce(pnl_residual, 0)) DESC,

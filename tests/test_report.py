@@ -131,6 +131,23 @@ def test_underlying_table_equals_sql_group_sums(night) -> None:
             assert number == pytest.approx(value or 0.0, abs=0.5)
 
 
+def test_many_underlyings_are_cut_to_the_largest_residuals_plus_one_rest_line(night, monkeypatch, tmp_path) -> None:
+    """Past TOP_UNDERLYINGS, a book lists its largest-residual underlyings and one line summing the rest."""
+    con, _ = night
+    book = BOOKS[0]
+    monkeypatch.setattr(report, "TOP_UNDERLYINGS", 2)
+    rows = con.execute("SELECT underlying, count(*), sum(pnl_residual), sum(pnl_total) FROM position_pnl "
+                       "WHERE as_of = ? AND book = ? GROUP BY underlying "
+                       "ORDER BY abs(sum(pnl_residual)) DESC, abs(sum(pnl_total)) DESC, underlying",
+                       [AS_OF, book]).fetchall()
+    assert len(rows) > 2
+    index = report.render_night(con, AS_OF, tmp_path / "reports", JobConfig())
+    table = _page(index, book).tables["underlying-table"][1:]
+    assert [r[0] for r in table[:2]] == sorted(r[0] for r in rows[:2])
+    assert table[2][0] == f"({len(rows) - 2} other underlyings)"
+    assert int(table[2][1]) == sum(r[1] for r in rows[2:])
+
+
 def test_top_positions_are_the_largest_residuals(night) -> None:
     """The position table holds the 20 largest |residual| of the book, largest first, with its terms."""
     con, index = night
