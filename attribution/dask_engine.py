@@ -48,7 +48,7 @@ from scipy.sparse.csgraph import connected_components
 from attribution.config import JobConfig
 from attribution.engine import NO_BOOK, PreparedNight, Progress, _resolve_prior, _Stopwatch, prepare_night
 from attribution.errors import JobFailure
-from attribution.lifecycle import NEW, NEW_UNPRICED
+from attribution.lifecycle import NEW, NEW_UNPRICED, match_keys
 from attribution.loading import blank_books, folder_for, read_night
 
 log = logging.getLogger("attribution")
@@ -177,18 +177,15 @@ def _concat(frames: list[pd.DataFrame]) -> pd.DataFrame:
     return pd.concat(full, ignore_index=True) if len(full) > 1 else full[0].reset_index(drop=True)
 
 
-def _file_rows(trade_id: np.ndarray, wanted: np.ndarray) -> np.ndarray:
-    """Row number in the file of each wanted trade_id (unique there once accepted; -1 if absent)."""
-    ids = pd.Series(trade_id, dtype=object)
-    unique = ids[ids.notna() & ~ids.duplicated(keep=False)]
-    return pd.Index(unique.to_numpy(dtype=object)).get_indexer(wanted)
-
-
 def local_order(positions: pd.DataFrame, keys: tuple[PositionKeys, PositionKeys]) -> pd.DataFrame:
-    """Rows in the local engine's order: prior-date trades by prior-file row, then new trades by run-file row."""
+    """Rows in the local engine's order: prior-date trades by prior-file row, then new trades by run-file row.
+
+    An archived trade_id is unique in its file (every copy of a repeated one is rejected), so its row
+    there is well defined.
+    """
     trade = positions["trade_id"].to_numpy(dtype=object)
     is_new = positions["status"].isin([NEW, NEW_UNPRICED]).to_numpy()
-    row = np.where(is_new, _file_rows(keys[1].trade_id, trade), _file_rows(keys[0].trade_id, trade))
+    row = np.where(is_new, match_keys(trade, keys[1].trade_id)[0], match_keys(trade, keys[0].trade_id)[0])
     return positions.iloc[np.lexsort((row, is_new))].reset_index(drop=True)
 
 

@@ -281,19 +281,22 @@ def open_archive(config: JobConfig) -> Iterator[ArchiveSession]:
 
 
 def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
-              progress: Progress | None = None, session: ArchiveSession | None = None) -> NightOutcome:
+              progress: Progress | None = None, session: ArchiveSession | None = None,
+              client: object | None = None) -> NightOutcome:
     """Run one night into the archive (and reports); the archive is locked for the whole run.
 
     ``session`` is an archive already held with :func:`open_archive` (a backfill keeps one).
+    ``client``: with ``config.engine == "dask"``, a Dask client already connected (a backfill can
+    keep one, see :func:`attribution.dask_engine.cluster_client`); None connects for this night.
     A run that fails before archiving leaves the archive as it was (not even created).
     """
     if session is None:
         with open_archive(config) as own:
-            return run_night(config, as_of, prior, progress, own)
+            return run_night(config, as_of, prior, progress, own, client)
     started, t0 = dt.datetime.now(), time.perf_counter()
     if config.engine == "dask":
         from attribution.dask_engine import prepare_night_dask
-        night = prepare_night_dask(config, as_of, prior, progress)
+        night = prepare_night_dask(config, as_of, prior, progress, client)
     else:
         night = prepare_night(config, as_of, prior, progress)
     if night.unaccounted:

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
+import multiprocessing
 import sys
 from collections.abc import Iterator
 from pathlib import Path
@@ -23,7 +24,7 @@ import pytest
 
 from attribution.cli import main
 from attribution.config import JobConfig
-from attribution.engine import prepare_night
+from attribution.engine import prepare_night, run_night
 from attribution.loading import InputFileError, folder_for, read_file, read_night
 from attribution.synthetic import write_synthetic_night
 from tests.contract_files import table
@@ -216,9 +217,22 @@ def test_read_night_keeps_only_the_books_asked(desks):
 def test_local_cluster_started_for_the_run(desks, tmp_path, capsys):
     """Without --scheduler a local cluster is started for the run, closed after it, and the summary printed."""
     data, as_of = desks["mini"]
+    before = {c.pid for c in multiprocessing.active_children()}
     assert _run(data, as_of, tmp_path, "--engine", "dask") == 0
+    assert {c.pid for c in multiprocessing.active_children()} <= before  # its worker processes are gone
     out = capsys.readouterr().out
     assert "8 in = 8 archived + 0 rejected" in out and "report" in out
+
+
+def test_run_night_uses_the_client_given(desks, client, tmp_path):
+    """A client passed to run_night (as a backfill would keep one) is used, not replaced, and stays open."""
+    data, as_of = desks["mini"]
+    config = dataclasses.replace(JobConfig(), data_root=data, archive_path=tmp_path / "archive.duckdb",
+                                 write_reports=False, engine="dask")
+    outcome = run_night(config, as_of, client=client)
+    assert (outcome.exit_code, outcome.archived) == (0, 8)
+    assert [name for name, _ in outcome.stages] == ["cluster", "merge", "archive"]
+    assert client.status == "running"
 
 
 def test_missing_input_file_fails_as_locally(desks, client, tmp_path):
