@@ -15,8 +15,14 @@ across trades sees all the rows it needs, exactly as in one process.
 Merged content: positions in the local engine's order (trades held on the prior date in the prior
 file's row order, then new trades in the run file's row order); books sorted by book, as locally;
 the exception ledger holds the same rows as locally, in worker order (rows about instruments,
-marks, curves and FX rates are found by every worker and kept once each, with the largest number
-of copies any one worker found); hashes from any part; counts summed.
+marks, curves and FX rates, found by several workers, are kept with as many copies as the most any
+one worker found); hashes from any part; counts summed.
+
+Each task reads and checks the instrument, mark, curve and FX files whole and builds both dates'
+markets, so that work is repeated once per group: the split pays where positions outnumber
+instruments by far, and on machines with more cores than the pricing kernel can use alone.
+The pricing kernel's own threads are not capped on a worker (``prepare_night`` has no such
+setting): a large part may use every core of its machine, besides the worker's thread.
 
 Everything after that stays on the driver, as in the local engine: the archive transaction, the
 attribution-quality test and the reports. DuckDB lets one process write an archive, and the
