@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import datetime as dt
 from collections.abc import Callable
@@ -19,6 +20,13 @@ def nights_between(config: JobConfig, start: dt.date, end: dt.date) -> list[dt.d
     return [d for d in dates if start <= d <= end and d > dates[0]]
 
 
+def _cluster(config: JobConfig) -> contextlib.AbstractContextManager:
+    if config.engine != "dask":
+        return contextlib.nullcontext()
+    from attribution.dask_engine import cluster_client
+    return cluster_client(config)
+
+
 def backfill(config: JobConfig, start: dt.date, end: dt.date, reports_last: int = 1,
              echo: Callable[[str], None] = print) -> int:
     """Run every night of the range; stops at the first failed night. Returns the exit code."""
@@ -28,10 +36,13 @@ def backfill(config: JobConfig, start: dt.date, end: dt.date, reports_last: int 
         raise InputFileError(f"{config.data_root}: no run date between {start} and {end} with a prior folder")
     progress = ProgressLine(len(nights))
     outcomes: list[NightOutcome] = []
-    with open_archive(config) as session:  # held for the whole range: no other run slips in between nights
+    # The archive is held for the whole range (no other run slips in between nights), and with
+    # engine = "dask" one cluster serves every night.
+    with open_archive(config) as session, _cluster(config) as client:
         for k, night in enumerate(nights):
             with_reports = config.write_reports and (reports_last < 0 or k >= len(nights) - reports_last)
-            outcomes.append(run_night(dataclasses.replace(config, write_reports=with_reports), night, session=session))
+            outcomes.append(run_night(dataclasses.replace(config, write_reports=with_reports), night,
+                                      session=session, client=client))
             progress.step(str(night))
     progress.close()
     last = outcomes[-1]

@@ -238,6 +238,7 @@ SQL_WORDS = re.compile(r"\b(SELECT|INSERT|DELETE|UPDATE|CREATE|DROP|ALTER|ATTACH
 ALLOWED_IN_SQL = {
     "archive.py": {"table", "body", "view"},
     "report.py": {"_columns(BOOK_PNL)", "_columns(BOOK_QUALITY)", "_columns(RUNS)", "terms", "row_cols",
+                  "underlying_cols", "rest_terms",  # column lists of TERM_COLUMNS and EXPOSURE_COLUMNS
                   "exception_cols"},
 }
 
