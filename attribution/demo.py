@@ -50,23 +50,12 @@ from attribution.demo_market import (
     zero_rate,
 )
 from attribution.demo_market import business_days as desk_business_days
+from attribution.loading import CONTRACT_SCHEMAS
 from attribution.pricing import FloatArray, bsm_greeks, bsm_price
 
 IntArray = NDArray[np.int64]
 DEFAULT_START = dt.date(2025, 11, 3)
-SCHEMAS: dict[str, pa.Schema] = {
-    "positions": pa.schema([("trade_id", pa.string()), ("book", pa.string()), ("instrument_id", pa.string()),
-                            ("quantity", pa.float64()), ("trade_date", pa.date32()), ("trade_price", pa.float64())]),
-    "instruments": pa.schema([("instrument_id", pa.string()), ("underlying", pa.string()),
-                              ("option_type", pa.string()), ("exercise", pa.string()), ("strike", pa.float64()),
-                              ("expiry", pa.date32()), ("multiplier", pa.float64()), ("currency", pa.string())]),
-    "option_marks": pa.schema([("instrument_id", pa.string()), ("price", pa.float64()),
-                               ("implied_vol", pa.float64())]),
-    "underlying_marks": pa.schema([("underlying", pa.string()), ("spot", pa.float64()),
-                                   ("dividend_yield", pa.float64())]),
-    "rate_curves": pa.schema([("currency", pa.string()), ("tenor_years", pa.float64()), ("zero_rate", pa.float64())]),
-    "fx_rates": pa.schema([("currency", pa.string()), ("rate", pa.float64())]),
-}
+SCHEMAS: dict[str, pa.Schema] = CONTRACT_SCHEMAS
 FAULT_KINDS = ("stale_mark", "fat_finger_mark", "missing_mark", "noisy_marks")
 
 

@@ -17,6 +17,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from attribution.loading import CONTRACT_SCHEMAS
 from attribution.pricing import bsm_price
 
 PRIOR, RUN = dt.date(2026, 11, 26), dt.date(2026, 11, 27)
@@ -24,21 +25,6 @@ CURRENCIES = ("USD", "EUR", "JPY")
 FX = {"USD": 1.0, "EUR": 1.09, "JPY": 0.0067}
 CURVE_TENORS = np.array([0.25, 1.0, 2.0, 5.0])
 CURVE_RATES = np.array([0.03, 0.033, 0.036, 0.04])  # one curve shape for every currency
-
-_SCHEMAS = {
-    "positions": pa.schema([("trade_id", pa.string()), ("book", pa.string()), ("instrument_id", pa.string()),
-                            ("quantity", pa.float64()), ("trade_date", pa.date32()), ("trade_price", pa.float64())]),
-    "instruments": pa.schema([("instrument_id", pa.string()), ("underlying", pa.string()),
-                              ("option_type", pa.string()), ("exercise", pa.string()), ("strike", pa.float64()),
-                              ("expiry", pa.date32()), ("multiplier", pa.float64()), ("currency", pa.string())]),
-    "option_marks": pa.schema([("instrument_id", pa.string()), ("price", pa.float64()),
-                               ("implied_vol", pa.float64())]),
-    "underlying_marks": pa.schema([("underlying", pa.string()), ("spot", pa.float64()),
-                                   ("dividend_yield", pa.float64())]),
-    "rate_curves": pa.schema([("currency", pa.string()), ("tenor_years", pa.float64()), ("zero_rate", pa.float64())]),
-    "fx_rates": pa.schema([("currency", pa.string()), ("rate", pa.float64())]),
-}
-
 
 @dataclass(frozen=True, slots=True)
 class SyntheticNight:
@@ -58,7 +44,7 @@ def _names(prefix: str, n: int) -> np.ndarray:
 
 
 def _write(folder: Path, kind: str, columns: dict[str, object]) -> None:
-    schema = _SCHEMAS[kind]
+    schema = CONTRACT_SCHEMAS[kind]
     arrays = [pa.array(columns[f.name], type=f.type, from_pandas=True) for f in schema]
     pq.write_table(pa.Table.from_arrays(arrays, schema=schema), folder / f"{kind}.parquet")
 
