@@ -42,3 +42,23 @@ def write_folder(root: Path, as_of: dt.date, files: Mapping[str, Sequence[Mappin
         t = rows if isinstance(rows, pa.Table) else table(kind, rows)
         pq.write_table(t, folder / f"{kind}.parquet")
     return folder
+
+
+def read_rows(root: Path, as_of: dt.date, kind: str) -> list[dict[str, object]]:
+    """The rows of ``<root>/as_of=D/<kind>.parquet`` as dictionaries."""
+    return pq.read_table(root / f"as_of={as_of.isoformat()}" / f"{kind}.parquet").to_pylist()
+
+
+def put_rows(root: Path, as_of: dt.date, kind: str, rows: Sequence[Mapping[str, object]]) -> None:
+    """Replace ``<root>/as_of=D/<kind>.parquet`` with ``rows`` (the contract's schema)."""
+    pq.write_table(table(kind, rows), root / f"as_of={as_of.isoformat()}" / f"{kind}.parquet")
+
+
+def edit_row(root: Path, as_of: dt.date, kind: str, key: str, **values: object) -> None:
+    """Set ``values`` on the one row of ``kind`` whose first column is ``key``."""
+    rows = read_rows(root, as_of, kind)
+    first = next(iter(rows[0]))
+    hits = [r for r in rows if r[first] == key]
+    assert len(hits) == 1, f"{kind} of {as_of}: {len(hits)} rows keyed {key!r}"
+    hits[0].update(values)
+    put_rows(root, as_of, kind, rows)

@@ -14,7 +14,6 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-import pyarrow.parquet as pq
 import pytest
 
 from attribution.config import CheckSettings, JobConfig
@@ -25,54 +24,44 @@ from attribution.lifecycle import Legs, match_legs
 from attribution.loading import folder_for, read_night
 from attribution.market import build_market, instrument_terms
 from attribution.timebasis import TimeBasis
-from tests.contract_files import table
+from tests.contract_files import edit_row, put_rows, read_rows
 from tests.mini_desk import FX, INSTRUMENTS, PRIOR, RUN, SPOT, Inst, mark, write_mini_desk
 
 BY_ID = {i.instrument_id: i for i in INSTRUMENTS}
 
 
-def _rows(root: Path, day: dt.date, kind: str) -> list[dict[str, object]]:
-    return pq.read_table(folder_for(root, day) / f"{kind}.parquet").to_pylist()
 
 
-def _put(root: Path, day: dt.date, kind: str, rows: list[dict[str, object]]) -> None:
-    pq.write_table(table(kind, rows), folder_for(root, day) / f"{kind}.parquet")
 
 
-def _edit(root: Path, day: dt.date, kind: str, key: str, **values: object) -> None:
-    rows = _rows(root, day, kind)
-    first = next(iter(rows[0]))
-    [row] = [r for r in rows if r[first] == key]
-    row.update(values)
-    _put(root, day, kind, rows)
 
 
 def _drop(root: Path, day: dt.date, kind: str, key: str) -> None:
-    rows = _rows(root, day, kind)
+    rows = read_rows(root, day, kind)
     first = next(iter(rows[0]))
-    _put(root, day, kind, [r for r in rows if r[first] != key])
+    put_rows(root, day, kind, [r for r in rows if r[first] != key])
 
 
 def _add_instrument(root: Path, inst: Inst, days: tuple[dt.date, ...] = (PRIOR, RUN), marked_on: tuple = ()) -> None:
     """List ``inst`` on ``days``, with a QuantLib mark (at the desk's vol) on each of ``marked_on``."""
     for day in days:
-        rows = _rows(root, day, "instruments")
+        rows = read_rows(root, day, "instruments")
         rows.append({"instrument_id": inst.instrument_id, "underlying": inst.underlying,
                      "option_type": inst.option_type, "exercise": "european", "strike": inst.strike,
                      "expiry": inst.expiry, "multiplier": inst.multiplier, "currency": inst.currency})
-        _put(root, day, "instruments", rows)
+        put_rows(root, day, "instruments", rows)
     for day in marked_on:
-        rows = _rows(root, day, "option_marks")
+        rows = read_rows(root, day, "option_marks")
         rows.append({"instrument_id": inst.instrument_id, "price": mark(inst, day), "implied_vol": None})
-        _put(root, day, "option_marks", rows)
+        put_rows(root, day, "option_marks", rows)
 
 
 def _add_position(root: Path, day: dt.date, trade_id: str, instrument_id: str, quantity: float,
                   trade_price: float | None = None, book: str = "Index vol") -> None:
-    rows = _rows(root, day, "positions")
+    rows = read_rows(root, day, "positions")
     rows.append({"trade_id": trade_id, "book": book, "instrument_id": instrument_id, "quantity": quantity,
                  "trade_date": PRIOR, "trade_price": trade_price})
-    _put(root, day, "positions", rows)
+    put_rows(root, day, "positions", rows)
 
 
 def _night(root: Path) -> PreparedNight:
@@ -83,7 +72,7 @@ def _night(root: Path) -> PreparedNight:
 
 def _assert_accounted(root: Path, night: PreparedNight) -> None:
     """Every trade_id of both positions files is archived once, or rejected in a positions file, never both."""
-    ids = {r["trade_id"] for day in (PRIOR, RUN) for r in _rows(root, day, "positions")} - {None}
+    ids = {r["trade_id"] for day in (PRIOR, RUN) for r in read_rows(root, day, "positions")} - {None}
     archived = night.positions["trade_id"]
     assert archived.is_unique
     ex = night.exceptions
@@ -122,7 +111,7 @@ def _legs(root: Path) -> tuple[Legs, pd.DataFrame]:
     return match_legs(c0, c1, m0, m1, log), log.frame()
 
 
-def test_every_status_and_its_rows(desk: Path) -> None:
+def test_every_status_and_itsread_rows(desk: Path) -> None:
     """Mini desk: carried, closed, new, new_unpriced and expired, each leg pointing at its rows on each date."""
     legs, ledger = _legs(desk)
     assert ledger.empty
@@ -204,7 +193,7 @@ def test_amendment_with_a_trade_price(desk: Path) -> None:
 
 def test_amendment_without_a_trade_price_is_at_the_mark(desk: Path) -> None:
     """Without trade_price the amendment is filled at the run mark: zero, flagged amended_at_mark."""
-    _edit(desk, RUN, "positions", "T6", trade_price=None)
+    edit_row(desk, RUN, "positions", "T6", trade_price=None)
     row = _by_trade(_night(desk)).loc["T6"]
     assert row["pnl_amendment"] == 0.0
     assert row["flags"] == "amended,amended_at_mark"
@@ -229,7 +218,7 @@ def test_closed_trade_is_explained_to_the_run_mark(desk: Path) -> None:
 
 def test_trade_whose_other_leg_breaks_a_row_rule_is_rejected_on_both_dates(desk: Path) -> None:
     """T1 with a null book on the run date: its run row is rejected for that, its prior row as the other leg's."""
-    _edit(desk, RUN, "positions", "T1", book=None)
+    edit_row(desk, RUN, "positions", "T1", book=None)
     night = _night(desk)
     assert _rejections(night)["T1"] == [("2026-11-30", "book is null"),
                                         ("2026-11-27", "trade rejected on the other date")]
@@ -255,7 +244,7 @@ def test_trade_whose_prior_leg_cannot_be_priced_is_not_new_on_the_run_date(desk:
 
 def test_trade_changing_instrument_is_rejected(desk: Path) -> None:
     """T1 moved to another option under the same trade_id: rejected, neither carried nor new."""
-    _edit(desk, RUN, "positions", "T1", instrument_id="ZEN-P90-D26")
+    edit_row(desk, RUN, "positions", "T1", instrument_id="ZEN-P90-D26")
     night = _night(desk)
     assert _rejections(night) == {"T1": [("2026-11-30", "trade changed instrument between dates")]}
     assert "T1" not in set(night.positions["trade_id"])
@@ -281,7 +270,7 @@ def test_missing_fx_rate_for_a_closed_trade_is_keyed_on_the_prior_file(desk: Pat
 
 def test_changed_instrument_terms_reject_every_trade_in_it(desk: Path) -> None:
     """Strike 100 -> 105 between the files: a row for the instrument, and T1, T6 and the new T8 rejected."""
-    _edit(desk, RUN, "instruments", "ZEN-C100-J27", strike=105.0)
+    edit_row(desk, RUN, "instruments", "ZEN-C100-J27", strike=105.0)
     night = _night(desk)
     inst_rows = night.exceptions[night.exceptions["file"].str.endswith("instruments.parquet")]
     assert inst_rows[["key", "rule", "detail"]].values.tolist() == [
@@ -303,7 +292,7 @@ def test_position_needs_its_instrument_listed_on_its_own_date(desk: Path) -> Non
 
 def test_position_whose_instrument_row_is_rejected_is_rejected(desk: Path) -> None:
     """T2's option has a negative strike on the run date: T2 is rejected, not priced on the prior terms."""
-    _edit(desk, RUN, "instruments", "ZEN-P120-M27", strike=-120.0)
+    edit_row(desk, RUN, "instruments", "ZEN-P120-M27", strike=-120.0)
     night = _night(desk)
     assert _rejections(night) == {"T2": [("2026-11-30", "position cannot be priced on the run date")]}
     assert "breaks a rule" in night.exceptions.set_index("key").loc["T2", "detail"]
@@ -311,8 +300,8 @@ def test_position_whose_instrument_row_is_rejected_is_rejected(desk: Path) -> No
 
 def test_closed_and_expired_trades_need_usable_run_date_terms(desk: Path) -> None:
     """Run-date instrument rows of closed T5 and expiring T4 that break a rule reject those trades."""
-    _edit(desk, RUN, "instruments", "ZEN-C95-EXP", multiplier=0.0)
-    _edit(desk, RUN, "instruments", "ZEN-P90-D26", exercise="bermudan")
+    edit_row(desk, RUN, "instruments", "ZEN-C95-EXP", multiplier=0.0)
+    edit_row(desk, RUN, "instruments", "ZEN-P90-D26", exercise="bermudan")
     night = _night(desk)
     got = _rejections(night)
     assert got["T4"] == [("2026-11-27", "expired position cannot be settled")]
@@ -322,7 +311,7 @@ def test_closed_and_expired_trades_need_usable_run_date_terms(desk: Path) -> Non
 
 def test_empty_prior_positions_make_every_run_trade_new(desk: Path) -> None:
     """A prior book with zero rows (flat): every run-date trade is new or new_unpriced."""
-    _put(desk, PRIOR, "positions", [])
+    put_rows(desk, PRIOR, "positions", [])
     statuses = _by_trade(_night(desk))["status"].to_dict()
     assert statuses == {"T1": "new_unpriced", "T2": "new_unpriced", "T3": "new_unpriced", "T6": "new",
                         "T7": "new", "T8": "new_unpriced"}
@@ -330,7 +319,7 @@ def test_empty_prior_positions_make_every_run_trade_new(desk: Path) -> None:
 
 def test_empty_run_positions_close_the_book(desk: Path) -> None:
     """A run-date book with zero rows (flat): every prior trade is closed, or expired when its option expired."""
-    _put(desk, RUN, "positions", [])
+    put_rows(desk, RUN, "positions", [])
     statuses = _by_trade(_night(desk))["status"].to_dict()
     assert statuses == {"T1": "closed", "T2": "closed", "T3": "closed", "T4": "expired", "T5": "closed",
                         "T6": "closed"}
@@ -338,8 +327,8 @@ def test_empty_run_positions_close_the_book(desk: Path) -> None:
 
 def test_late_booking_and_book_move_are_flagged(desk: Path) -> None:
     """A new trade dated on the prior date is booked_late; a carried trade in another book is moved_book."""
-    _edit(desk, RUN, "positions", "T7", trade_date=PRIOR)
-    _edit(desk, RUN, "positions", "T2", book="Single names")
+    edit_row(desk, RUN, "positions", "T7", trade_date=PRIOR)
+    edit_row(desk, RUN, "positions", "T2", book="Single names")
     rows = _by_trade(_night(desk))
     assert rows.loc["T7", "flags"] == "booked_late"
     assert rows.loc["T2", "flags"] == "moved_book" and rows.loc["T2", "book"] == "Index vol"

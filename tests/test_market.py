@@ -15,7 +15,6 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-import pyarrow.parquet as pq
 import pytest
 
 from attribution.config import CheckSettings, JobConfig
@@ -25,28 +24,16 @@ from attribution.exceptions_log import REJECTED, WARNING, ExceptionLog
 from attribution.loading import folder_for, read_night
 from attribution.market import InstrumentMarket, build_market, flag_stale_marks, instrument_terms, take
 from attribution.timebasis import TimeBasis
-from tests.contract_files import table
+from tests.contract_files import edit_row, put_rows, read_rows
 from tests.mini_desk import DIV, INSTRUMENTS, PRIOR, RATE, RUN, SPOT, VOL, mark, write_mini_desk
 
 BY_ID = {i.instrument_id: i for i in INSTRUMENTS}
 
 
-def _rows(root: Path, day: dt.date, kind: str) -> list[dict[str, object]]:
-    return pq.read_table(folder_for(root, day) / f"{kind}.parquet").to_pylist()
 
 
-def _put(root: Path, day: dt.date, kind: str, rows: list[dict[str, object]]) -> None:
-    pq.write_table(table(kind, rows), folder_for(root, day) / f"{kind}.parquet")
 
 
-def _edit(root: Path, day: dt.date, kind: str, key: str, **values: object) -> None:
-    """Set ``values`` on the row of ``kind`` whose first column is ``key``."""
-    rows = _rows(root, day, kind)
-    first = next(iter(rows[0]))
-    hits = [r for r in rows if r[first] == key]
-    assert len(hits) == 1
-    hits[0].update(values)
-    _put(root, day, kind, rows)
 
 
 def _markets(root: Path, checks: CheckSettings | None = None,
@@ -107,7 +94,7 @@ def test_expiring_today_is_priced_at_intrinsic_with_zero_vol(desk: Path) -> None
 
 def test_expiry_day_mark_above_intrinsic_is_warned(desk: Path) -> None:
     """On its expiry date a call marked 1.00 above max(S - K, 0) is warned (the contract values it at intrinsic)."""
-    _edit(desk, RUN, "option_marks", "ZEN-C95-EXP", price=SPOT[RUN]["ZEN"] - 95.0 + 1.0)
+    edit_row(desk, RUN, "option_marks", "ZEN-C95-EXP", price=SPOT[RUN]["ZEN"] - 95.0 + 1.0)
     _, m1, ledger = _markets(desk)
     assert ledger[["key", "rule", "severity"]].values.tolist() == [
         ["ZEN-C95-EXP", "expiry-day mark is not the intrinsic value", WARNING]]
@@ -123,7 +110,7 @@ def test_price_outside_no_arbitrage_bounds_is_rejected(desk: Path, inst_id: str,
     lower, upper = _bounds(inst_id, RUN)
     price = lower - 0.5 if side == "below" else upper + 0.5
     assert price >= 0
-    _edit(desk, RUN, "option_marks", inst_id, price=price)
+    edit_row(desk, RUN, "option_marks", inst_id, price=price)
     _, m1, ledger = _markets(desk)
     rows = ledger[ledger["rule"] == "price outside no-arbitrage bounds"]
     assert rows[["key", "severity"]].values.tolist() == [[inst_id, REJECTED]]
@@ -137,7 +124,7 @@ def test_price_outside_no_arbitrage_bounds_is_rejected(desk: Path, inst_id: str,
 def test_price_on_its_bound_is_accepted(desk: Path) -> None:
     """A call marked exactly at its upper bound S e^{-qT} passes the bounds check."""
     _, upper = _bounds("ZEN-C100-J27", RUN)
-    _edit(desk, RUN, "option_marks", "ZEN-C100-J27", price=upper, implied_vol=None)
+    edit_row(desk, RUN, "option_marks", "ZEN-C100-J27", price=upper, implied_vol=None)
     _, _, ledger = _markets(desk)
     assert "price outside no-arbitrage bounds" not in set(ledger["rule"])
 
@@ -160,7 +147,7 @@ def test_null_vol_is_solved_from_the_price_and_flagged(desk: Path, tmp_path: Pat
 
 def test_unsolvable_vol_is_rejected(desk: Path) -> None:
     """A price of 0 for an out-of-the-money put has no implied vol: a rejected row and an unusable option."""
-    _edit(desk, RUN, "option_marks", "ZEN-P90-D26", price=0.0, implied_vol=None)
+    edit_row(desk, RUN, "option_marks", "ZEN-P90-D26", price=0.0, implied_vol=None)
     _, m1, ledger = _markets(desk)
     rows = ledger[ledger["rule"] == "implied vol cannot be solved from price"]
     assert rows["key"].tolist() == ["ZEN-P90-D26"]
@@ -170,7 +157,7 @@ def test_unsolvable_vol_is_rejected(desk: Path) -> None:
 
 def test_vol_that_does_not_reprice_the_mark_is_warned(desk: Path) -> None:
     """A marked vol of 0.30 on a mark QuantLib priced at 0.27 is a warning; the option stays usable at 0.30."""
-    _edit(desk, RUN, "option_marks", "ZEN-C100-J27", implied_vol=0.30)
+    edit_row(desk, RUN, "option_marks", "ZEN-C100-J27", implied_vol=0.30)
     _, m1, ledger = _markets(desk)
     assert ledger[["key", "rule", "severity"]].values.tolist() == [
         ["ZEN-C100-J27", "implied vol inconsistent with price", WARNING]]
@@ -181,14 +168,14 @@ def test_vol_that_does_not_reprice_the_mark_is_warned(desk: Path) -> None:
 
 def test_vol_within_tolerance_is_not_warned(desk: Path) -> None:
     """A marked vol off by 1e-6 reprices the mark within the tolerance: no warning."""
-    _edit(desk, RUN, "option_marks", "ZEN-C100-J27", implied_vol=VOL[RUN]["ZEN"] + 1e-6)
+    edit_row(desk, RUN, "option_marks", "ZEN-C100-J27", implied_vol=VOL[RUN]["ZEN"] + 1e-6)
     _, m1, ledger = _markets(desk)
     assert ledger.empty and not m1.vol_mismatch.any()
 
 
 def _copy_prior_mark(root: Path, inst_id: str) -> None:
-    prior = next(r for r in _rows(root, PRIOR, "option_marks") if r["instrument_id"] == inst_id)
-    _edit(root, RUN, "option_marks", inst_id, price=prior["price"], implied_vol=prior["implied_vol"])
+    prior = next(r for r in read_rows(root, PRIOR, "option_marks") if r["instrument_id"] == inst_id)
+    edit_row(root, RUN, "option_marks", inst_id, price=prior["price"], implied_vol=prior["implied_vol"])
 
 
 def test_unchanged_mark_while_the_underlying_moved_is_stale(desk: Path) -> None:
@@ -206,7 +193,7 @@ def test_unchanged_mark_while_the_underlying_moved_is_stale(desk: Path) -> None:
 def test_unchanged_mark_is_not_stale_when_the_underlying_did_not_move(desk: Path, run_spot: float) -> None:
     """Same mark with ZEN unchanged, or moved 0.1 % (below the 0.2 % setting), is not stale."""
     _copy_prior_mark(desk, "ZEN-P120-M27")
-    _edit(desk, RUN, "underlying_marks", "ZEN", spot=run_spot)
+    edit_row(desk, RUN, "underlying_marks", "ZEN", spot=run_spot)
     _, _, ledger = _markets(desk)
     assert "stale mark" not in set(ledger["rule"])
 
@@ -214,9 +201,9 @@ def test_unchanged_mark_is_not_stale_when_the_underlying_did_not_move(desk: Path
 def test_expired_instrument_has_its_reason(desk: Path) -> None:
     """An option whose expiry is before the date is unusable: 'the option expired before <date>'."""
     for day in (PRIOR, RUN):
-        rows = _rows(desk, day, "instruments")
+        rows = read_rows(desk, day, "instruments")
         rows.append(dict(rows[0], instrument_id="ZEN-C90-N26", strike=90.0, expiry=dt.date(2026, 11, 20)))
-        _put(desk, day, "instruments", rows)
+        put_rows(desk, day, "instruments", rows)
     m0, m1, _ = _markets(desk)
     for market, day in ((m0, PRIOR), (m1, RUN)):
         k = _at(market, "ZEN-C90-N26")
@@ -226,7 +213,7 @@ def test_expired_instrument_has_its_reason(desk: Path) -> None:
 
 def test_missing_curve_gets_a_row_per_currency(desk: Path) -> None:
     """No EUR curve: one rejected row keyed EUR in rate_curves, and the EUR option is unusable."""
-    _put(desk, RUN, "rate_curves", [r for r in _rows(desk, RUN, "rate_curves") if r["currency"] != "EUR"])
+    put_rows(desk, RUN, "rate_curves", [r for r in read_rows(desk, RUN, "rate_curves") if r["currency"] != "EUR"])
     _, m1, ledger = _markets(desk)
     assert ledger[["key", "rule"]].values.tolist() == [["EUR", "no curve for currency"]]
     assert ledger["file"].iloc[0].endswith("as_of=2026-11-30/rate_curves.parquet")
@@ -237,7 +224,8 @@ def test_missing_curve_gets_a_row_per_currency(desk: Path) -> None:
 
 def test_missing_underlying_is_named_on_the_instrument(desk: Path) -> None:
     """No QRX row in underlying_marks: a row for the instrument naming QRX, and the option is unusable."""
-    _put(desk, RUN, "underlying_marks", [r for r in _rows(desk, RUN, "underlying_marks") if r["underlying"] != "QRX"])
+    kept = [r for r in read_rows(desk, RUN, "underlying_marks") if r["underlying"] != "QRX"]
+    put_rows(desk, RUN, "underlying_marks", kept)
     _, m1, ledger = _markets(desk)
     assert ledger[["file", "key", "rule"]].values.tolist() == [
         [str(folder_for(desk, RUN) / "instruments.parquet"), "QRX-C50-F27", "unknown underlying"]]
@@ -249,7 +237,7 @@ def test_missing_underlying_is_named_on_the_instrument(desk: Path) -> None:
 
 def test_rejected_underlying_is_not_also_called_unknown(desk: Path) -> None:
     """A QRX row with spot 0 is rejected once, in underlying_marks; the instrument gets no second row."""
-    _edit(desk, RUN, "underlying_marks", "QRX", spot=0.0)
+    edit_row(desk, RUN, "underlying_marks", "QRX", spot=0.0)
     _, m1, ledger = _markets(desk)
     assert ledger[["key", "rule"]].values.tolist() == [["QRX", "spot must be > 0"]]
     assert not m1.usable[_at(m1, "QRX-C50-F27")]
@@ -257,7 +245,7 @@ def test_rejected_underlying_is_not_also_called_unknown(desk: Path) -> None:
 
 def test_missing_mark_makes_the_option_unusable(desk: Path) -> None:
     """An instrument without a run-date mark is unusable with 'no usable option mark'."""
-    _put(desk, RUN, "option_marks", [r for r in _rows(desk, RUN, "option_marks")
+    put_rows(desk, RUN, "option_marks", [r for r in read_rows(desk, RUN, "option_marks")
                                      if r["instrument_id"] != "ZEN-P120-M27"])
     _, m1, ledger = _markets(desk)
     assert ledger.empty
@@ -267,7 +255,7 @@ def test_missing_mark_makes_the_option_unusable(desk: Path) -> None:
 
 def test_rejected_instrument_row_is_not_replaced_by_the_other_date(desk: Path) -> None:
     """A run-date instrument row breaking a rule leaves the option unusable that date, though the prior lists it."""
-    _edit(desk, RUN, "instruments", "ZEN-P120-M27", strike=-120.0)
+    edit_row(desk, RUN, "instruments", "ZEN-P120-M27", strike=-120.0)
     m0, m1, ledger = _markets(desk)
     assert ledger[["key", "rule"]].values.tolist() == [["ZEN-P120-M27", "strike must be > 0"]]
     k = _at(m1, "ZEN-P120-M27")
@@ -278,7 +266,7 @@ def test_rejected_instrument_row_is_not_replaced_by_the_other_date(desk: Path) -
 
 def test_instrument_only_on_the_other_date_borrows_its_terms(desk: Path) -> None:
     """An option the run-date file no longer lists takes the prior terms, usable but not listed."""
-    _put(desk, RUN, "instruments", [r for r in _rows(desk, RUN, "instruments")
+    put_rows(desk, RUN, "instruments", [r for r in read_rows(desk, RUN, "instruments")
                                     if r["instrument_id"] != "ZEN-P90-D26"])
     _, m1, ledger = _markets(desk)
     assert ledger.empty
@@ -288,8 +276,8 @@ def test_instrument_only_on_the_other_date_borrows_its_terms(desk: Path) -> None
 
 def test_empty_files_do_not_crash_the_market(desk: Path) -> None:
     """With no marks and no underlyings on the run date every option is unusable, with a reason each."""
-    _put(desk, RUN, "option_marks", [])
-    _put(desk, RUN, "underlying_marks", [])
+    put_rows(desk, RUN, "option_marks", [])
+    put_rows(desk, RUN, "underlying_marks", [])
     _, m1, ledger = _markets(desk)
     assert not m1.usable.any() and (m1.reason != "").all()
     assert set(ledger["rule"]) == {"unknown underlying"}
