@@ -18,11 +18,16 @@ from __future__ import annotations
 
 import argparse
 import os
+import sys
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))  # the tests' option sample
+from option_sample import OptionSample, quantlib_flat_process, random_options  # noqa: E402
 
 from attribution.implied_vol import implied_vol
 from attribution.pricing import bsm_greeks, bsm_price, greeks_unchecked, price_unchecked
@@ -30,24 +35,6 @@ from attribution.pricing import bsm_greeks, bsm_price, greeks_unchecked, price_u
 FloatArray = np.ndarray
 TARGET_GREEKS_PER_SECOND = 8e6
 TARGET_RATIO_TO_QUANTLIB = 50.0
-
-
-@dataclass(frozen=True, slots=True)
-class Options:
-    """Inputs of n random options (units as in attribution.pricing); expiries are whole days / 365."""
-
-    spot: FloatArray
-    strike: FloatArray
-    days: np.ndarray
-    tau_years: FloatArray
-    vol: FloatArray
-    rate: FloatArray
-    div_yield: FloatArray
-    is_call: np.ndarray
-
-    def args(self) -> tuple[np.ndarray, ...]:
-        """Positional arguments of bsm_price / bsm_greeks."""
-        return (self.spot, self.strike, self.tau_years, self.vol, self.rate, self.div_yield, self.is_call)
 
 
 @dataclass(frozen=True, slots=True)
@@ -64,18 +51,6 @@ class Throughput:
         return self.n_options / self.best_seconds
 
 
-def random_options(n: int, seed: int) -> Options:
-    """Invented options over the ranges of the tests (tests/conftest.py)."""
-    rng = np.random.default_rng(seed)
-    days = rng.integers(1, 5 * 365 + 2, n)
-    strike = np.exp(rng.uniform(np.log(10.0), np.log(1000.0), n))
-    return Options(
-        spot=strike * np.exp(rng.uniform(np.log(0.3), np.log(3.0), n)), strike=strike, days=days,
-        tau_years=days / 365.0, vol=rng.uniform(0.05, 1.50, n), rate=rng.uniform(-0.02, 0.10, n),
-        div_yield=rng.uniform(0.0, 0.10, n), is_call=rng.random(n) < 0.5,
-    )
-
-
 def time_best(method: str, n_options: int, run: Callable[[], object], repeats: int) -> Throughput:
     """Best wall time of ``run()`` over ``repeats`` calls."""
     best = np.inf
@@ -86,7 +61,7 @@ def time_best(method: str, n_options: int, run: Callable[[], object], repeats: i
     return Throughput(method, n_options, best)
 
 
-def quantlib_loop(o: Options) -> Throughput | None:
+def quantlib_loop(o: OptionSample) -> Throughput | None:
     """One QuantLib VanillaOption per option (price and six greeks), one shared process; None without QuantLib."""
     try:
         import QuantLib as ql  # optional reference: imported only when present
@@ -94,14 +69,7 @@ def quantlib_loop(o: Options) -> Throughput | None:
         return None
     today = ql.Date(15, ql.June, 2023)
     ql.Settings.instance().evaluationDate = today
-    day_count = ql.Actual365Fixed()
-    spot, rate, div, vol = (ql.SimpleQuote(0.0) for _ in range(4))
-    process = ql.BlackScholesMertonProcess(
-        ql.QuoteHandle(spot),
-        ql.YieldTermStructureHandle(ql.FlatForward(today, ql.QuoteHandle(div), day_count)),
-        ql.YieldTermStructureHandle(ql.FlatForward(today, ql.QuoteHandle(rate), day_count)),
-        ql.BlackVolTermStructureHandle(ql.BlackConstantVol(today, ql.NullCalendar(), ql.QuoteHandle(vol), day_count)),
-    )
+    process, (spot, rate, div, vol), _ = quantlib_flat_process(ql, today)
     engine = ql.AnalyticEuropeanEngine(process)
     start = time.perf_counter()
     for j in range(o.spot.size):
@@ -111,7 +79,7 @@ def quantlib_loop(o: Options) -> Throughput | None:
         vol.setValue(float(o.vol[j]))
         kind = ql.Option.Call if o.is_call[j] else ql.Option.Put
         option = ql.VanillaOption(ql.PlainVanillaPayoff(kind, float(o.strike[j])),
-                                  ql.EuropeanExercise(today + int(o.days[j])))
+                                  ql.EuropeanExercise(today + int(o.days_to_expiry[j])))
         option.setPricingEngine(engine)
         (option.NPV(), option.delta(), option.gamma(), option.vega(), option.theta(), option.rho(),
          option.dividendRho())

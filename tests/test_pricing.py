@@ -17,11 +17,12 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from numpy.testing import assert_allclose, assert_array_equal
+from option_sample import quantlib_flat_process
 
 from attribution.pricing import Greeks, InvalidPricingInput, bsm_greeks, bsm_price, invalid_reasons
 
 if TYPE_CHECKING:
-    from conftest import OptionSample
+    from option_sample import OptionSample
 
 ql = pytest.importorskip("QuantLib")
 
@@ -47,15 +48,7 @@ def _quantlib_greeks(o: OptionSample) -> dict[str, np.ndarray]:
     saved = ql.Settings.instance().evaluationDate
     ql.Settings.instance().evaluationDate = today
     try:
-        day_count = ql.Actual365Fixed()
-        spot, rate, div, vol = (ql.SimpleQuote(0.0) for _ in range(4))
-        process = ql.BlackScholesMertonProcess(
-            ql.QuoteHandle(spot),
-            ql.YieldTermStructureHandle(ql.FlatForward(today, ql.QuoteHandle(div), day_count)),
-            ql.YieldTermStructureHandle(ql.FlatForward(today, ql.QuoteHandle(rate), day_count)),
-            ql.BlackVolTermStructureHandle(
-                ql.BlackConstantVol(today, ql.NullCalendar(), ql.QuoteHandle(vol), day_count)),
-        )
+        process, (spot, rate, div, vol), day_count = quantlib_flat_process(ql, today)
         engine = ql.AnalyticEuropeanEngine(process)
         out = np.empty((o.spot.size, len(QUANTLIB_COLUMNS)))
         for j in range(o.spot.size):
