@@ -8,7 +8,7 @@ import datetime as dt
 from collections.abc import Callable
 
 from attribution.config import JobConfig
-from attribution.engine import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, NightOutcome, open_archive, run_night
+from attribution.engine import EXIT_FINDINGS, EXIT_OK, NightOutcome, open_archive, run_night
 from attribution.loading import InputFileError, available_dates
 
 
@@ -51,6 +51,3 @@ def backfill(config: JobConfig, start: dt.date, end: dt.date, reports_last: int 
     echo(f"Backfilled {len(outcomes)} night(s) {nights[0]} .. {nights[-1]}; "
          f"{findings} with rejected rows or limit breaches.")
     return EXIT_FINDINGS if findings else EXIT_OK
-
-
-__all__ = ["backfill", "nights_between", "EXIT_FAILED"]

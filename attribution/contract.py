@@ -37,8 +37,11 @@ class CleanNight:
 Detail = str | Callable[[np.ndarray], object]
 
 
+NULL_KEY = "(null) row "  # the ledger key of a row without its key: this prefix and the row's number in its file
+
+
 def _key(frame: pd.DataFrame, column: str) -> pd.Series:
-    return frame[column].where(frame[column].notna(), "(null) row " + frame.index.astype(str))
+    return frame[column].where(frame[column].notna(), NULL_KEY + frame.index.astype(str))
 
 
 def _blank(values: pd.Series) -> np.ndarray:

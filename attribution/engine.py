@@ -22,7 +22,7 @@ import pandas as pd
 from attribution import __version__
 from attribution.archive import archive_lock, connect, write_night
 from attribution.config import ConfigError, JobConfig
-from attribution.contract import clean_night
+from attribution.contract import NULL_KEY, clean_night
 from attribution.controls import BREACH, WATCH, book_states, position_states
 from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
 from attribution.exceptions_log import REJECTED, WARNING, ExceptionLog
@@ -102,7 +102,6 @@ def _resolve_prior(config: JobConfig, as_of: dt.date, prior: dt.date | None) -> 
     return prior
 
 
-NULL_KEY = "(null) row "
 NO_BOOK = "(no book)"  # the book shown for a rejected position row without one
 
 
