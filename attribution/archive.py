@@ -73,7 +73,23 @@ def connect(archive: Path, read_only: bool = False) -> duckdb.DuckDBPyConnection
     for table, columns in TABLES.items():
         body = ", ".join(f'"{name}" {sql_type}' for name, sql_type in columns)
         con.execute(f"CREATE TABLE IF NOT EXISTS {table} ({body})")
+        _add_missing_columns(con, table, columns)
     return con
+
+
+def _add_missing_columns(con: duckdb.DuckDBPyConnection, table: str, columns: tuple[tuple[str, str], ...]) -> None:
+    """Give an archive written by an earlier version the columns added since (NULL on its old rows).
+
+    New columns only ever stand after the existing ones in :mod:`attribution.schema`, so appending
+    them keeps the table's column order equal to the schema's and the positional insert right.
+    """
+    present = {r[0] for r in con.execute(
+        "SELECT column_name FROM information_schema.columns WHERE table_name = ? AND table_schema = 'main'",
+        [table]).fetchall()}
+    for name, sql_type in columns:
+        if name not in present:
+            column = f'"{name}" {sql_type}'
+            con.execute(f"ALTER TABLE {table} ADD COLUMN {column}")
 
 
 def _insert(con: duckdb.DuckDBPyConnection, table: str, frame: pd.DataFrame) -> None:

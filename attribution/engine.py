@@ -30,7 +30,7 @@ from attribution.lifecycle import STATUSES, match_legs
 from attribution.loading import RawNight, prior_date, read_night
 from attribution.market import build_market, flag_stale_marks, instrument_terms
 from attribution.night import position_rows, stale_flags
-from attribution.schema import BOOK_PNL, EXPOSURE_COLUMNS, PNL_COLUMNS, REVAL_COLUMNS
+from attribution.schema import BOOK_PNL, EXPOSURE_COLUMNS, PNL_COLUMNS, REVAL_COLUMNS, V2_AMOUNT_COLUMNS
 from attribution.timebasis import TimeBasis
 
 __all__ = ["EXIT_FAILED", "EXIT_FINDINGS", "EXIT_OK", "EXIT_USAGE", "NightOutcome", "PreparedNight",
@@ -103,6 +103,7 @@ def _resolve_prior(config: JobConfig, as_of: dt.date, prior: dt.date | None) -> 
 
 
 NO_BOOK = "(no book)"  # the book shown for a rejected position row without one
+UNASSIGNED_DESK = "(unassigned)"  # the desk of a book that books.parquet does not list
 
 
 def _position_books(raw0: RawNight, raw1: RawNight, exceptions: pd.DataFrame) -> pd.DataFrame:
@@ -152,7 +153,7 @@ def _conservation(raw0: RawNight, raw1: RawNight, archived: pd.Series,
 def _book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.DataFrame,
                 config: JobConfig, as_of: dt.date, prior_as_of: dt.date) -> pd.DataFrame:
     """One row per book: sums, counts by status, rejected and warning counts, limit state."""
-    amounts = list(PNL_COLUMNS) + list(REVAL_COLUMNS) + list(EXPOSURE_COLUMNS)
+    amounts = list(PNL_COLUMNS) + list(REVAL_COLUMNS) + list(EXPOSURE_COLUMNS) + list(V2_AMOUNT_COLUMNS)
     grouped = positions.groupby("book", sort=True)
     sums = grouped[amounts].sum(min_count=0)
     for column in REVAL_COLUMNS:  # NULL when the method is off
@@ -186,6 +187,8 @@ def _book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.
     frame["residual_limit"] = applied
     frame["limit_state"] = np.where((states == "within") & (frame["position_breaches"] > 0), WATCH, states)
     frame["as_of"], frame["prior_as_of"] = pd.Timestamp(as_of), pd.Timestamp(prior_as_of)
+    frame["desk"] = UNASSIGNED_DESK
+    frame["official_pnl"] = frame["official_break"] = np.nan
     return frame[[name for name, _ in BOOK_PNL]]
 
 

@@ -17,7 +17,14 @@ from attribution.lifecycle import CARRIED, CLOSED, EXPIRIES, NEW, NEW_UNPRICED, 
 from attribution.market import InstrumentMarket, take
 from attribution.pricing import greeks_unchecked
 from attribution.revaluation import shapley_shares
-from attribution.schema import EXPOSURE_COLUMNS, PNL_COLUMNS, POSITION_PNL, REVAL_COLUMNS, TAYLOR_TERMS
+from attribution.schema import (
+    EXPOSURE_COLUMNS,
+    PNL_COLUMNS,
+    POSITION_PNL,
+    REVAL_COLUMNS,
+    TAYLOR_TERMS,
+    V2_AMOUNT_COLUMNS,
+)
 from attribution.timebasis import DAYS_PER_YEAR_BUSINESS, DAYS_PER_YEAR_CALENDAR, TimeBasis
 
 FloatArray = NDArray[np.float64]
@@ -63,6 +70,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     cols: dict[str, object] = {c: np.zeros(n) for c in PNL_COLUMNS}
     cols.update({c: np.full(n, np.nan) for c in REVAL_COLUMNS})
     cols.update({c: np.zeros(n) for c in EXPOSURE_COLUMNS})
+    cols.update({c: np.zeros(n) for c in V2_AMOUNT_COLUMNS})
 
     price0 = np.where(has_prior, market0.price[i0], np.nan)
     price1 = np.where(expired, np.nan, market1.price[i1])
@@ -110,7 +118,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     cols["pnl_amendment"] = np.where(amended, (qty1 - qty0) * mult * legs.fx_rate * (market1.price[i1] - fill_price),
                                      0.0)
     cols["pnl_total"] = (cols["pnl_actual"] + np.nan_to_num(cols["pnl_new_trade"]) + cols["pnl_expiry"]
-                         + cols["pnl_amendment"])
+                         + cols["pnl_amendment"] + cols["pnl_fx_translation"] + cols["pnl_cash"])
 
     late = trade_date_flags(run, legs, prior_as_of)
     moved_book = (status == CARRIED) & (legs.row1 >= 0) & (
@@ -143,6 +151,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         "price_prior": price0, "price_run": price1,
         **cols,
         "limit_state": "within",
+        "kind": "option", "exercise": "european", "strategy": None,
     })
     return frame[[name for name, _ in POSITION_PNL]]
 

@@ -21,6 +21,16 @@ PNL_COLUMNS: tuple[str, ...] = (
     "pnl_total",
 )
 REVAL_COLUMNS: tuple[str, ...] = tuple(f"reval_{f}" for f in REVAL_FACTORS)
+# Amount columns of the data contract's version 2. They stand after every version-1 column of
+# ``position_pnl`` and ``book_pnl``, so an archive written before them gains them at the end
+# (``ALTER TABLE ... ADD COLUMN``, see :func:`attribution.archive.connect`) and keeps its rows.
+VOL_PARTS: tuple[str, ...] = ("level", "skew", "curvature", "own")
+V2_AMOUNT_COLUMNS: tuple[str, ...] = (
+    "pnl_fx_translation",        # quantity0 x multiplier x price0 x (fx1 - fx0): the prior value at the new FX rate
+    "pnl_cash",                  # cash flows and dividend income (per trade, or a `cash` row per book)
+    *(f"pnl_vol_{part}" for part in VOL_PARTS),  # add up to pnl_vega + pnl_volga
+    "pnl_smile_delta",           # the spot-implied vol move's P&L under sticky moneyness; 0 under sticky strike
+)
 EXPOSURE_COLUMNS: tuple[str, ...] = (
     "delta_units",               # N * delta: underlying units (per underlying only meaningful)
     "delta_cash",                # N * delta * spot: reporting currency
@@ -44,6 +54,9 @@ POSITION_PNL: tuple[tuple[str, str], ...] = (
     *((c, "DOUBLE") for c in REVAL_COLUMNS),
     *((c, "DOUBLE") for c in EXPOSURE_COLUMNS),
     ("limit_state", "VARCHAR"),
+    # version 2
+    ("kind", "VARCHAR"), ("exercise", "VARCHAR"), ("strategy", "VARCHAR"),
+    *((c, "DOUBLE") for c in V2_AMOUNT_COLUMNS),
 )
 
 BOOK_PNL: tuple[tuple[str, str], ...] = (
@@ -57,6 +70,11 @@ BOOK_PNL: tuple[tuple[str, str], ...] = (
     ("residual_limit", "DOUBLE"),        # the limit applied tonight: max(abs limit, relative share * |actual|)
     ("position_breaches", "BIGINT"),
     ("limit_state", "VARCHAR"),
+    # version 2
+    ("desk", "VARCHAR"),
+    *((c, "DOUBLE") for c in V2_AMOUNT_COLUMNS),
+    ("official_pnl", "DOUBLE"),          # the desk's reported P&L (official_pnl.parquet), NULL without a row
+    ("official_break", "DOUBLE"),        # official_pnl - pnl_total, NULL without a row
 )
 
 INPUT_EXCEPTIONS: tuple[tuple[str, str], ...] = (

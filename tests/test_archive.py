@@ -211,6 +211,32 @@ def test_failed_commit_reports_its_own_cause(archived, desk, tmp_path, monkeypat
     assert read_archive(box / "a.duckdb", RUN)[0] == before
 
 
+def test_archive_of_an_earlier_version_gains_the_new_columns_and_keeps_its_rows(archived, desk, tmp_path):
+    """An archive without the version-2 columns is extended in place: old rows kept (NULL there), new night written."""
+    box = copy_of(archived, tmp_path / "old")
+    con = duckdb.connect(str(box / "a.duckdb"))
+    names = {t: [c for c, _ in TABLES[t]] for t in ("position_pnl", "book_pnl")}
+    v2 = {t: names[t][names[t].index(first):] for t, first in (("position_pnl", "kind"), ("book_pnl", "desk"))}
+    con.execute("UPDATE runs SET as_of = as_of - 1")  # keep a row per table that the rerun will not replace
+    for table, columns in v2.items():
+        con.execute(f"UPDATE {table} SET as_of = as_of - 1")
+        for column in columns:
+            con.execute(f'ALTER TABLE {table} DROP COLUMN "{column}"')
+    con.close()
+    assert run(desk, box) == 3
+    con = duckdb.connect(str(box / "a.duckdb"), read_only=True)
+    try:
+        for table, columns in v2.items():
+            names = [r[0] for r in con.execute(f"DESCRIBE {table}").fetchall()]
+            assert names == [c for c, _ in TABLES[table]]
+            old = con.execute(f"SELECT count(*), count({columns[-1]}) FROM {table} WHERE as_of < ?", [RUN]).fetchone()
+            assert old[0] > 0 and (table == "position_pnl" or old[1] == 0)
+        missing_kind = "SELECT count(*) FROM position_pnl WHERE as_of = ? AND kind IS NULL"
+        assert con.execute(missing_kind, [RUN]).fetchone()[0] == 0
+    finally:
+        con.close()
+
+
 def test_run_record_holds_input_hashes_and_settings(archived, desk):
     """The runs row names every input file with its SHA-256 (checked with hashlib) and the job's settings."""
     _, rows = read_archive(archived / "a.duckdb", RUN)
@@ -236,7 +262,7 @@ SQL_WORDS = re.compile(r"\b(SELECT|INSERT|DELETE|UPDATE|CREATE|DROP|ALTER|ATTACH
 # Expressions that may be formatted into SQL: table and column names taken from attribution.schema
 # (checked below to be plain identifiers), never a value. A new one needs a reviewer's look.
 ALLOWED_IN_SQL = {
-    "archive.py": {"table", "body", "view"},
+    "archive.py": {"table", "body", "view", "column"},
     "report.py": {"_columns(BOOK_PNL)", "_columns(BOOK_QUALITY)", "_columns(RUNS)", "terms", "row_cols",
                   "underlying_cols", "rest_terms",  # column lists of TERM_COLUMNS and EXPOSURE_COLUMNS
                   "exception_cols"},
