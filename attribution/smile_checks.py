@@ -1,0 +1,94 @@
+"""Checks of one date's marked vols against their smiles: off-smile marks, butterfly and calendar arbitrage.
+
+Pure numpy, arrays per mark (one element per marked option of the date, ``smile`` its smile code).
+Each check returns the positions (indexes into the arrays) of the marks it flags, with the figures
+for the message; the caller turns them into ledger warnings.
+
+* Off smile: ``|vol - fitted|`` above a distance, on smiles with a quadratic fit
+  (:mod:`attribution.smile`); with exactly three strikes the fit passes through every mark.
+* Butterfly: along one smile's distinct strikes K1 < K2 < K3 (neighbours), the call price at the
+  marked vol must be convex in strike, C(K2) <= l C(K1) + (1 - l) C(K3) with l = (K3 - K2) / (K3 - K1)
+  (a long butterfly cannot cost less than nothing; Carr and Madan, "A note on sufficient conditions
+  for no arbitrage", Finance Research Letters 2, 2005). A put's vol is read as the call's at its strike
+  (put-call parity); where two marks share a strike, the first in the file stands for it.
+* Calendar: at a fixed forward log-moneyness k = ln(K / F), total implied variance vol^2 tau must not
+  fall from one expiry to the next (same source). Each mark of an expiry is compared with the total
+  variance of the previous expiry of its underlying at the same k, interpolated linearly between that
+  expiry's two neighbouring marks; a mark outside their range is not compared.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from attribution.pricing import price_unchecked
+
+FloatArray = NDArray[np.float64]
+IntArray = NDArray[np.intp]
+
+PRICE_SLACK = 1e-6        # butterfly slack, share of spot: rounding of quoted vols is not arbitrage
+VARIANCE_SLACK = 1e-6     # calendar slack, total variance (vol^2 x years)
+
+
+@dataclass(frozen=True, slots=True)
+class Findings:
+    """Flagged marks (indexes into the date's mark arrays) and a figure per flag for its message."""
+
+    index: IntArray
+    observed: FloatArray
+    bound: FloatArray
+
+
+def off_smile(vol: FloatArray, fitted: FloatArray, quadratic: NDArray[np.bool_], distance: float) -> Findings:
+    """Marks whose vol lies more than ``distance`` (decimal vol) from their smile's quadratic fit."""
+    hit = np.flatnonzero(quadratic & (np.abs(vol - fitted) > distance))
+    return Findings(hit, vol[hit], fitted[hit])
+
+
+def butterfly(smile: IntArray, strike: FloatArray, spot: FloatArray, tau: FloatArray, vol: FloatArray,
+              rate: FloatArray, div_yield: FloatArray) -> Findings:
+    """Middle marks of neighbouring strike triples whose call prices are not convex in strike."""
+    order = np.lexsort((strike, smile))
+    s, k = smile[order], strike[order]
+    first = np.ones(s.size, dtype=bool)
+    first[1:] = (s[1:] != s[:-1]) | (k[1:] != k[:-1])
+    keep = order[first]                       # one mark per distinct strike, sorted by smile then strike
+    if keep.size < 3:
+        return Findings(np.zeros(0, np.intp), np.zeros(0), np.zeros(0))
+    call = price_unchecked(spot[keep], strike[keep], tau[keep], vol[keep], rate[keep], div_yield[keep],
+                           np.ones(keep.size))
+    g, kk = smile[keep], strike[keep]
+    same = (g[:-2] == g[1:-1]) & (g[1:-1] == g[2:])
+    lam = (kk[2:] - kk[1:-1]) / (kk[2:] - kk[:-2])
+    bound = lam * call[:-2] + (1.0 - lam) * call[2:]
+    hit = np.flatnonzero(same & (call[1:-1] > bound + PRICE_SLACK * spot[keep[1:-1]]))
+    return Findings(keep[hit + 1], call[1:-1][hit], bound[hit])
+
+
+def calendar(smile: IntArray, previous: IntArray, k: FloatArray, total_variance: FloatArray) -> Findings:
+    """Marks whose total variance is below the previous expiry's at the same forward log-moneyness.
+
+    ``previous[g]`` is the smile of the same underlying at the next earlier expiry (-1: none).
+    """
+    order = np.lexsort((k, smile))
+    gs, ks, ws = smile[order], k[order], total_variance[order]
+    span = 64.0                                 # |k| < 30 in any market: smiles never overlap on the key
+    key = gs * span + np.clip(ks, -30.0, 30.0)
+    prev = previous[smile]
+    ask = np.flatnonzero(prev >= 0)
+    q = prev[ask] * span + np.clip(k[ask], -30.0, 30.0)
+    right = np.searchsorted(key, q, side="left")
+    left = right - 1
+    inside = (right < key.size) & (left >= 0)
+    inside[inside] &= (gs[np.minimum(right[inside], key.size - 1)] == prev[ask][inside]) & \
+                      (gs[np.maximum(left[inside], 0)] == prev[ask][inside])
+    ask, left, right = ask[inside], left[inside], right[inside]
+    k_lo, k_hi = ks[left], ks[right]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        share = np.where(k_hi > k_lo, (k[ask] - k_lo) / (k_hi - k_lo), 0.0)
+    earlier = ws[left] + share * (ws[right] - ws[left])
+    hit = total_variance[ask] < earlier - VARIANCE_SLACK
+    return Findings(ask[hit], total_variance[ask][hit], earlier[hit])
