@@ -17,8 +17,9 @@ import duckdb
 import pytest
 from report_fixtures import AS_OF, PageParser, build_archive, shown_number
 
-from attribution import charts, report
+from attribution import report
 from attribution.config import JobConfig
+from attribution.report import charts, publish, queries
 
 HOSTILE = ("<script>alert(1)</script>", '"><img src=x onerror=alert(1)>', "../../x", "L" * 500)
 BOOKS = ("Vol Arb North", "Index Gamma", *HOSTILE)
@@ -135,7 +136,7 @@ def test_many_underlyings_are_cut_to_the_largest_residuals_plus_one_rest_line(ni
     """Past TOP_UNDERLYINGS, a book lists its largest-residual underlyings and one line summing the rest."""
     con, _ = night
     book = BOOKS[0]
-    monkeypatch.setattr(report, "TOP_UNDERLYINGS", 2)
+    monkeypatch.setattr(queries, "TOP_UNDERLYINGS", 2)
     rows = con.execute("SELECT underlying, count(*), sum(pnl_residual), sum(pnl_total) FROM position_pnl "
                        "WHERE as_of = ? AND book = ? GROUP BY underlying "
                        "ORDER BY abs(sum(pnl_residual)) DESC, abs(sum(pnl_total)) DESC, underlying",
@@ -297,7 +298,7 @@ def test_failed_write_keeps_the_older_folder_and_cleans_up(tmp_path: Path) -> No
     target.mkdir()
     (target / "index.html").write_text("previous night", encoding="utf-8")
     with pytest.raises(report.ReportError, match="would leave the report folder"):
-        report._write_atomically(target, {"index.html": "new", "../escape.html": "x"})
+        publish.write_atomically(target, {"index.html": "new", "../escape.html": "x"})
     assert (target / "index.html").read_text(encoding="utf-8") == "previous night"
     assert sorted(p.name for p in tmp_path.iterdir()) == [AS_OF.isoformat()]
 

@@ -22,8 +22,9 @@ from typing import Any
 import pytest
 from report_fixtures import AS_OF, build_archive
 
-from attribution import charts, report
+from attribution import report
 from attribution.config import JobConfig
+from attribution.report import charts
 
 pytestmark = pytest.mark.browser
 

@@ -1,0 +1,89 @@
+"""HTML of the pages: the Jinja2 environment (autoescape on) and the cell filters of the hot loops."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import jinja2
+import markupsafe
+
+from attribution.report import charts
+from attribution.report.pages import BookPage, FigureRow, NightView
+from attribution.report.queries import TERM_COLUMNS
+
+EXCEPTIONS_SHOWN = 50  # rows listed on a book page; the night's exceptions page lists them all
+_NEW_TRADE_AT = TERM_COLUMNS.index("pnl_new_trade")
+
+
+def _cells(texts: Sequence[str]) -> str:
+    return "<td>" + "</td><td>".join(texts) + "</td>" if texts else ""
+
+
+def amount_cells(values: Sequence[float | None]) -> markupsafe.Markup:
+    """Table cells of formatted amounts, one ``<td>`` each, in one call (the pages' hot loop).
+
+    The cell text comes from :func:`charts.format_amounts` only (digits, separators, a minus
+    sign or the missing-value dash), so it holds nothing to escape.
+    """
+    return markupsafe.Markup(_cells(charts.format_amounts(values)))
+
+
+def position_cells(values: Sequence[float | None]) -> markupsafe.Markup:
+    """Cells of a position row (POSITION_VALUES): two quantities, then amounts; a NULL day-one P&L is unpriced."""
+    amounts = charts.format_amounts(values[2:])
+    if charts.is_missing(values[2 + _NEW_TRADE_AT]):
+        amounts[_NEW_TRADE_AT] = "unpriced"
+    return markupsafe.Markup(_cells([_format_quantity(v) for v in values[:2]] + amounts))
+
+
+def position_text_cells(row: FigureRow) -> markupsafe.Markup:
+    """The text cells of a position row: trade, instrument, underlying, and status with limit word and flags.
+
+    Every text is escaped here (markupsafe.escape), as the template would; one call per row keeps the
+    pages' hot loop short.
+    """
+    esc = markupsafe.escape
+    instrument, underlying, status, flags, limit = row.cells
+    limit_word = f" &middot; <strong>{esc(limit)}</strong>" if limit and limit != "within" else ""
+    flag_line = f'<br><span class="sub small">{esc(flags.replace(",", ", "))}</span>' if flags else ""
+    return markupsafe.Markup(f'<td class="t">{esc(row.label)}</td><td class="t">{esc(instrument)}</td>'
+                             f'<td class="t">{esc(underlying)}</td>'
+                             f'<td class="t wrap">{esc(status)}{limit_word}{flag_line}</td>')
+
+
+def _format_quantity(value: float | None) -> str:
+    if charts.is_missing(value):
+        return charts.MISSING
+    return charts.format_amount(value, 0 if float(value).is_integer() else 2)  # type: ignore[arg-type]
+
+
+def make_environment() -> jinja2.Environment:
+    """The report's Jinja2 environment: package templates, autoescape on for every template."""
+    env = jinja2.Environment(loader=jinja2.PackageLoader("attribution.report", "templates"), autoescape=True,
+                             undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True,
+                             auto_reload=False)
+    env.filters["amount"] = charts.format_amount
+    env.filters["percent"] = charts.format_percent
+    env.filters["ratio"] = lambda v: charts.format_amount(v, 3)
+    env.filters["raw"] = lambda v: "" if charts.is_missing(v) else repr(float(v))
+    env.filters["quantity"] = _format_quantity
+    env.filters["amount_cells"] = amount_cells
+    env.filters["position_cells"] = position_cells
+    env.filters["position_text_cells"] = position_text_cells
+    env.filters["file_name"] = lambda path: str(path).replace("\\", "/").rsplit("/", 1)[-1]
+    env.globals["missing"] = charts.is_missing
+    env.globals["exceptions_shown"] = EXCEPTIONS_SHOWN
+    return env
+
+
+
+def render_files(night: NightView, pages: list[BookPage]) -> dict[str, str]:
+    """The night's files by name: ``index.html``, ``exceptions.html`` and one page per book."""
+    env = make_environment()
+    footer = markupsafe.Markup(env.get_template("footer.html").render(night=night))  # the same on every page
+    book_template = env.get_template("book.html")
+    files = {"index.html": env.get_template("index.html").render(night=night, footer=footer),
+             "exceptions.html": env.get_template("exceptions.html").render(night=night, footer=footer)}
+    for page in pages:
+        files[page.summary.file_name] = book_template.render(page=page, night=night, footer=footer)
+    return files

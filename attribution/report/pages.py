@@ -1,0 +1,152 @@
+"""What the pages show: frozen view types, built by :mod:`attribution.report.view`, read by the templates."""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import re
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+from attribution.report import charts
+
+_MAX_SLUG = 48
+
+
+@dataclass(frozen=True, slots=True)
+class State:
+    """A state shown as a coloured mark and always with its word: ``tone`` is ok/watch/alert/none."""
+
+    code: str
+    tone: str
+    word: str
+
+
+@dataclass(frozen=True, slots=True)
+class BookSummary:
+    """One row of the index."""
+
+    name: str
+    file_name: str
+    total: float
+    actual: float
+    explained: float
+    residual: float
+    residual_share: float | None
+    limit: State
+    zone: State
+    exceptions: int
+    position_breaches: int
+
+
+@dataclass(frozen=True, slots=True)
+class FigureRow:
+    """A labelled row of amounts in a fixed column order, plus small text cells."""
+
+    label: str
+    cells: tuple[str, ...]
+    values: tuple[float | None, ...]
+
+
+@dataclass(frozen=True, slots=True)
+class MethodRow:
+    """One factor of the two methods side by side."""
+
+    key: str
+    label: str
+    taylor_terms: str
+    taylor: float | None
+    revaluation: float | None
+    difference: float | None
+    bar: charts.PairBar
+
+
+@dataclass(frozen=True, slots=True)
+class Quality:
+    """The attribution-quality figures of a book on the night (None when not yet computed)."""
+
+    zone: State
+    nights: int
+    provisional: bool
+    spearman: float | None
+    ks: float | None
+    mean_ratio: float | None
+    variance_ratio: float | None
+    zone_60: State
+    spearman_60: float | None
+    ks_60: float | None
+    early_warning: str
+
+
+@dataclass(frozen=True, slots=True)
+class ExceptionRow:
+    """An input exception, with the books it touches (index page) or empty (book page)."""
+
+    file: str
+    key: str
+    rule: str
+    detail: str
+    severity: str
+    books: tuple[str, ...]
+
+
+@dataclass(frozen=True, slots=True)
+class Conventions:
+    """What the figures assume, in words for the page footer."""
+
+    time_basis: str
+    time_basis_words: str
+    reporting_currency: str
+    prior_as_of: dt.date | None
+    calendar_days: int | None
+    year_fraction: float | None
+    next_business_day: dt.date
+    revaluation_on: bool
+
+
+@dataclass(frozen=True, slots=True)
+class BookPage:
+    """Everything one book page shows."""
+
+    summary: BookSummary
+    figures: Mapping[str, float | None]
+    counts: Mapping[str, int]
+    limit_text: str
+    waterfall: charts.Waterfall
+    methods: tuple[MethodRow, ...]
+    method_total: MethodRow
+    underlyings: tuple[FigureRow, ...]
+    exposures: tuple[FigureRow, ...]
+    positions: tuple[FigureRow, ...]
+    unpriced: tuple[FigureRow, ...]
+    history_lines: charts.LineChart | None
+    history_residual: charts.LineChart | None
+    quality: Quality | None
+    exceptions: tuple[ExceptionRow, ...]
+    exception_rules: tuple[tuple[str, str, int], ...]
+
+
+
+@dataclass(frozen=True, slots=True)
+class NightView:
+    """Everything the index and the exceptions page show."""
+
+    as_of: dt.date
+    conventions: Conventions
+    books: tuple[BookSummary, ...]
+    totals: Mapping[str, float]
+    run: Mapping[str, str]
+    exceptions: tuple[ExceptionRow, ...]
+    severity_counts: tuple[tuple[str, int], ...]
+    rule_counts: tuple[tuple[str, str, int], ...]
+
+
+def file_name_for(book: str) -> str:
+    """A safe, unique, bounded file name for a book page: ``book-<slug>-<hash>.html``.
+
+    The slug keeps ASCII letters, digits, ``-`` and ``_`` (anything else becomes ``-``), so no
+    path separator or ``..`` survives; the hash of the full name keeps distinct names distinct.
+    """
+    slug = re.sub(r"[^A-Za-z0-9_-]+", "-", book).strip("-_")[:_MAX_SLUG] or "book"
+    digest = hashlib.sha256(book.encode("utf-8")).hexdigest()[:12]
+    return f"book-{slug}-{digest}.html"

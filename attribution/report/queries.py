@@ -1,0 +1,116 @@
+"""The report's reads from the archive: one set-based query per kind of figure, values as parameters."""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass
+
+import duckdb
+import pandas as pd
+
+from attribution.schema import BOOK_PNL, BOOK_QUALITY, EXPOSURE_COLUMNS, RUNS, TAYLOR_TERMS
+
+TERM_COLUMNS: tuple[str, ...] = (
+    "pnl_actual", *(f"pnl_{t}" for t in TAYLOR_TERMS), "pnl_explained", "pnl_residual",
+    "pnl_higher_order", "pnl_mark_gap", "pnl_new_trade", "pnl_expiry", "pnl_amendment", "pnl_total",
+)
+TOP_POSITIONS = 20
+TOP_UNDERLYINGS = 30  # underlyings listed per book (largest residual first); the rest share one line
+EXCEPTIONS_SHOWN = 50  # rows listed on a book page; the night's exceptions page lists them all
+POSITION_TEXT: tuple[str, ...] = ("trade_id", "instrument_id", "underlying", "status", "flags", "limit_state")
+POSITION_VALUES: tuple[str, ...] = ("quantity", "quantity_run_date", *TERM_COLUMNS)
+
+
+class ReportError(ValueError):
+    """The archive cannot give a report for the date asked; the message says why."""
+
+
+
+def _frame(con: duckdb.DuckDBPyConnection, sql: str, params: list[object]) -> pd.DataFrame:
+    return con.execute(sql, params).df()
+
+
+def _columns(table: tuple[tuple[str, str], ...]) -> str:
+    return ", ".join(name for name, _ in table)
+
+
+@dataclass(frozen=True, slots=True)
+class NightFrames:
+    """The night's rows, one frame per query; grouped by book afterwards."""
+
+    books: pd.DataFrame
+    quality: pd.DataFrame
+    underlyings: pd.DataFrame
+    positions: pd.DataFrame
+    unpriced: pd.DataFrame
+    exceptions: pd.DataFrame
+    links: pd.DataFrame
+    history: pd.DataFrame
+    run: pd.DataFrame
+
+
+def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: int) -> NightFrames:
+    """Read everything the night's pages show, with one query per kind of figure."""
+    tables = {r[0] for r in con.execute("SELECT table_name FROM information_schema.tables").fetchall()}
+    missing = sorted({"position_pnl", "book_pnl", "input_exceptions", "book_quality", "runs"} - tables)
+    if missing:
+        raise ReportError(f"archive: table(s) {', '.join(missing)} missing; the report reads all five")
+    books = _frame(con, f"SELECT {_columns(BOOK_PNL)} FROM book_pnl WHERE as_of = ? ORDER BY book", [as_of])
+    prior = books["prior_as_of"].dropna().max() if len(books) else None
+    prior_date = pd.Timestamp(prior).date() if prior is not None and not pd.isna(prior) else as_of
+    terms = ", ".join(f"sum({c}) AS {c}" for c in (*TERM_COLUMNS, *EXPOSURE_COLUMNS))
+    rest_terms = ", ".join("NULL" if c == "delta_units" else f"sum({c})" for c in (*TERM_COLUMNS, *EXPOSURE_COLUMNS))
+    underlying_cols = ", ".join(("book", "underlying", "positions", "unpriced", *TERM_COLUMNS, *EXPOSURE_COLUMNS))
+    row_cols = ", ".join((*POSITION_TEXT, "quantity", "quantity_run_date", *TERM_COLUMNS))
+    exception_cols = "file, key, rule, detail, severity, book"
+    return NightFrames(
+        books=books,
+        quality=_frame(con, f"SELECT {_columns(BOOK_QUALITY)} FROM book_quality WHERE as_of = ? ORDER BY book",
+                       [as_of]),
+        underlyings=_frame(con, f"""
+            WITH u AS (SELECT book, underlying, count(*) AS positions,
+                              count(*) FILTER (WHERE status = 'new_unpriced') AS unpriced, {terms}
+                       FROM position_pnl WHERE as_of = ? GROUP BY book, underlying),
+                 r AS (SELECT *, row_number() OVER (PARTITION BY book ORDER BY abs(pnl_residual) DESC,
+                                                    abs(pnl_total) DESC, underlying) AS rank_in_book,
+                              count(*) OVER (PARTITION BY book) AS underlyings_in_book FROM u)
+            SELECT {underlying_cols} FROM (
+                SELECT 0 AS rest, * EXCLUDE (rank_in_book, underlyings_in_book) FROM r WHERE rank_in_book <= ?
+                UNION ALL  -- the rest of a book's underlyings in one line (delta units do not add up across them)
+                SELECT 1, book, '(' || count(*) || ' other underlyings)', sum(positions)::BIGINT,
+                       sum(unpriced)::BIGINT, {rest_terms}
+                FROM r WHERE rank_in_book > ? GROUP BY book)
+            ORDER BY book, rest, underlying""", [as_of, TOP_UNDERLYINGS, TOP_UNDERLYINGS]),
+        positions=_frame(con, f"""
+            SELECT book, {row_cols} FROM position_pnl WHERE as_of = ?
+            QUALIFY row_number() OVER (PARTITION BY book ORDER BY abs(coalesce(pnl_residual, 0)) DESC,
+                                       abs(coalesce(pnl_total, 0)) DESC, trade_id) <= ?
+            ORDER BY book, abs(coalesce(pnl_residual, 0)) DESC, abs(coalesce(pnl_total, 0)) DESC, trade_id""",
+                         [as_of, TOP_POSITIONS]),
+        unpriced=_frame(con, f"""SELECT book, {row_cols} FROM position_pnl
+                                 WHERE as_of = ? AND status = 'new_unpriced' ORDER BY book, trade_id""", [as_of]),
+        exceptions=_frame(con, f"""SELECT row_number() OVER (ORDER BY severity, file, rule, key) AS exception_id,
+                                   {exception_cols} FROM input_exceptions WHERE as_of = ?""", [as_of]),
+        links=_frame(con, f"""
+            WITH e AS (SELECT row_number() OVER (ORDER BY severity, file, rule, key) AS exception_id,
+                              {exception_cols} FROM input_exceptions WHERE as_of = ?),
+                 k AS (SELECT book, trade_id AS key FROM position_pnl WHERE as_of IN (?, ?)
+                       UNION SELECT book, instrument_id FROM position_pnl WHERE as_of = ?
+                       UNION SELECT book, underlying FROM position_pnl WHERE as_of = ?
+                       UNION SELECT book, book FROM book_pnl WHERE as_of = ?)
+            SELECT DISTINCT book, exception_id, file, key, rule, detail, severity FROM (
+                SELECT k.book, e.exception_id, e.file, e.key, e.rule, e.detail, e.severity
+                FROM e JOIN k ON e.key = k.key
+                UNION ALL  -- a rejected position names its book even when it is in no archived row
+                SELECT e.book, e.exception_id, e.file, e.key, e.rule, e.detail, e.severity FROM e
+                WHERE e.book IS NOT NULL AND e.book IN (SELECT book FROM book_pnl WHERE as_of = ?))
+            ORDER BY book, exception_id""",
+                     [as_of, as_of, prior_date, as_of, as_of, as_of, as_of]),
+        history=_frame(con, """
+            SELECT book, as_of, pnl_actual, pnl_explained, pnl_residual FROM book_pnl
+            WHERE as_of <= ? AND book IN (SELECT book FROM book_pnl WHERE as_of = ?)
+            QUALIFY row_number() OVER (PARTITION BY book ORDER BY as_of DESC) <= ?
+            ORDER BY book, as_of""", [as_of, as_of, max(int(history_nights), 1)]),
+        run=_frame(con, f"""SELECT {_columns(RUNS)} FROM runs WHERE as_of = ?
+                            ORDER BY finished_at DESC NULLS LAST, started_at DESC LIMIT 1""", [as_of]),
+    )
