@@ -15,6 +15,7 @@ from typing import Any
 
 TIME_BASES = ("ACT/365F", "BUS/252")
 ENGINES = ("local", "dask")
+SMILE_DYNAMICS = ("sticky strike", "sticky moneyness")
 
 
 class ConfigError(ValueError):
@@ -49,6 +50,20 @@ class CheckSettings:
 
 
 @dataclass(frozen=True, slots=True)
+class SmileSettings:
+    """Smile dynamics of the explain and the smile check on marks (README, "Volatility parts").
+
+    ``dynamics``: ``sticky strike`` (a strike keeps its vol when spot moves: the whole vol move is in
+    the vol terms) or ``sticky moneyness`` (the vol move the spot move implies along the prior smile
+    is the ``pnl_smile_delta`` line). ``off_smile_vol``: a run-date mark further than this (decimal
+    vol, 0.02 = 2 vol points) from its fitted smile is warned ``off smile``.
+    """
+
+    dynamics: str = "sticky strike"
+    off_smile_vol: float = 0.02
+
+
+@dataclass(frozen=True, slots=True)
 class JobConfig:
     """Everything one run needs to know besides the dates."""
 
@@ -66,6 +81,7 @@ class JobConfig:
     revaluation: bool = True
     write_reports: bool = True
     history_nights: int = 60
+    smile: SmileSettings = field(default_factory=SmileSettings)
 
     def limits_for(self, book: str) -> LimitSettings:
         """The limits of ``book``: its override when the job file has one, else the default."""
@@ -102,6 +118,21 @@ def _settings(cls: type, values: dict[str, Any], where: str) -> Any:
     return cls(**{k: float(v) for k, v in values.items()})
 
 
+def _smile_settings(values: dict[str, Any], where: str) -> SmileSettings:
+    known = {f.name for f in dataclasses.fields(SmileSettings)}
+    unknown = sorted(set(values) - known)
+    if unknown:
+        raise ConfigError(f"{where}: unknown key(s) {', '.join(unknown)}; allowed: {', '.join(sorted(known))}")
+    default = SmileSettings()
+    dynamics = values.get("dynamics", default.dynamics)
+    if dynamics not in SMILE_DYNAMICS:
+        raise ConfigError(f"{where}: dynamics must be one of {', '.join(map(repr, SMILE_DYNAMICS))}, got {dynamics!r}")
+    distance = values.get("off_smile_vol", default.off_smile_vol)
+    if not isinstance(distance, int | float) or isinstance(distance, bool) or not 0 < distance < 5:
+        raise ConfigError(f"{where}: off_smile_vol must be a decimal vol in (0, 5) such as 0.02, got {distance!r}")
+    return SmileSettings(str(dynamics), float(distance))
+
+
 def load_job(path: Path) -> JobConfig:
     """Read a TOML job file (see jobs/nightly.toml for every key, documented)."""
     source = str(path)
@@ -117,6 +148,7 @@ def load_job(path: Path) -> JobConfig:
     limits_raw = dict(_section(raw, "limits", source))
     books_raw = limits_raw.pop("books", {})
     checks = _section(raw, "checks", source)
+    smile = _smile_settings(_section(raw, "smile", source), f"{source} [smile]")
 
     def resolve(key: str, default: Path) -> Path:
         value = job.get(key)
@@ -147,6 +179,7 @@ def load_job(path: Path) -> JobConfig:
         revaluation=bool(job.get("revaluation", True)),
         write_reports=bool(job.get("write_reports", True)),
         history_nights=int(job.get("history_nights", 60)),
+        smile=smile,
     )
     return validate(config, source)
 

@@ -25,6 +25,7 @@ from attribution.schema import (
     TAYLOR_TERMS,
     V2_AMOUNT_COLUMNS,
 )
+from attribution.smile_night import NightSmiles, vol_columns
 from attribution.timebasis import DAYS_PER_YEAR_BUSINESS, DAYS_PER_YEAR_CALENDAR, TimeBasis
 
 FloatArray = NDArray[np.float64]
@@ -46,8 +47,13 @@ def _flags(parts: list[tuple[NDArray[np.bool_], str]], n: int) -> NDArray[np.obj
 
 
 def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: InstrumentMarket,
-                  market1: InstrumentMarket, basis: TimeBasis, revaluation: bool) -> pd.DataFrame:
-    """The night's ``position_pnl`` rows (without ``limit_state``), one per accepted trade."""
+                  market1: InstrumentMarket, basis: TimeBasis, revaluation: bool, smiles: NightSmiles | None = None,
+                  smile_dynamics: str = "sticky strike") -> pd.DataFrame:
+    """The night's ``position_pnl`` rows (without ``limit_state``), one per accepted trade.
+
+    With ``smiles`` (:func:`attribution.smile_night.night_smiles`), the vol terms of positions held
+    overnight are split into the smile's parts under ``smile_dynamics``; without, the parts stay 0.
+    """
     n = len(legs)
     as_of, prior_as_of = run.raw.as_of, prior.raw.as_of
     status = legs.status
@@ -81,6 +87,10 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         ex = explain_overnight(strike[k], cp[k], units0[k], s0, s1, price0[k], price1[k], np.full(k.size, dt_years))
         for name in ("actual", *TAYLOR_TERMS, "explained", "residual", "model", "higher_order", "mark_gap"):
             cols[f"pnl_{name}"][k] = getattr(ex, name)
+        if smiles is not None:
+            for name, values in vol_columns(smiles, i0[k], i1[k], units0[k], ex.greeks_prior.vega,
+                                            ex.greeks_prior.volga, ex.vega, ex.volga, smile_dynamics).items():
+                cols[name][k] = values
         if revaluation:
             shares = shapley_shares(strike[k], cp[k], s0.spot, s0.vol, s0.tau_years, s0.rate, s0.div_yield,
                                     s1.spot, s1.vol, s1.tau_years, s1.rate, s1.div_yield)
