@@ -277,7 +277,7 @@ def _cmd_quality(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    from attribution.demo_run import run_demo
+    from attribution.demo.run import run_demo
     return run_demo(args.into, days=args.days, seed=args.seed, echo=print)
 
 

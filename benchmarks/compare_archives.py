@@ -7,7 +7,9 @@ such runs column by column (and their report pages byte by byte, run identifiers
 ``run`` builds the demo desk's data (``--days`` business days, the demo's default seed) in
 ``OUT/data`` and backfills its last ``--nights`` nights with the command line into
 ``OUT/archive.duckdb`` (reports for every one of them in ``OUT/reports``). It uses only the command
-line and ``build_demo``, so the same script runs on the code before and after a change.
+line and ``build_demo``, so the same script runs on the code before and after a change (for the
+code of another commit: ``git archive <commit> | tar -x -C DIR``, then run from ``DIR`` with
+``PYTHONPATH=DIR``).
 
 ``compare`` prints, per archive table, the rows on each side and every column whose values differ
 (exactly: the same floats, the same texts, the same NULLs); the run record's clock, identity and
@@ -91,10 +93,9 @@ def compare_archives(before: Path, after: Path) -> int:
     for name in sorted(names & names_b):
         fa, fb = _table(a, name), _table(b, name)
         if list(fa.columns) != list(fb.columns):
-            print(f"{name}: columns differ: {sorted(set(fa.columns) ^ set(fb.columns))}")
+            print(f"{name}: columns on one side only: {sorted(set(fa.columns) ^ set(fb.columns))}")
             problems += 1
-            continue
-        compared = [c for c in fa.columns if c not in VOLATILE.get(name, set())]
+        compared = [c for c in fa.columns if c in fb.columns and c not in VOLATILE.get(name, set())]
         differing = [c for c in compared if not _same(fa[c], fb[c])]
         problems += len(differing) + (len(fa) != len(fb))
         print(f"{name:<17} rows {len(fa):>7,} / {len(fb):>7,}  columns compared {len(compared):>3}  "

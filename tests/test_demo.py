@@ -1,4 +1,4 @@
-"""Tests of the demo desk generator (attribution.demo, attribution.demo_market) on short slices.
+"""Tests of the demo desk generator (attribution.demo) on short slices.
 
 The data contract (/work/shared/data-contract.md) is the reference for files, columns, types and
 row rules; QuantLib 1.x (AnalyticEuropeanEngine, flat curves, Actual365Fixed) is the outside
@@ -18,15 +18,15 @@ import pyarrow.parquet as pq
 import pytest
 
 from attribution.demo import FAULT_KINDS, SCHEMAS, DemoSummary, build_demo
-from attribution.demo_market import (
+from attribution.demo.desk import (
     DeskDefinitionError,
     business_days,
     default_definition,
     desk_holidays,
     load_desk,
     monthly_expiries,
-    simulate_market,
 )
+from attribution.demo.market import simulate_market
 from attribution.pricing import bsm_greeks, bsm_price
 
 ql = pytest.importorskip("QuantLib")

@@ -2,7 +2,7 @@
 
 :func:`build_demo` writes ``<root>/as_of=YYYY-MM-DD/{positions, instruments, option_marks,
 underlying_marks, rate_curves, fx_rates}.parquet`` for every business day of an invented desk
-(definition: ``attribution/demo_desk.toml``, market: :mod:`attribution.demo_market`). Each day,
+(definition: ``attribution/demo/demo_desk.toml``, market: :mod:`attribution.demo.market`). Each day,
 vectorised over instruments and trades:
 
 * listing: the next monthly and the quarterly expiries, strikes on a grid of standard deviations
@@ -33,41 +33,27 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from numpy.typing import NDArray
 
-from attribution.demo_market import (
-    DAYS_PER_YEAR,
-    DeskSpec,
+from attribution.demo.desk import DAYS_PER_YEAR, DeskSpec, default_definition, desk_holidays, load_desk, monthly_expiries
+from attribution.demo.desk import business_days as desk_business_days
+from attribution.demo.faults import mark_faults, noisy_marks
+from attribution.demo.market import (
+    IntArray,
     ListedInstruments,
     MarketPaths,
-    default_definition,
-    desk_holidays,
     list_instruments,
-    load_desk,
-    monthly_expiries,
     nearest_strike,
     series_key,
     simulate_market,
     smile_vol,
     zero_rate,
 )
-from attribution.demo_market import business_days as desk_business_days
+from attribution.demo.nights import Night, PlantedFault, Pool, Trades
 from attribution.loading import CONTRACT_SCHEMAS
 from attribution.pricing import FloatArray, bsm_greeks, bsm_price
 
-IntArray = NDArray[np.int64]
 DEFAULT_START = dt.date(2025, 11, 3)
 SCHEMAS: dict[str, pa.Schema] = CONTRACT_SCHEMAS
 FAULT_KINDS = ("stale_mark", "fat_finger_mark", "missing_mark", "noisy_marks")
-
-
-@dataclass(frozen=True, slots=True)
-class PlantedFault:
-    """A fault planted in the marks of one night; for ``noisy_marks`` the key is the underlying."""
-
-    as_of: dt.date
-    book: str
-    instrument_or_trade: str
-    kind: str
-    detail: str
 
 
 @dataclass(frozen=True, slots=True)
@@ -109,55 +95,8 @@ class DemoSummary:
         return "\n".join(lines)
 
 
-@dataclass(slots=True)
-class _Trades:
-    """Every trade booked so far (append-only) and the rows held tonight."""
 
-    book: IntArray = field(default_factory=lambda: np.zeros(0, np.int64))
-    instrument: IntArray = field(default_factory=lambda: np.zeros(0, np.int64))
-    quantity: FloatArray = field(default_factory=lambda: np.zeros(0))
-    trade_date: NDArray[np.datetime64] = field(default_factory=lambda: np.zeros(0, "datetime64[D]"))
-    trade_price: FloatArray = field(default_factory=lambda: np.zeros(0))
-    package: IntArray = field(default_factory=lambda: np.zeros(0, np.int64))
-    live: IntArray = field(default_factory=lambda: np.zeros(0, np.int64))
-    counts: dict[str, int] = field(default_factory=lambda: dict.fromkeys(
-        ("new", "unpriced", "closed", "expired", "amended"), 0))
-
-
-@dataclass(slots=True)
-class _Night:
-    """One date: live instruments with their marks (as written), bounds, and the positions held."""
-
-    live: IntArray
-    price: FloatArray
-    vol: FloatArray          # NaN where implied_vol is written as null
-    keep: NDArray[np.bool_]  # False where the mark row is left out
-    tau: FloatArray
-    lower: FloatArray
-    upper: FloatArray
-    rows: IntArray
-    quantity: FloatArray
-
-
-@dataclass(frozen=True, slots=True)
-class _Pool:
-    """Instruments open for new trades tonight (at least the minimum days to expiry), with their clean marks."""
-
-    instrument: IntArray
-    und: IntArray
-    series: IntArray         # (expiry, underlying, call/put) as one integer; flipping bit 0 flips call/put
-    is_call: NDArray[np.bool_]
-    log_strike: FloatArray
-    spot: FloatArray
-    tau: FloatArray
-    vol: FloatArray
-    rate: FloatArray
-    div: FloatArray
-    price: FloatArray
-    weight: FloatArray
-
-
-def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments) -> tuple[_Night, _Pool]:
+def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments) -> tuple[Night, Pool]:
     """Clean marks of every live instrument tonight, and the pool open for new trades."""
     day = market.dates[d]
     live = np.flatnonzero(store.expiry >= day)
@@ -177,20 +116,20 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments
     lower = np.maximum(sign * (spot * np.exp(-div * tau) - strike * np.exp(-rate * tau)), 0.0)
     upper = np.where(is_call, spot * np.exp(-div * tau), strike * np.exp(-rate * tau))
     price = np.where(tau > 0, np.maximum(price, lower + desk.min_time_value_share * spot), price)
-    night = _Night(live=live, price=price, vol=np.where(store.null_vol[live], np.nan, vol),
+    night = Night(live=live, price=price, vol=np.where(store.null_vol[live], np.nan, vol),
                    keep=np.ones(live.size, bool), tau=tau, lower=lower, upper=upper,
                    rows=np.zeros(0, np.int64), quantity=np.zeros(0))
     open_ = tau * DAYS_PER_YEAR >= desk.trading.min_days_to_expiry_new
     z = np.log(strike / spot) / (vol * np.sqrt(np.maximum(tau, 1e-9)))
     series = series_key(und, store.expiry[live]) * 2 + is_call
-    pool = _Pool(instrument=live[open_], und=und[open_], series=series[open_],
+    pool = Pool(instrument=live[open_], und=und[open_], series=series[open_],
                  is_call=is_call[open_], log_strike=np.log(strike[open_]), spot=spot[open_], tau=tau[open_],
                  vol=vol[open_], rate=rate[open_], div=div[open_], price=price[open_],
                  weight=(np.exp(-0.5 * (z / 0.8) ** 2) / (1.0 + 2.0 * tau))[open_])
     return night, pool
 
 
-def _sample(rng: np.random.Generator, pool: _Pool, mask: NDArray[np.bool_], n: int) -> IntArray:
+def _sample(rng: np.random.Generator, pool: Pool, mask: NDArray[np.bool_], n: int) -> IntArray:
     cand = np.flatnonzero(mask)
     if cand.size == 0 or n <= 0:
         return np.zeros(0, np.int64)
@@ -198,7 +137,7 @@ def _sample(rng: np.random.Generator, pool: _Pool, mask: NDArray[np.bool_], n: i
     return cand[rng.choice(cand.size, size=n, p=w / w.sum())]
 
 
-def _pairs(rng: np.random.Generator, pool: _Pool, style: str, mask: NDArray[np.bool_], lots: FloatArray,
+def _pairs(rng: np.random.Generator, pool: Pool, style: str, mask: NDArray[np.bool_], lots: FloatArray,
            side: FloatArray) -> tuple[IntArray, FloatArray]:
     """Two-leg packages, legs interleaved: short straddles/strangles, or pairs whose deltas offset."""
     if style == "short_vol":
@@ -225,7 +164,7 @@ def _pairs(rng: np.random.Generator, pool: _Pool, style: str, mask: NDArray[np.b
             np.stack([q_anchor[ok], q_partner[ok]], axis=1).ravel())
 
 
-def _open(rng: np.random.Generator, desk: DeskSpec, b: int, pool: _Pool, n: int, trades: _Trades,
+def _open(rng: np.random.Generator, desk: DeskSpec, b: int, pool: Pool, n: int, trades: Trades,
           trade_date: NDArray[np.datetime64], unpriced_share: float) -> None:
     """Book about ``n`` new positions in book ``b`` at tonight's clean marks (``trade_date``: n + 1 dates)."""
     book = desk.books[b]
@@ -253,7 +192,7 @@ def _open(rng: np.random.Generator, desk: DeskSpec, b: int, pool: _Pool, n: int,
 
 
 def _lifecycle(rng: np.random.Generator, desk: DeskSpec, day: np.datetime64, store: ListedInstruments,
-               trades: _Trades) -> None:
+               trades: Trades) -> None:
     """Expiries (expired before tonight), closes of whole packages, and quantity amendments."""
     live = trades.live
     expired = store.expiry[trades.instrument[live]] < day
@@ -273,7 +212,7 @@ def _lifecycle(rng: np.random.Generator, desk: DeskSpec, day: np.datetime64, sto
 
 
 def _trade(rng: np.random.Generator, desk: DeskSpec, d: int, market: MarketPaths, store: ListedInstruments,
-           trades: _Trades, pool: _Pool, targets: IntArray) -> None:
+           trades: Trades, pool: Pool, targets: IntArray) -> None:
     day = market.dates[d]
     if d == 0:  # the opening book, booked on earlier business days
         hol = np.array(desk_holidays(desk, day.item() - dt.timedelta(days=150), day.item()), dtype="datetime64[D]")
@@ -291,106 +230,6 @@ def _trade(rng: np.random.Generator, desk: DeskSpec, d: int, market: MarketPaths
         _open(rng, desk, b, pool, n, trades, np.full(n + 1, day), desk.trading.unpriced_share)
     trades.counts["new"] += trades.book.size - before
     trades.counts["unpriced"] += int(np.isnan(trades.trade_price[before:]).sum())
-
-
-def _carried_in_book(market: MarketPaths, store: ListedInstruments, trades: _Trades, nights: list[_Night], d: int,
-                     b: int) -> tuple[IntArray, FloatArray]:
-    """Instruments book ``b`` holds on nights d - 1 and d with a week or more to expiry, and sum |qty| x price at d."""
-    now, prev = nights[d].rows, nights[d - 1].rows
-    mine = trades.book[now] == b
-    inst_now = trades.instrument[now][mine]
-    both = np.intersect1d(inst_now, trades.instrument[prev][trades.book[prev] == b])
-    both = both[(store.expiry[both] - market.dates[d]).astype(int) >= 7]
-    inside = np.isin(inst_now, both)
-    units = np.bincount(np.searchsorted(both, inst_now[inside]), np.abs(nights[d].quantity[mine][inside]),
-                        minlength=both.size)
-    return both, units * nights[d].price[np.searchsorted(nights[d].live, both)]
-
-
-def _fault_candidates(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: _Trades,
-                      nights: list[_Night], d: int, b: int, kind: str) -> tuple[IntArray, FloatArray]:
-    """Carried instruments of book ``b`` on night ``d`` and a score (> 0 where the fault may go, larger first).
-
-    The stale and fat-finger marks stay strictly inside the night's no-arbitrage bounds, so that they reach
-    the explain as marks the controls must catch; a stale mark needs its underlying to move by 0.5 % or more.
-    """
-    both, score = _carried_in_book(market, store, trades, nights, d, b)
-    night = nights[d]
-    pos = np.searchsorted(night.live, both)
-    if kind == "stale_mark":
-        prev = nights[d - 1]
-        stale = prev.price[np.searchsorted(prev.live, both)]
-        move = np.abs(np.log(market.spot[d] / market.spot[d - 1]))[store.und[both]]
-        ok = (stale > night.lower[pos]) & (stale < night.upper[pos]) & (move >= 0.005)
-        return both, np.where(ok, score * move, 0.0)
-    if kind == "fat_finger_mark":
-        return both, np.where(night.price[pos] * desk.faults.fat_finger_factor < night.upper[pos], score, 0.0)
-    return both, score
-
-
-def _plant_mark_fault(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, nights: list[_Night], d: int,
-                      inst: int, kind: str) -> str:
-    """Plant one fault in night ``d``'s mark of instrument ``inst``; returns its description."""
-    night, name = nights[d], desk.underlyings[store.und[inst]].name
-    pos = int(np.searchsorted(night.live, inst))
-    if kind == "stale_mark":
-        prev = nights[d - 1]
-        p_prev = int(np.searchsorted(prev.live, inst))
-        night.price[pos], night.vol[pos] = prev.price[p_prev], prev.vol[p_prev]
-        move = np.log(market.spot[d, store.und[inst]] / market.spot[d - 1, store.und[inst]])
-        return (f"price {night.price[pos]:.6g} and implied vol {night.vol[pos]:.4f} repeated from "
-                f"{market.dates[d - 1]} while {name} moved {move:+.2%}")
-    if kind == "fat_finger_mark":
-        factor = desk.faults.fat_finger_factor
-        night.price[pos] *= factor
-        return f"price {night.price[pos]:.6g} written instead of {night.price[pos] / factor:.6g}"
-    night.keep[pos] = False
-    return "no option_marks row although the instrument is held"
-
-
-def _mark_faults(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: _Trades, nights: list[_Night],
-                 ids: NDArray[np.str_], b: int) -> list[PlantedFault]:
-    """One stale, one fat-finger and one missing mark, on distinct nights, in positions book ``b`` carries."""
-    n = len(nights)
-    used: set[int] = set()
-    out = []
-    for kind, frac in (("stale_mark", 0.35), ("fat_finger_mark", 0.6), ("missing_mark", 0.8)):
-        order = sorted(range(1, n), key=lambda d, f=frac: abs(d - f * (n - 1)))
-        for d in (d for d in order if d not in used):
-            both, score = _fault_candidates(desk, market, store, trades, nights, d, b, kind)
-            if both.size and score.max() > 0:
-                inst = int(both[np.argmax(score)])
-                detail = _plant_mark_fault(desk, market, store, nights, d, inst, kind)
-                out.append(PlantedFault(market.dates[d].item(), desk.books[b].name, str(ids[inst]), kind, detail))
-                used.add(d)
-                break
-        else:
-            raise RuntimeError(f"book {desk.books[b].name}: no carried position to plant a {kind} in")
-    return out
-
-
-def _noisy_marks(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, nights: list[_Night], b: int,
-                 rng: np.random.Generator) -> list[PlantedFault]:
-    """Random errors of the time value of every live option of book ``b``'s underlyings on some nights."""
-    spec, book, names = desk.faults, desk.books[b], [u.name for u in desk.underlyings]
-    noisy = rng.random(len(nights)) < spec.noisy_night_share
-    noisy[0] = False
-    if not noisy.any():
-        noisy[rng.integers(1, len(nights))] = True
-    out = []
-    for d in np.flatnonzero(noisy):
-        night = nights[d]
-        common = rng.normal(0.0, spec.noisy_common_sd)  # one bad feed: the book's underlyings err together
-        for name in book.underlyings:
-            sel = (store.und[night.live] == names.index(name)) & (night.tau > 0)
-            error = np.clip(common + rng.normal(0.0, spec.noisy_idio_sd, int(sel.sum())), -0.9, 1.5)
-            lower, upper = night.lower[sel], night.upper[sel]
-            night.price[sel] = np.minimum(lower + (night.price[sel] - lower) * (1.0 + error),
-                                          lower + 0.99 * (upper - lower))
-            out.append(PlantedFault(market.dates[d].item(), book.name, name, "noisy_marks",
-                                    f"time value of {int(sel.sum())} option marks off by {common:+.1%} in common "
-                                    f"and {spec.noisy_idio_sd:.0%} (sd) each"))
-    return out
 
 
 def _ids(desk: DeskSpec, store: ListedInstruments, trade_count: int) -> tuple[NDArray[np.str_], NDArray[np.str_]]:
@@ -415,8 +254,8 @@ def _prepare_root(root: Path, dates: NDArray[np.datetime64]) -> None:
                          "write the demo into an empty folder")
 
 
-def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: _Trades,
-           nights: list[_Night], ids: NDArray[np.str_], trade_ids: NDArray[np.str_]) -> None:
+def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: Trades,
+           nights: list[Night], ids: NDArray[np.str_], trade_ids: NDArray[np.str_]) -> None:
     names = np.array([u.name for u in desk.underlyings])
     codes = np.array([c.code for c in desk.currencies])
     ccy = np.array([list(codes).index(u.currency) for u in desk.underlyings])
@@ -475,7 +314,7 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
         clean[[names.index(x) for x in book.underlyings]] &= book.marks == "clean"
     weights = np.array([b.weight for b in desk.books])
     targets = np.ceil(positions_target * weights / weights.sum()).astype(np.int64)
-    store, trades, nights = ListedInstruments(), _Trades(), []
+    store, trades, nights = ListedInstruments(), Trades(), []
     for d in range(dates.size):
         if d % desk.trading.listing_every_days == 0:
             list_instruments(desk, market, d, store, expiries, clean, list_rng)
@@ -487,9 +326,9 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
     faults: list[PlantedFault] = []
     for b, book in enumerate(desk.books):
         if book.marks == "planted_faults":
-            faults += _mark_faults(desk, market, store, trades, nights, ids, b)
+            faults += mark_faults(desk, market, store, trades, nights, ids, b)
         elif book.marks == "noisy":
-            faults += _noisy_marks(desk, market, store, nights, b, fault_rng)
+            faults += noisy_marks(desk, market, store, nights, b, fault_rng)
     _write(root, desk, market, store, trades, nights, ids, trade_ids)
     counts = np.array([night.rows.size for night in nights])
     first, last_expiry = dates[0].item(), store.expiry.max().item()

@@ -9,6 +9,7 @@ from pathlib import Path
 
 from attribution.backfill import backfill
 from attribution.config import JobConfig
+from attribution.demo.build import build_demo
 from attribution.engine import EXIT_FINDINGS, EXIT_OK
 
 
@@ -21,7 +22,6 @@ def demo_config(into: Path, holidays: tuple) -> JobConfig:
 def run_demo(into: Path, *, days: int = 261, seed: int = 7, reports_last: int = 1,
              echo: Callable[[str], None] = print) -> int:
     """Write the demo into ``into`` (replacing an earlier demo there) and explain every night."""
-    from attribution.demo import build_demo
     t0 = time.perf_counter()
     into = into.resolve()
     for stale in (into / "data", into / "reports"):
