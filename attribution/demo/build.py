@@ -25,7 +25,7 @@ value. The same seed gives the same tables, byte for byte.
 from __future__ import annotations
 
 import datetime as dt
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -33,7 +33,14 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from numpy.typing import NDArray
 
-from attribution.demo.desk import DAYS_PER_YEAR, DeskSpec, default_definition, desk_holidays, load_desk, monthly_expiries
+from attribution.demo.desk import (
+    DAYS_PER_YEAR,
+    DeskSpec,
+    default_definition,
+    desk_holidays,
+    load_desk,
+    monthly_expiries,
+)
 from attribution.demo.desk import business_days as desk_business_days
 from attribution.demo.faults import mark_faults, noisy_marks
 from attribution.demo.market import (
