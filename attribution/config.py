@@ -64,6 +64,23 @@ class SmileSettings:
 
 
 @dataclass(frozen=True, slots=True)
+class VolTimeSettings:
+    """Day weights of the variance clock (README, "Weighted vol time"); every weight 1 is the basis clock.
+
+    ``weekdays``: Monday to Sunday; ``holiday``: the days of ``[time] holidays``; ``events``: (date, weight)
+    pairs, sorted, an event's weight ruling over the others of its day.
+    """
+
+    weekdays: tuple[float, ...] = (1.0,) * 7
+    holiday: float = 1.0
+    events: tuple[tuple[dt.date, float], ...] = ()
+
+    def is_default(self) -> bool:
+        """True when every weight is 1: the variance clock is the time basis itself."""
+        return all(w == 1.0 for w in (*self.weekdays, self.holiday, *(x for _, x in self.events)))
+
+
+@dataclass(frozen=True, slots=True)
 class JobConfig:
     """Everything one run needs to know besides the dates."""
 
@@ -82,6 +99,7 @@ class JobConfig:
     write_reports: bool = True
     history_nights: int = 60
     smile: SmileSettings = field(default_factory=SmileSettings)
+    vol_time: VolTimeSettings = field(default_factory=VolTimeSettings)
 
     def limits_for(self, book: str) -> LimitSettings:
         """The limits of ``book``: its override when the job file has one, else the default."""
@@ -133,6 +151,37 @@ def _smile_settings(values: dict[str, Any], where: str) -> SmileSettings:
     return SmileSettings(str(dynamics), float(distance))
 
 
+def _weight(value: Any, where: str) -> float:
+    if not isinstance(value, int | float) or isinstance(value, bool) or not 0 <= value <= 100:
+        raise ConfigError(f"{where} must be a number in [0, 100], got {value!r}")
+    return float(value)
+
+
+def _vol_time_settings(values: dict[str, Any], where: str) -> VolTimeSettings:
+    known = {f.name for f in dataclasses.fields(VolTimeSettings)}
+    unknown = sorted(set(values) - known)
+    if unknown:
+        raise ConfigError(f"{where}: unknown key(s) {', '.join(unknown)}; allowed: {', '.join(sorted(known))}")
+    weekdays = values.get("weekdays", [1.0] * 7)
+    if not isinstance(weekdays, list) or len(weekdays) != 7:
+        raise ConfigError(f"{where}: weekdays must be a list of 7 weights, Monday to Sunday")
+    days = tuple(_weight(w, f"{where}: weekdays[{i}]") for i, w in enumerate(weekdays))
+    if min(days[:5]) <= 0:
+        raise ConfigError(f"{where}: weekdays Monday to Friday must weigh more than 0 (a week must carry variance)")
+    events = values.get("events", {})
+    if not isinstance(events, dict):
+        raise ConfigError(f"{where}: events must be a table of date = weight, such as 2026-12-16 = 2.5")
+    parsed = []
+    for key, w in events.items():
+        try:
+            day = dt.date.fromisoformat(str(key))
+        except ValueError as exc:
+            raise ConfigError(f"{where}: events key {key!r} is not a date YYYY-MM-DD") from exc
+        parsed.append((day, _weight(w, f"{where}: events.{key}")))
+    holiday = _weight(values.get("holiday", 1.0), f"{where}: holiday")
+    return VolTimeSettings(days, holiday, tuple(sorted(parsed)))
+
+
 def load_job(path: Path) -> JobConfig:
     """Read a TOML job file (see jobs/nightly.toml for every key, documented)."""
     source = str(path)
@@ -149,6 +198,7 @@ def load_job(path: Path) -> JobConfig:
     books_raw = limits_raw.pop("books", {})
     checks = _section(raw, "checks", source)
     smile = _smile_settings(_section(raw, "smile", source), f"{source} [smile]")
+    vol_time = _vol_time_settings(_section(raw, "vol_time", source), f"{source} [vol_time]")
 
     def resolve(key: str, default: Path) -> Path:
         value = job.get(key)
@@ -180,6 +230,7 @@ def load_job(path: Path) -> JobConfig:
         write_reports=bool(job.get("write_reports", True)),
         history_nights=int(job.get("history_nights", 60)),
         smile=smile,
+        vol_time=vol_time,
     )
     return validate(config, source)
 

@@ -33,6 +33,7 @@ from attribution.night import position_rows, stale_flags
 from attribution.schema import BOOK_PNL, EXPOSURE_COLUMNS, PNL_COLUMNS, REVAL_COLUMNS, V2_AMOUNT_COLUMNS
 from attribution.smile_night import check_smiles, night_smiles
 from attribution.timebasis import TimeBasis
+from attribution.vol_time import variance_clock
 
 __all__ = ["EXIT_FAILED", "EXIT_FINDINGS", "EXIT_OK", "EXIT_USAGE", "NightOutcome", "PreparedNight",
            "prepare_night", "run_night"]
@@ -217,11 +218,15 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     stale = flag_stale_marks(market0, market1, config.checks.stale_spot_move,
                              raw1.path("option_marks.parquet"), log)
     legs = match_legs(clean0, clean1, market0, market1, log)
-    smiles = night_smiles(market0, market1, market0.vol, market1.vol)
+    clock = variance_clock(basis, config.vol_time, prior_as_of, as_of, market0.expiry, market0.tau_years,
+                           market1.expiry, market1.tau_years)
+    vol0, vol1 = (market0.vol, market1.vol) if clock is None else (
+        market0.vol / np.sqrt(clock.ratio0), market1.vol / np.sqrt(clock.ratio1))
+    smiles = night_smiles(market0, market1, vol0, vol1)
     check_smiles(smiles, market1, market1.vol, config.smile.off_smile_vol, raw1.path("option_marks.parquet"), log)
     watch.lap("market")
     positions = position_rows(legs, clean0, clean1, market0, market1, basis, config.revaluation, smiles,
-                              config.smile.dynamics)
+                              config.smile.dynamics, clock)
     positions = stale_flags(positions, market1.ids[stale].to_numpy())
     watch.lap("explain")
     limits = [config.limits_for(b) for b in pd.unique(positions["book"])]

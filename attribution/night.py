@@ -12,7 +12,7 @@ import pandas as pd
 from numpy.typing import NDArray
 
 from attribution.contract import CleanNight
-from attribution.explain import MarketState, explain_overnight
+from attribution.explain import Explain, MarketState, explain_overnight
 from attribution.lifecycle import CARRIED, CLOSED, EXPIRIES, NEW, NEW_UNPRICED, Legs, trade_date_flags
 from attribution.market import InstrumentMarket, take
 from attribution.pricing import greeks_unchecked
@@ -27,6 +27,7 @@ from attribution.schema import (
 )
 from attribution.smile_night import NightSmiles, vol_columns
 from attribution.timebasis import DAYS_PER_YEAR_BUSINESS, DAYS_PER_YEAR_CALENDAR, TimeBasis
+from attribution.vol_time import VarianceClock, clock_terms, decay_per_year
 
 FloatArray = NDArray[np.float64]
 
@@ -46,13 +47,34 @@ def _flags(parts: list[tuple[NDArray[np.bool_], str]], n: int) -> NDArray[np.obj
     return out.to_numpy(dtype=object)
 
 
+def _vol_and_time(ex: Explain, units: FloatArray, s0: MarketState, s1: MarketState, dt_years: float,
+                  i0: NDArray[np.intp], i1: NDArray[np.intp], smiles: NightSmiles | None, dynamics: str,
+                  clock: VarianceClock | None) -> dict[str, FloatArray]:
+    """Theta's decay and carry, the vol terms' smile parts, and (with a variance clock) the restated terms."""
+    g = ex.greeks_prior
+    if clock is None:
+        decay = units * decay_per_year(g, s0, np.ones(len(units))) * dt_years
+        out = {"pnl_theta_decay": decay, "pnl_theta_carry": ex.theta - decay}
+        vega_u, volga_u, vega, volga = g.vega, g.volga, ex.vega, ex.volga
+    else:
+        t = clock_terms(g, units, s0, s1, dt_years, clock.dt_years, clock.ratio0[i0], clock.ratio1[i1])
+        out = {f"pnl_{name}": t[name] for name in ("vega", "volga", "vanna", "theta", "theta_decay", "theta_carry")}
+        explained = ex.explained + sum(t[name] - getattr(ex, name) for name in ("vega", "volga", "vanna", "theta"))
+        out.update(pnl_explained=explained, pnl_residual=ex.actual - explained, pnl_higher_order=ex.model - explained)
+        vega_u, volga_u, vega, volga = t["vega_per_unit"], t["volga_per_unit"], t["vega"], t["volga"]
+    if smiles is not None:
+        out.update(vol_columns(smiles, i0, i1, units, vega_u, volga_u, vega, volga, dynamics))
+    return out
+
+
 def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: InstrumentMarket,
                   market1: InstrumentMarket, basis: TimeBasis, revaluation: bool, smiles: NightSmiles | None = None,
-                  smile_dynamics: str = "sticky strike") -> pd.DataFrame:
+                  smile_dynamics: str = "sticky strike", clock: VarianceClock | None = None) -> pd.DataFrame:
     """The night's ``position_pnl`` rows (without ``limit_state``), one per accepted trade.
 
     With ``smiles`` (:func:`attribution.smile_night.night_smiles`), the vol terms of positions held
     overnight are split into the smile's parts under ``smile_dynamics``; without, the parts stay 0.
+    With a variance ``clock`` (:mod:`attribution.vol_time`) the vol and time terms are restated on it.
     """
     n = len(legs)
     as_of, prior_as_of = run.raw.as_of, prior.raw.as_of
@@ -87,10 +109,9 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         ex = explain_overnight(strike[k], cp[k], units0[k], s0, s1, price0[k], price1[k], np.full(k.size, dt_years))
         for name in ("actual", *TAYLOR_TERMS, "explained", "residual", "model", "higher_order", "mark_gap"):
             cols[f"pnl_{name}"][k] = getattr(ex, name)
-        if smiles is not None:
-            for name, values in vol_columns(smiles, i0[k], i1[k], units0[k], ex.greeks_prior.vega,
-                                            ex.greeks_prior.volga, ex.vega, ex.volga, smile_dynamics).items():
-                cols[name][k] = values
+        for name, values in _vol_and_time(ex, units0[k], s0, s1, dt_years, i0[k], i1[k], smiles, smile_dynamics,
+                                          clock).items():
+            cols[name][k] = values
         if revaluation:
             shares = shapley_shares(strike[k], cp[k], s0.spot, s0.vol, s0.tau_years, s0.rate, s0.div_yield,
                                     s1.spot, s1.vol, s1.tau_years, s1.rate, s1.div_yield)

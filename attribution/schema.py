@@ -30,6 +30,8 @@ V2_AMOUNT_COLUMNS: tuple[str, ...] = (
     "pnl_cash",                  # cash flows and dividend income (per trade, or a `cash` row per book)
     *(f"pnl_vol_{part}" for part in VOL_PARTS),  # add up to pnl_vega + pnl_volga
     "pnl_smile_delta",           # the spot-implied vol move's P&L under sticky moneyness; 0 under sticky strike
+    "pnl_theta_decay",           # theta's variance-clock part (README, "Weighted vol time")
+    "pnl_theta_carry",           # theta at fixed total variance; decay + carry = pnl_theta
 )
 EXPOSURE_COLUMNS: tuple[str, ...] = (
     "delta_units",               # N * delta: underlying units (per underlying only meaningful)

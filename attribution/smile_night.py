@@ -157,7 +157,10 @@ def _name(smiles: NightSmiles, code: IntArray) -> NDArray[np.object_]:
 
 def check_smiles(smiles: NightSmiles, m1: InstrumentMarket, vol1: FloatArray, off_smile_vol: float,
                  marks_file: str, log: ExceptionLog) -> None:
-    """Warn about the run date's marks that lie off their smile or make a butterfly or calendar arbitrage."""
+    """Warn about the run date's marks that lie off their smile or make a butterfly or calendar arbitrage.
+
+    ``vol1``: the run date's marked vols (basis clock) per instrument, for the arbitrage checks.
+    """
     run = smiles.run
     pts = run.points
     if pts.size == 0:
@@ -165,7 +168,8 @@ def check_smiles(smiles: NightSmiles, m1: InstrumentMarket, vol1: FloatArray, of
     g = run.smile[pts]
     ids = m1.ids.to_numpy()[pts]
     name = _name(smiles, g)
-    found = off_smile(vol1[pts], run.fit.fitted, run.fit.quadratic[g], off_smile_vol)
+    # Off smile on the vols the smiles were fitted to (the variance clock's, when the job weights time).
+    found = off_smile(run.fit.fitted + run.fit.residual, run.fit.fitted, run.fit.quadratic[g], off_smile_vol)
     log.add(marks_file, ids[found.index], "off smile",
             [f"implied vol {v:.4f} is {abs(v - f) * 100:.2f} vol points from its fitted smile ({f:.4f}) on {s}"
              for v, f, s in zip(found.observed, found.bound, name[found.index], strict=True)], WARNING)
