@@ -2,14 +2,15 @@
 
 from __future__ import annotations
 
-import contextlib
 import dataclasses
 import datetime as dt
 from collections.abc import Callable
 
 from attribution.config import JobConfig
-from attribution.engine import EXIT_FINDINGS, EXIT_OK, NightOutcome, open_archive, run_night
+from attribution.console import ProgressLine, summary
+from attribution.engine import EXIT_FINDINGS, EXIT_OK, NightOutcome, open_archive
 from attribution.loading import InputFileError, available_dates
+from attribution.runner import cluster, run_night
 
 
 def nights_between(config: JobConfig, start: dt.date, end: dt.date) -> list[dt.date]:
@@ -20,17 +21,9 @@ def nights_between(config: JobConfig, start: dt.date, end: dt.date) -> list[dt.d
     return [d for d in dates if start <= d <= end and d > dates[0]]
 
 
-def _cluster(config: JobConfig) -> contextlib.AbstractContextManager:
-    if config.engine != "dask":
-        return contextlib.nullcontext()
-    from attribution.dask_engine import cluster_client
-    return cluster_client(config)
-
-
 def backfill(config: JobConfig, start: dt.date, end: dt.date, reports_last: int = 1,
              echo: Callable[[str], None] = print) -> int:
     """Run every night of the range; stops at the first failed night. Returns the exit code."""
-    from attribution.cli import ProgressLine, summary
     nights = nights_between(config, start, end)
     if not nights:
         raise InputFileError(f"{config.data_root}: no run date between {start} and {end} with a prior folder")
@@ -38,7 +31,7 @@ def backfill(config: JobConfig, start: dt.date, end: dt.date, reports_last: int 
     outcomes: list[NightOutcome] = []
     # The archive is held for the whole range (no other run slips in between nights), and with
     # engine = "dask" one cluster serves every night.
-    with open_archive(config) as session, _cluster(config) as client:
+    with open_archive(config) as session, cluster(config) as client:
         for k, night in enumerate(nights):
             with_reports = config.write_reports and (reports_last < 0 or k >= len(nights) - reports_last)
             outcomes.append(run_night(dataclasses.replace(config, write_reports=with_reports), night,

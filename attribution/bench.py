@@ -27,7 +27,7 @@ from attribution.engine import EXIT_OK
 def _night_in_child(config: JobConfig, as_of: object, queue: mp.Queue) -> None:
     import traceback
 
-    from attribution.engine import run_night
+    from attribution.runner import run_night
     try:
         outcome = run_night(config, as_of)  # type: ignore[arg-type]
     except Exception:  # noqa: BLE001 - sent to the parent, which reports it

@@ -51,8 +51,9 @@ import pyarrow.parquet as pq
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
+from attribution.books import NO_BOOK
 from attribution.config import JobConfig
-from attribution.engine import NO_BOOK, PreparedNight, Progress, _resolve_prior, _Stopwatch, prepare_night
+from attribution.engine import PreparedNight, Progress, Stopwatch, prepare_night, resolve_prior
 from attribution.errors import JobFailure
 from attribution.lifecycle import NEW, NEW_UNPRICED, match_keys
 from attribution.loading import blank_books, folder_for, read_night
@@ -227,8 +228,8 @@ def _threads(client: Any) -> int:
 
 
 def _on_cluster(client: Any, config: JobConfig, as_of: dt.date, prior: dt.date | None,
-                watch: _Stopwatch) -> PreparedNight:
-    prior_as_of = _resolve_prior(config, as_of, prior)
+                watch: Stopwatch) -> PreparedNight:
+    prior_as_of = resolve_prior(config, as_of, prior)
     keys = position_keys(config, prior_as_of, as_of)
     groups = book_groups(keys, TASKS_PER_THREAD * _threads(client))
     log.info("%s: %d book group(s) of %s positions", as_of, len(groups), [g.positions for g in groups])
@@ -251,7 +252,7 @@ def prepare_night_dask(config: JobConfig, as_of: dt.date, prior: dt.date | None 
     books, and every worker's read, validation, market and explain, in wall time) and "merge".
     """
     require_distributed()
-    watch = _Stopwatch(progress)
+    watch = Stopwatch(progress)
     if client is not None:
         night = _on_cluster(client, config, as_of, prior, watch)
     else:

@@ -21,22 +21,22 @@ import pandas as pd
 
 from attribution import __version__
 from attribution.archive import archive_lock, connect, write_night
+from attribution.books import book_frame, conservation, position_books, position_limit_states, rejected_positions
 from attribution.config import ConfigError, JobConfig
-from attribution.contract import NULL_KEY, clean_night
-from attribution.controls import BREACH, WATCH, book_states, position_states
+from attribution.contract import clean_night
+from attribution.controls import BREACH
 from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
-from attribution.exceptions_log import REJECTED, WARNING, ExceptionLog
-from attribution.lifecycle import STATUSES, match_legs
-from attribution.loading import RawNight, prior_date, read_night
+from attribution.exceptions_log import WARNING, ExceptionLog
+from attribution.lifecycle import match_legs
+from attribution.loading import prior_date, read_night
 from attribution.market import build_market, flag_stale_marks, instrument_terms
 from attribution.night import position_rows, stale_flags
-from attribution.schema import BOOK_PNL, EXPOSURE_COLUMNS, PNL_COLUMNS, REVAL_COLUMNS, V2_AMOUNT_COLUMNS
 from attribution.smile_night import check_smiles, night_smiles
 from attribution.timebasis import TimeBasis
 from attribution.vol_time import variance_clock
 
-__all__ = ["EXIT_FAILED", "EXIT_FINDINGS", "EXIT_OK", "EXIT_USAGE", "NightOutcome", "PreparedNight",
-           "prepare_night", "run_night"]
+__all__ = ["EXIT_FAILED", "EXIT_FINDINGS", "EXIT_OK", "EXIT_USAGE", "NightOutcome", "Prepare", "PreparedNight",
+           "Stopwatch", "open_archive", "prepare_night", "resolve_prior", "run_night"]
 
 Progress = Callable[[str], None]
 
@@ -55,6 +55,10 @@ class PreparedNight:
     rejected_positions: int
     unaccounted: tuple[str, ...]
     stages: tuple[tuple[str, float], ...]
+
+
+# The step that computes a night's tables: (config, as_of, prior, progress) -> PreparedNight.
+Prepare = Callable[[JobConfig, dt.date, dt.date | None, Progress | None], PreparedNight]
 
 
 @dataclass(frozen=True, slots=True)
@@ -82,7 +86,9 @@ class NightOutcome:
     zones: dict[str, int] = field(default_factory=dict)
 
 
-class _Stopwatch:
+class Stopwatch:
+    """Seconds per stage of a night, each stage reported to ``progress`` as it ends."""
+
     def __init__(self, progress: Progress | None) -> None:
         self.stages: list[tuple[str, float]] = []
         self.progress = progress
@@ -96,102 +102,13 @@ class _Stopwatch:
             self.progress(name)
 
 
-def _resolve_prior(config: JobConfig, as_of: dt.date, prior: dt.date | None) -> dt.date:
+def resolve_prior(config: JobConfig, as_of: dt.date, prior: dt.date | None) -> dt.date:
+    """The prior date given, checked to be before the run date; else the latest data folder before it."""
     if prior is None:
         return prior_date(config.data_root, as_of)
     if prior >= as_of:
         raise ConfigError(f"--prior: prior date {prior} must be before the run date {as_of}")
     return prior
-
-
-NO_BOOK = "(no book)"  # the book shown for a rejected position row without one
-UNASSIGNED_DESK = "(unassigned)"  # the desk of a book that books.parquet does not list
-
-
-def _position_books(raw0: RawNight, raw1: RawNight, exceptions: pd.DataFrame) -> pd.DataFrame:
-    """The ledger with a ``book`` column (the book of the position a row is about, else null) and
-    ``position``: one identity per input position (its trade_id; file and row for a keyless row)."""
-    on_positions = exceptions["file"].str.endswith("positions.parquet").to_numpy()
-    keys = exceptions["key"].astype(str)
-    keyless = keys.str.startswith(NULL_KEY).to_numpy() & on_positions
-    book = np.full(len(exceptions), None, dtype=object)
-    with_key = on_positions & ~keyless
-    wanted = keys[with_key].unique()  # only the few trades the ledger names, not every position
-    by_trade = pd.concat([r.tables["positions.parquet"].loc[lambda f: f["trade_id"].isin(wanted), ["trade_id", "book"]]
-                          for r in (raw1, raw0)])
-    by_trade = by_trade.drop_duplicates("trade_id").set_index("trade_id")["book"]
-    book[with_key] = by_trade.reindex(keys[with_key]).to_numpy(dtype=object)
-    for raw in (raw0, raw1):
-        mine = keyless & (exceptions["file"] == raw.path("positions.parquet")).to_numpy()
-        if mine.any():  # the key names the row's number in the file, which is the frame's index label
-            rows = keys[mine].str.slice(len(NULL_KEY)).astype(int).to_numpy()
-            book[mine] = raw.tables["positions.parquet"]["book"].loc[rows].to_numpy(dtype=object)
-    book[on_positions] = pd.Series(book[on_positions], dtype=object).fillna(NO_BOOK).to_numpy()
-    position = np.where(keyless, exceptions["file"] + "#" + keys, keys)
-    return exceptions.assign(book=book, position=np.where(on_positions, position, None))
-
-
-def _rejected_positions(ledger: pd.DataFrame) -> pd.DataFrame:
-    """One row per rejected input position (book, position identity)."""
-    rejected = ledger[(ledger["severity"] == REJECTED) & ledger["position"].notna()]
-    return rejected.drop_duplicates("position")[["book", "position"]]
-
-
-def _conservation(raw0: RawNight, raw1: RawNight, archived: pd.Series,
-                  rejected: pd.DataFrame) -> tuple[int, tuple[str, ...]]:
-    """Positions in (distinct trades over both dates, plus keyless rows) and any unaccounted."""
-    ids = []
-    keyless = 0
-    for raw in (raw0, raw1):
-        tid = raw.tables["positions.parquet"]["trade_id"]
-        ids.append(tid[tid.notna()].astype(str))
-        keyless += int(tid.isna().sum())
-    universe = pd.Index(pd.concat(ids).unique())
-    accounted = pd.Index(archived.astype(str)).union(pd.Index(rejected["position"].astype(str)))
-    missing = universe.difference(accounted)
-    return len(universe) + keyless, tuple(missing[:20].tolist())
-
-
-def _book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.DataFrame,
-                config: JobConfig, as_of: dt.date, prior_as_of: dt.date) -> pd.DataFrame:
-    """One row per book: sums, counts by status, rejected and warning counts, limit state."""
-    amounts = list(PNL_COLUMNS) + list(REVAL_COLUMNS) + list(EXPOSURE_COLUMNS) + list(V2_AMOUNT_COLUMNS)
-    grouped = positions.groupby("book", sort=True)
-    sums = grouped[amounts].sum(min_count=0)
-    for column in REVAL_COLUMNS:  # NULL when the method is off
-        sums[column] = grouped[column].sum(min_count=1)
-    counts = pd.crosstab(positions["book"], positions["status"]).reindex(columns=list(STATUSES), fill_value=0)
-    rejected_books = rejected["book"].value_counts()
-    warn = exceptions[exceptions["severity"] == WARNING]
-    keys = warn["key"].unique()  # a warning touches a book through one of its instruments or trades
-    by_instrument = positions.loc[positions["instrument_id"].isin(keys), ["book", "instrument_id"]]
-    by_trade = positions.loc[positions["trade_id"].isin(keys), ["book", "trade_id"]]
-    touched = pd.concat([by_instrument.rename(columns={"instrument_id": "key"}),
-                         by_trade.rename(columns={"trade_id": "key"})]).drop_duplicates()
-    warnings = touched.merge(warn[["key"]], on="key").groupby("book").size()
-    books = sums.index.union(rejected_books.index)
-    frame = sums.reindex(books, fill_value=0.0)
-    for column in REVAL_COLUMNS:
-        frame[column] = sums[column].reindex(books)
-    frame = frame.reset_index(names="book")
-    counts = counts.reindex(books, fill_value=0)
-    for status in STATUSES:
-        frame[status] = counts[status].to_numpy()
-    frame["positions"] = counts.sum(axis=1).to_numpy()
-    frame["rejected"] = rejected_books.reindex(books, fill_value=0).to_numpy()
-    frame["warnings"] = warnings.reindex(books, fill_value=0).to_numpy()
-    limits = [config.limits_for(b) for b in frame["book"]]
-    states, applied = book_states(frame["pnl_residual"], frame["pnl_actual"],
-                                  [x.residual_abs for x in limits], [x.residual_rel for x in limits],
-                                  [x.relative_floor for x in limits], [x.watch_fraction for x in limits])
-    breaches = (positions["limit_state"] == BREACH).groupby(positions["book"]).sum().reindex(books, fill_value=0)
-    frame["position_breaches"] = breaches.to_numpy()
-    frame["residual_limit"] = applied
-    frame["limit_state"] = np.where((states == "within") & (frame["position_breaches"] > 0), WATCH, states)
-    frame["as_of"], frame["prior_as_of"] = pd.Timestamp(as_of), pd.Timestamp(prior_as_of)
-    frame["desk"] = UNASSIGNED_DESK
-    frame["official_pnl"] = frame["official_break"] = np.nan
-    return frame[[name for name, _ in BOOK_PNL]]
 
 
 def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
@@ -203,8 +120,8 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     ``keep_null_books``): one part of a night split over a cluster (:mod:`attribution.dask_engine`).
     Every other file is read and checked whole. None takes every position.
     """
-    watch = _Stopwatch(progress)
-    prior_as_of = _resolve_prior(config, as_of, prior)
+    watch = Stopwatch(progress)
+    prior_as_of = resolve_prior(config, as_of, prior)
     raw0 = read_night(config.data_root, prior_as_of, books, keep_null_books)
     raw1 = read_night(config.data_root, as_of, books, keep_null_books)
     watch.lap("read")
@@ -229,16 +146,12 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
                               config.smile.dynamics, clock)
     positions = stale_flags(positions, market1.ids[stale].to_numpy())
     watch.lap("explain")
-    limits = [config.limits_for(b) for b in pd.unique(positions["book"])]
-    by_book = dict(zip(pd.unique(positions["book"]), limits, strict=True))
-    position_limit = positions["book"].map({b: x.position_abs for b, x in by_book.items()}).to_numpy(float)
-    fraction = positions["book"].map({b: x.watch_fraction for b, x in by_book.items()}).to_numpy(float)
-    positions["limit_state"] = position_states(positions["pnl_residual"], position_limit, fraction)
-    ledger = _position_books(raw0, raw1, log.frame())
-    rejected = _rejected_positions(ledger)
+    positions["limit_state"] = position_limit_states(positions, config)
+    ledger = position_books(raw0, raw1, log.frame())
+    rejected = rejected_positions(ledger)
     exceptions = ledger.drop(columns="position")
-    books = _book_frame(positions, exceptions, rejected, config, as_of, prior_as_of)
-    positions_in, missing = _conservation(raw0, raw1, positions["trade_id"], rejected)
+    books = book_frame(positions, exceptions, rejected, config, as_of, prior_as_of)
+    positions_in, missing = conservation(raw0, raw1, positions["trade_id"], rejected)
     watch.lap("controls")
     hashes = {raw.path(f): h for raw in (raw0, raw1) for f, h in raw.hashes.items()}
     return PreparedNight(as_of, prior_as_of, positions, books, exceptions, hashes, positions_in, len(rejected),
@@ -293,26 +206,25 @@ def open_archive(config: JobConfig) -> Iterator[ArchiveSession]:
 
 def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
               progress: Progress | None = None, session: ArchiveSession | None = None,
-              client: object | None = None) -> NightOutcome:
+              prepare: Prepare | None = None) -> NightOutcome:
     """Run one night into the archive (and reports); the archive is locked for the whole run.
 
     ``session`` is an archive already held with :func:`open_archive` (a backfill keeps one).
-    ``client``: with ``config.engine == "dask"``, a Dask client already connected (a backfill can
-    keep one, see :func:`attribution.dask_engine.cluster_client`); None connects for this night.
+    ``prepare`` computes the night's tables: :func:`prepare_night` in this process when None. The
+    job's engine is chosen above this function (:func:`attribution.runner.run_night` passes the
+    Dask engine's step for ``engine = "dask"``), so the engine here knows no cluster.
     A run that fails before archiving leaves the archive as it was (not even created).
     """
+    if prepare is None and config.engine != "local":
+        raise ConfigError(f"engine = {config.engine!r}: run the night through attribution.runner.run_night")
     if session is None:
         with open_archive(config) as own:
-            return run_night(config, as_of, prior, progress, own, client)
+            return run_night(config, as_of, prior, progress, own, prepare)
     started, t0 = dt.datetime.now(), time.perf_counter()
-    if config.engine == "dask":
-        from attribution.dask_engine import prepare_night_dask
-        night = prepare_night_dask(config, as_of, prior, progress, client)
-    else:
-        night = prepare_night(config, as_of, prior, progress)
+    night = (prepare or prepare_night)(config, as_of, prior, progress)
     if night.unaccounted:
         raise RuntimeError(f"{as_of}: positions neither archived nor rejected: {', '.join(night.unaccounted)}")
-    watch = _Stopwatch(progress)
+    watch = Stopwatch(progress)
     book_breaches = int((night.books["limit_state"] == BREACH).sum())
     position_breaches = int((night.positions["limit_state"] == BREACH).sum())
     findings = night.rejected_positions > 0 or book_breaches > 0 or position_breaches > 0

@@ -24,8 +24,9 @@ import pytest
 
 from attribution.cli import main
 from attribution.config import JobConfig
-from attribution.engine import prepare_night, run_night
+from attribution.engine import prepare_night
 from attribution.loading import InputFileError, folder_for, read_file, read_night
+from attribution.runner import run_night
 from attribution.synthetic import write_synthetic_night
 from tests.contract_files import table
 from tests.mini_desk import PRIOR, RUN, write_mini_desk

@@ -1,0 +1,120 @@
+"""Book aggregation and the night's conservation: from position rows and the exception ledger to one row per book.
+
+* :func:`position_books` gives each ledger row the book of the position it is about;
+* :func:`rejected_positions` lists each rejected input position once;
+* :func:`conservation` counts the positions in and names any neither archived nor rejected;
+* :func:`position_limit_states` and :func:`book_frame` apply the job's residual limits per position and per book.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+import numpy as np
+import pandas as pd
+
+from attribution.config import JobConfig
+from attribution.contract import NULL_KEY
+from attribution.controls import BREACH, WATCH, book_states, position_states
+from attribution.exceptions_log import REJECTED, WARNING
+from attribution.lifecycle import STATUSES
+from attribution.loading import RawNight
+from attribution.schema import BOOK_PNL, EXPOSURE_COLUMNS, PNL_COLUMNS, REVAL_COLUMNS, V2_AMOUNT_COLUMNS
+
+NO_BOOK = "(no book)"  # the book shown for a rejected position row without one
+UNASSIGNED_DESK = "(unassigned)"  # the desk of a book that books.parquet does not list
+
+
+def position_books(raw0: RawNight, raw1: RawNight, exceptions: pd.DataFrame) -> pd.DataFrame:
+    """The ledger with a ``book`` column (the book of the position a row is about, else null) and
+    ``position``: one identity per input position (its trade_id; file and row for a keyless row)."""
+    on_positions = exceptions["file"].str.endswith("positions.parquet").to_numpy()
+    keys = exceptions["key"].astype(str)
+    keyless = keys.str.startswith(NULL_KEY).to_numpy() & on_positions
+    book = np.full(len(exceptions), None, dtype=object)
+    with_key = on_positions & ~keyless
+    wanted = keys[with_key].unique()  # only the few trades the ledger names, not every position
+    by_trade = pd.concat([r.tables["positions.parquet"].loc[lambda f: f["trade_id"].isin(wanted), ["trade_id", "book"]]
+                          for r in (raw1, raw0)])
+    by_trade = by_trade.drop_duplicates("trade_id").set_index("trade_id")["book"]
+    book[with_key] = by_trade.reindex(keys[with_key]).to_numpy(dtype=object)
+    for raw in (raw0, raw1):
+        mine = keyless & (exceptions["file"] == raw.path("positions.parquet")).to_numpy()
+        if mine.any():  # the key names the row's number in the file, which is the frame's index label
+            rows = keys[mine].str.slice(len(NULL_KEY)).astype(int).to_numpy()
+            book[mine] = raw.tables["positions.parquet"]["book"].loc[rows].to_numpy(dtype=object)
+    book[on_positions] = pd.Series(book[on_positions], dtype=object).fillna(NO_BOOK).to_numpy()
+    position = np.where(keyless, exceptions["file"] + "#" + keys, keys)
+    return exceptions.assign(book=book, position=np.where(on_positions, position, None))
+
+
+def rejected_positions(ledger: pd.DataFrame) -> pd.DataFrame:
+    """One row per rejected input position (book, position identity)."""
+    rejected = ledger[(ledger["severity"] == REJECTED) & ledger["position"].notna()]
+    return rejected.drop_duplicates("position")[["book", "position"]]
+
+
+def conservation(raw0: RawNight, raw1: RawNight, archived: pd.Series,
+                  rejected: pd.DataFrame) -> tuple[int, tuple[str, ...]]:
+    """Positions in (distinct trades over both dates, plus keyless rows) and any unaccounted."""
+    ids = []
+    keyless = 0
+    for raw in (raw0, raw1):
+        tid = raw.tables["positions.parquet"]["trade_id"]
+        ids.append(tid[tid.notna()].astype(str))
+        keyless += int(tid.isna().sum())
+    universe = pd.Index(pd.concat(ids).unique())
+    accounted = pd.Index(archived.astype(str)).union(pd.Index(rejected["position"].astype(str)))
+    missing = universe.difference(accounted)
+    return len(universe) + keyless, tuple(missing[:20].tolist())
+
+
+def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.DataFrame,
+                config: JobConfig, as_of: dt.date, prior_as_of: dt.date) -> pd.DataFrame:
+    """One row per book: sums, counts by status, rejected and warning counts, limit state."""
+    amounts = list(PNL_COLUMNS) + list(REVAL_COLUMNS) + list(EXPOSURE_COLUMNS) + list(V2_AMOUNT_COLUMNS)
+    grouped = positions.groupby("book", sort=True)
+    sums = grouped[amounts].sum(min_count=0)
+    for column in REVAL_COLUMNS:  # NULL when the method is off
+        sums[column] = grouped[column].sum(min_count=1)
+    counts = pd.crosstab(positions["book"], positions["status"]).reindex(columns=list(STATUSES), fill_value=0)
+    rejected_books = rejected["book"].value_counts()
+    warn = exceptions[exceptions["severity"] == WARNING]
+    keys = warn["key"].unique()  # a warning touches a book through one of its instruments or trades
+    by_instrument = positions.loc[positions["instrument_id"].isin(keys), ["book", "instrument_id"]]
+    by_trade = positions.loc[positions["trade_id"].isin(keys), ["book", "trade_id"]]
+    touched = pd.concat([by_instrument.rename(columns={"instrument_id": "key"}),
+                         by_trade.rename(columns={"trade_id": "key"})]).drop_duplicates()
+    warnings = touched.merge(warn[["key"]], on="key").groupby("book").size()
+    books = sums.index.union(rejected_books.index)
+    frame = sums.reindex(books, fill_value=0.0)
+    for column in REVAL_COLUMNS:
+        frame[column] = sums[column].reindex(books)
+    frame = frame.reset_index(names="book")
+    counts = counts.reindex(books, fill_value=0)
+    for status in STATUSES:
+        frame[status] = counts[status].to_numpy()
+    frame["positions"] = counts.sum(axis=1).to_numpy()
+    frame["rejected"] = rejected_books.reindex(books, fill_value=0).to_numpy()
+    frame["warnings"] = warnings.reindex(books, fill_value=0).to_numpy()
+    limits = [config.limits_for(b) for b in frame["book"]]
+    states, applied = book_states(frame["pnl_residual"], frame["pnl_actual"],
+                                  [x.residual_abs for x in limits], [x.residual_rel for x in limits],
+                                  [x.relative_floor for x in limits], [x.watch_fraction for x in limits])
+    breaches = (positions["limit_state"] == BREACH).groupby(positions["book"]).sum().reindex(books, fill_value=0)
+    frame["position_breaches"] = breaches.to_numpy()
+    frame["residual_limit"] = applied
+    frame["limit_state"] = np.where((states == "within") & (frame["position_breaches"] > 0), WATCH, states)
+    frame["as_of"], frame["prior_as_of"] = pd.Timestamp(as_of), pd.Timestamp(prior_as_of)
+    frame["desk"] = UNASSIGNED_DESK
+    frame["official_pnl"] = frame["official_break"] = np.nan
+    return frame[[name for name, _ in BOOK_PNL]]
+
+
+def position_limit_states(positions: pd.DataFrame, config: JobConfig) -> np.ndarray:
+    """Each position's residual limit state under its book's position limit and watch fraction."""
+    limits = [config.limits_for(b) for b in pd.unique(positions["book"])]
+    by_book = dict(zip(pd.unique(positions["book"]), limits, strict=True))
+    position_limit = positions["book"].map({b: x.position_abs for b, x in by_book.items()}).to_numpy(float)
+    fraction = positions["book"].map({b: x.watch_fraction for b, x in by_book.items()}).to_numpy(float)
+    return position_states(positions["pnl_residual"], position_limit, fraction)

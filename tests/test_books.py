@@ -1,0 +1,121 @@
+"""Book aggregation and conservation (attribution.books) on small hand-made frames.
+
+The expected figures are worked out by hand from the rows below: sums, counts and the limit rules
+of README.md, "Residual limits" (the same rules as attribution.controls).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from attribution.books import (
+    NO_BOOK,
+    book_frame,
+    conservation,
+    position_books,
+    position_limit_states,
+    rejected_positions,
+)
+from attribution.config import JobConfig, LimitSettings
+from attribution.contract import NULL_KEY
+from attribution.exceptions_log import REJECTED, WARNING
+from attribution.loading import RawNight
+from attribution.schema import BOOK_PNL, EXPOSURE_COLUMNS, PNL_COLUMNS, REVAL_COLUMNS, V2_AMOUNT_COLUMNS
+
+PRIOR, RUN = dt.date(2026, 3, 5), dt.date(2026, 3, 6)
+
+
+def raw(as_of: dt.date, trade_ids: list[str | None], books: list[str | None]) -> RawNight:
+    """A date's positions file only (the functions here read no other file)."""
+    positions = pd.DataFrame({"trade_id": pd.Series(trade_ids, dtype=object), "book": pd.Series(books, dtype=object)})
+    return RawNight(as_of, Path(f"data/as_of={as_of}"), {"positions.parquet": positions}, {})
+
+
+def ledger(rows: list[tuple[str, str, str]]) -> pd.DataFrame:
+    """Exception rows (file, key, severity) as the exception log frames them."""
+    return pd.DataFrame({"as_of": RUN, "file": [r[0] for r in rows], "key": [r[1] for r in rows],
+                         "rule": "a rule", "detail": "", "severity": [r[2] for r in rows]})
+
+
+def positions(rows: list[dict[str, object]]) -> pd.DataFrame:
+    """Archived position rows: every amount zero and the revaluation shares NULL (method off) unless given."""
+    amounts = (*PNL_COLUMNS, *EXPOSURE_COLUMNS, *V2_AMOUNT_COLUMNS)
+    base = {"instrument_id": "X", "status": "carried", "limit_state": "within", **dict.fromkeys(amounts, 0.0),
+            **dict.fromkeys(REVAL_COLUMNS, np.nan)}
+    return pd.DataFrame([{**base, **r} for r in rows])
+
+
+RAW0 = raw(PRIOR, ["T1", "T2", None], ["alpha", "alpha", "beta"])
+RAW1 = raw(RUN, ["T1", "T3", None], ["alpha", "beta", "gamma"])
+POS0, POS1 = "data/as_of=2026-03-05/positions.parquet", "data/as_of=2026-03-06/positions.parquet"
+
+
+def test_position_books_names_the_book_of_each_row_about_a_position():
+    """A keyed row takes its trade's book (run date first), a keyless row its own row's book, other files none."""
+    out = position_books(RAW0, RAW1, ledger([
+        (POS1, "T3", REJECTED), (POS0, "T2", REJECTED), (POS1, "T9", REJECTED),
+        (POS0, f"{NULL_KEY}2", REJECTED), (POS1, f"{NULL_KEY}2", WARNING),
+        ("data/as_of=2026-03-06/option_marks.parquet", "OPT1", WARNING)]))
+    assert out["book"].tolist()[:5] == ["beta", "alpha", NO_BOOK, "beta", "gamma"]
+    assert out["position"].tolist()[:5] == ["T3", "T2", "T9", f"{POS0}#{NULL_KEY}2", f"{POS1}#{NULL_KEY}2"]
+    assert out[["book", "position"]].iloc[5].isna().all()
+
+
+def test_rejected_positions_counts_each_rejected_position_once():
+    """Two rejections of one trade are one rejected position; warnings and other files are not positions."""
+    out = rejected_positions(position_books(RAW0, RAW1, ledger([
+        (POS1, "T3", REJECTED), (POS1, "T3", REJECTED), (POS1, "T1", WARNING),
+        ("data/as_of=2026-03-06/option_marks.parquet", "OPT1", REJECTED)])))
+    assert out.to_dict("records") == [{"book": "beta", "position": "T3"}]
+
+
+def test_conservation_counts_distinct_trades_and_keyless_rows_and_names_the_missing():
+    """Positions in = distinct trades over both dates + keyless rows; any neither archived nor rejected is named."""
+    rejected = pd.DataFrame({"book": ["beta"], "position": ["T3"]})
+    count, missing = conservation(RAW0, RAW1, pd.Series(["T1"]), rejected)
+    assert count == 3 + 2  # T1, T2, T3 and one keyless row on each date
+    assert missing == ("T2",)
+    assert conservation(RAW0, RAW1, pd.Series(["T1", "T2"]), rejected)[1] == ()
+
+
+def test_position_limit_states_use_each_books_own_limit():
+    """A per-book override changes the position limit of that book only (breach above, watch from the fraction)."""
+    config = JobConfig(limits=LimitSettings(position_abs=100.0, watch_fraction=0.8),
+                       book_limits=(("wide", LimitSettings(position_abs=1_000.0, watch_fraction=0.8)),))
+    frame = pd.DataFrame({"book": ["narrow", "narrow", "narrow", "wide"],
+                          "pnl_residual": [-50.0, 85.0, -101.0, 850.0]})
+    assert position_limit_states(frame, config).tolist() == ["within", "watch", "breach", "watch"]
+
+
+def test_book_frame_sums_counts_and_applies_the_book_limits():
+    """Sums and status counts per book; a book with only rejected rows gets a row; limits and warnings by book."""
+    config = JobConfig(limits=LimitSettings(residual_abs=1_000.0, residual_rel=0.10, relative_floor=1e12,
+                                            position_abs=500.0, watch_fraction=0.8))
+    pos = positions([
+        {"book": "alpha", "trade_id": "T1", "instrument_id": "OPT1", "pnl_actual": 100.0, "pnl_residual": 900.0},
+        {"book": "alpha", "trade_id": "T2", "status": "new", "pnl_actual": 50.0, "pnl_residual": 300.0},
+        {"book": "beta", "trade_id": "T4", "pnl_actual": -20.0, "pnl_residual": 10.0, "limit_state": "breach"},
+    ])
+    exceptions = ledger([("data/as_of=2026-03-06/option_marks.parquet", "OPT1", WARNING)])
+    rejected = pd.DataFrame({"book": ["gamma", "gamma"], "position": ["T7", "T8"]})
+    whole = book_frame(pos, exceptions, rejected, config, RUN, PRIOR)
+    assert list(whole.columns) == [name for name, _ in BOOK_PNL]
+    assert whole["book"].tolist() == ["alpha", "beta", "gamma"]
+    frame = whole.set_index("book")
+    assert frame.loc["alpha", "pnl_actual"] == pytest.approx(150.0)
+    assert frame.loc["alpha", "pnl_residual"] == pytest.approx(1_200.0)
+    assert (frame.loc["alpha", "positions"], frame.loc["alpha", "carried"], frame.loc["alpha", "new"]) == (2, 1, 1)
+    assert frame.loc["alpha", "limit_state"] == "breach"  # |1,200| above the 1,000 absolute limit
+    assert frame.loc["alpha", "warnings"] == 1 and frame.loc["beta", "warnings"] == 0
+    assert frame.loc["beta", "limit_state"] == "watch"  # within its limit, but one position breaches
+    assert frame.loc["beta", "position_breaches"] == 1
+    assert (frame.loc["gamma", "positions"], frame.loc["gamma", "rejected"]) == (0, 2)
+    assert frame.loc["gamma", "limit_state"] == "within"
+    assert frame["residual_limit"].tolist() == [1_000.0] * 3
+    assert np.isnan(frame["reval_spot"]).all()  # no revaluation share given: NULL, not zero
+    assert (frame["as_of"] == pd.Timestamp(RUN)).all() and (frame["prior_as_of"] == pd.Timestamp(PRIOR)).all()
