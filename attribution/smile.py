@@ -55,6 +55,7 @@ BISQUARE_C = 4.685         # Tukey's bisquare tuning constant (95 % efficiency u
 MAD_TO_SIGMA = 1.4826      # median absolute deviation -> standard deviation under normal errors
 SCALE_FLOOR = 0.005        # residual scale floor, vol (half a vol point): a perfect smile is not "all outliers"
 ROBUST_ITERATIONS = 4
+FIT_RANGE = 3.0            # |x| fitted; the night reads a smile flat beyond it (attribution.smile_night)
 PARTS = ("level", "skew", "curvature", "own")
 
 

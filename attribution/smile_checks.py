@@ -4,8 +4,12 @@ Pure numpy, arrays per mark (one element per marked option of the date, ``smile`
 Each check returns the positions (indexes into the arrays) of the marks it flags, with the figures
 for the message; the caller turns them into ledger warnings.
 
-* Off smile: ``|vol - fitted|`` above a distance, on smiles with a quadratic fit
-  (:mod:`attribution.smile`); with exactly three strikes the fit passes through every mark.
+* Off smile: ``|vol - fitted|`` above a distance on a smile with a quadratic fit (:mod:`attribution.smile`),
+  and also that far from the distance of each of its two neighbouring strikes (the next lower and next higher;
+  at either end of the smile, the next two inward), so that a smile the quadratic does not follow everywhere
+  (flat far wings) does not flag every wing mark: a mark is off smile when it stands out from the fit and
+  from its neighbours.
+  With exactly three strikes the fit passes through every mark.
 * Butterfly: along one smile's distinct strikes K1 < K2 < K3 (neighbours), the call price at the
   marked vol must be convex in strike, C(K2) <= l C(K1) + (1 - l) C(K3) with l = (K3 - K2) / (K3 - K1)
   (a long butterfly cannot cost less than nothing; Carr and Madan, "A note on sufficient conditions
@@ -42,9 +46,29 @@ class Findings:
     bound: FloatArray
 
 
-def off_smile(vol: FloatArray, fitted: FloatArray, quadratic: NDArray[np.bool_], distance: float) -> Findings:
-    """Marks whose vol lies more than ``distance`` (decimal vol) from their smile's quadratic fit."""
-    hit = np.flatnonzero(quadratic & (np.abs(vol - fitted) > distance))
+def off_smile(smile: IntArray, strike: FloatArray, vol: FloatArray, fitted: FloatArray,
+              quadratic: NDArray[np.bool_], distance: float) -> Findings:
+    """Marks more than ``distance`` (decimal vol) from their smile's fit and from both neighbours' distance."""
+    residual = vol - fitted
+    order = np.lexsort((strike, smile))
+    s, k = smile[order], strike[order]
+    new_pair = np.ones(s.size, dtype=bool)
+    new_pair[1:] = (s[1:] != s[:-1]) | (k[1:] != k[:-1])
+    pair_sorted = np.cumsum(new_pair) - 1                  # one code per (smile, strike), in strike order
+    pair = np.empty(s.size, dtype=np.intp)
+    pair[order] = pair_sorted
+    n_pairs = int(pair_sorted[-1]) + 1 if s.size else 0
+    mean = np.bincount(pair, residual, n_pairs) / np.maximum(np.bincount(pair, minlength=n_pairs), 1)
+    pair_smile = s[new_pair]
+    start = np.searchsorted(pair_smile, pair_smile, side="left")
+    end = np.searchsorted(pair_smile, pair_smile, side="right") - 1
+    j = np.arange(n_pairs)
+    first, last = j == start, j == end
+    # Neighbours: the next lower and next higher strike; at either end of a smile, the next two inward.
+    r1 = np.clip(np.where(first, j + 1, j - 1), 0, max(n_pairs - 1, 0))
+    r2 = np.clip(np.where(first, j + 2, np.where(last, j - 2, j + 1)), 0, max(n_pairs - 1, 0))
+    apart = np.minimum(np.abs(residual - mean[r1][pair]), np.abs(residual - mean[r2][pair])) > distance
+    hit = np.flatnonzero(quadratic & (np.abs(residual) > distance) & apart)
     return Findings(hit, vol[hit], fitted[hit])
 
 

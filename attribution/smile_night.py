@@ -6,9 +6,11 @@ The edge between the instrument markets (:mod:`attribution.market`) and the pure
 into integer smile codes shared by both dates; everything after that is arrays.
 
 A smile is one underlying and one expiry. Its points on a date are the instruments usable on that
-date with time left and a positive vol. Its coordinate scale (mean vol x sqrt(mean time) of its
-points) is taken from the prior date, or from the run date for a smile the prior date did not have,
-and used on both dates (see :mod:`attribution.smile`).
+date with time left and a positive vol, within :data:`~attribution.smile.FIT_RANGE` standardised
+units of the forward (further out, a solved vol of a near-zero price says little); a mark further
+out reads the smile flat from the edge of that range and is not checked. A smile's coordinate scale
+(mean vol x sqrt(mean time) of its points) is taken from the prior date, or from the run date for a
+smile the prior date did not have, and used on both dates (see :mod:`attribution.smile`).
 """
 
 from __future__ import annotations
@@ -21,7 +23,15 @@ from numpy.typing import NDArray
 
 from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.market import InstrumentMarket
-from attribution.smile import SmileFit, VolParts, fit_smiles, reference_scale, split_vol_move, split_vol_pnl
+from attribution.smile import (
+    FIT_RANGE,
+    SmileFit,
+    VolParts,
+    fit_smiles,
+    reference_scale,
+    split_vol_move,
+    split_vol_pnl,
+)
 from attribution.smile_checks import butterfly, calendar, off_smile
 
 FloatArray = NDArray[np.float64]
@@ -38,9 +48,9 @@ class DateSmiles:
     own vol, skew, curvature and residual are 0: its whole vol move counts as level.
     """
 
-    points: IntArray           # instruments that are points of a fit
+    points: IntArray           # instruments that are points of a fit (within the fitted range)
     smile: IntArray            # per instrument: smile code (-1: none)
-    x: FloatArray              # standardised log-moneyness (0 where not on a smile)
+    x: FloatArray              # standardised log-moneyness, clipped to the fitted range (0 where not on a smile)
     level: FloatArray          # the coefficients of the instrument's smile, gathered per instrument
     skew: FloatArray
     curvature: FloatArray
@@ -79,20 +89,21 @@ def _on_smile(m: InstrumentMarket, vol: FloatArray) -> NDArray[np.bool_]:
 
 def _date(m: InstrumentMarket, vol: FloatArray, code: IntArray, scale: FloatArray, n: int) -> DateSmiles:
     on = _on_smile(m, vol)
-    points = np.flatnonzero(on)
     forward = m.spot * np.exp((m.rate - m.div_yield) * m.tau_years)
     x = np.zeros(len(code))
     with np.errstate(all="ignore"):
-        x[points] = np.log(m.strike[points] / forward[points]) / scale[code[points]]
+        x[on] = np.log(m.strike[on] / forward[on]) / scale[code[on]]
+    on &= np.isfinite(x)
+    points = np.flatnonzero(on & (np.abs(x) <= FIT_RANGE))
     fit = fit_smiles(code[points], x[points], vol[points], m.strike[points], n)
-    smile = np.where(on, code, -1)
     g = np.maximum(code, 0)
+    on &= np.isfinite(fit.level[g])          # a smile with no mark inside the fitted range has no fit
+    x = np.clip(np.where(on, x, 0.0), -FIT_RANGE, FIT_RANGE)   # flat beyond the fitted range
     level = np.where(on, fit.level[g], vol)
     skew = np.where(on, fit.skew[g], 0.0)
     curvature = np.where(on, fit.curvature[g], 0.0)
-    residual = np.zeros(len(code))
-    residual[points] = fit.residual
-    return DateSmiles(points, smile, x, level, skew, curvature, residual, fit)
+    residual = np.where(on, vol - (level + skew * x + curvature * x * x), 0.0)
+    return DateSmiles(points, np.where(on, code, -1), x, level, skew, curvature, residual, fit)
 
 
 def night_smiles(m0: InstrumentMarket, m1: InstrumentMarket, vol0: FloatArray, vol1: FloatArray) -> NightSmiles:
@@ -169,7 +180,8 @@ def check_smiles(smiles: NightSmiles, m1: InstrumentMarket, vol1: FloatArray, of
     ids = m1.ids.to_numpy()[pts]
     name = _name(smiles, g)
     # Off smile on the vols the smiles were fitted to (the variance clock's, when the job weights time).
-    found = off_smile(run.fit.fitted + run.fit.residual, run.fit.fitted, run.fit.quadratic[g], off_smile_vol)
+    found = off_smile(g, m1.strike[pts], run.fit.fitted + run.fit.residual, run.fit.fitted, run.fit.quadratic[g],
+                      off_smile_vol)
     log.add(marks_file, ids[found.index], "off smile",
             [f"implied vol {v:.4f} is {abs(v - f) * 100:.2f} vol points from its fitted smile ({f:.4f}) on {s}"
              for v, f, s in zip(found.observed, found.bound, name[found.index], strict=True)], WARNING)

@@ -17,12 +17,26 @@ def _smile(vol: np.ndarray, tau: float = 0.5):
 
 def test_off_smile_flags_only_marks_beyond_the_distance_on_quadratic_smiles():
     """|vol - fitted| > distance on a quadratic smile is flagged; the same gap on a level-only smile is not."""
-    vol = np.array([0.20, 0.25, 0.21, 0.30])
-    fitted = np.array([0.20, 0.20, 0.20, 0.20])
-    quadratic = np.array([True, True, True, False])
-    found = off_smile(vol, fitted, quadratic, 0.02)
-    assert found.index.tolist() == [1]
+    smile = np.array([0, 0, 0, 0, 0, 1, 1])
+    strike = np.array([90.0, 95.0, 100.0, 105.0, 110.0, 90.0, 110.0])
+    vol = np.array([0.20, 0.20, 0.25, 0.21, 0.20, 0.30, 0.20])
+    fitted = np.full(7, 0.20)
+    quadratic = np.array([True] * 5 + [False] * 2)
+    found = off_smile(smile, strike, vol, fitted, quadratic, 0.02)
+    assert found.index.tolist() == [2]
     assert found.observed[0] == 0.25 and found.bound[0] == 0.20
+
+
+def test_a_wing_the_quadratic_misses_is_not_off_smile_but_a_spike_in_it_is():
+    """Four wing strikes all 3 points above the fit stand out from the fit but not from their neighbours;
+    one of them 3 points higher again stands out from both and is the only mark flagged."""
+    smile = np.zeros(7, dtype=np.intp)
+    strike = np.array([80.0, 90.0, 100.0, 110.0, 120.0, 130.0, 140.0])
+    fitted = np.full(7, 0.20)
+    vol = np.array([0.20, 0.20, 0.20, 0.23, 0.23, 0.23, 0.23])
+    assert off_smile(smile, strike, vol, fitted, np.ones(7, bool), 0.02).index.size == 0
+    vol[5] = 0.26
+    assert off_smile(smile, strike, vol, fitted, np.ones(7, bool), 0.02).index.tolist() == [5]
 
 
 def test_a_flat_or_skewed_smile_has_no_butterfly_arbitrage():
