@@ -124,6 +124,8 @@ class BookPage:
     quality: Quality | None
     exceptions: tuple[ExceptionRow, ...]
     exception_rules: tuple[tuple[str, str, int], ...]
+    vol_parts: tuple[FigureRow, ...] = ()   # by expiry bucket: label, (positions,), VOL_PART_COLUMNS
+    vol_parts_total: FigureRow | None = None
 
 
 

@@ -17,6 +17,12 @@ TERM_COLUMNS: tuple[str, ...] = (
 TOP_POSITIONS = 20
 TOP_UNDERLYINGS = 30  # underlyings listed per book (largest residual first); the rest share one line
 EXCEPTIONS_SHOWN = 50  # rows listed on a book page; the night's exceptions page lists them all
+# Vol P&L of positions held overnight by expiry bucket (time to expiry at the prior date) and by part.
+VOL_BUCKETS: tuple[tuple[float, str], ...] = (
+    (1 / 12, "up to 1 month"), (0.25, "1 to 3 months"), (0.5, "3 to 6 months"), (1.0, "6 months to 1 year"),
+    (2.0, "1 to 2 years"), (float("inf"), "over 2 years"))
+VOL_PART_COLUMNS: tuple[str, ...] = ("pnl_vol", "pnl_vol_level", "pnl_vol_skew", "pnl_vol_curvature",
+                                     "pnl_vol_own", "pnl_smile_delta")
 POSITION_TEXT: tuple[str, ...] = ("trade_id", "instrument_id", "underlying", "status", "flags", "limit_state")
 POSITION_VALUES: tuple[str, ...] = ("quantity", "quantity_run_date", *TERM_COLUMNS)
 
@@ -47,6 +53,7 @@ class NightFrames:
     links: pd.DataFrame
     history: pd.DataFrame
     run: pd.DataFrame
+    vol_parts: pd.DataFrame
 
 
 def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: int) -> NightFrames:
@@ -113,4 +120,20 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
             ORDER BY book, as_of""", [as_of, as_of, max(int(history_nights), 1)]),
         run=_frame(con, f"""SELECT {_columns(RUNS)} FROM runs WHERE as_of = ?
                             ORDER BY finished_at DESC NULLS LAST, started_at DESC LIMIT 1""", [as_of]),
+        vol_parts=_vol_parts(con, as_of),
     )
+
+
+def _vol_parts(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> pd.DataFrame:
+    """Per book and expiry bucket (index into VOL_BUCKETS): positions with a vol on both dates, vol P&L by part."""
+    limits = [b for b, _ in VOL_BUCKETS[:-1]]
+    return _frame(con, """
+        SELECT book, CASE WHEN tau_prior_years <= ? THEN 0 WHEN tau_prior_years <= ? THEN 1
+                          WHEN tau_prior_years <= ? THEN 2 WHEN tau_prior_years <= ? THEN 3
+                          WHEN tau_prior_years <= ? THEN 4 ELSE 5 END AS bucket,
+               count(*) AS positions, sum(pnl_vega + pnl_volga) AS pnl_vol, sum(pnl_vol_level) AS pnl_vol_level,
+               sum(pnl_vol_skew) AS pnl_vol_skew, sum(pnl_vol_curvature) AS pnl_vol_curvature,
+               sum(pnl_vol_own) AS pnl_vol_own, sum(pnl_smile_delta) AS pnl_smile_delta
+        FROM position_pnl
+        WHERE as_of = ? AND tau_prior_years IS NOT NULL AND vol_prior IS NOT NULL AND vol_run IS NOT NULL
+        GROUP BY ALL ORDER BY book, bucket""", [*limits, as_of])

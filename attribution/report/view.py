@@ -24,7 +24,15 @@ from attribution.report.pages import (
     State,
     file_name_for,
 )
-from attribution.report.queries import EXPOSURE_COLUMNS, POSITION_TEXT, POSITION_VALUES, TERM_COLUMNS, NightFrames
+from attribution.report.queries import (
+    EXPOSURE_COLUMNS,
+    POSITION_TEXT,
+    POSITION_VALUES,
+    TERM_COLUMNS,
+    VOL_BUCKETS,
+    VOL_PART_COLUMNS,
+    NightFrames,
+)
 from attribution.schema import BOOK_PNL, TAYLOR_TERMS
 from attribution.timebasis import TimeBasis
 
@@ -111,7 +119,10 @@ def _methods(f: Mapping[str, float | None]) -> tuple[tuple[MethodRow, ...], Meth
     def add(*keys: str) -> float | None:
         parts = [f[k] for k in keys]
         return None if any(p is None for p in parts) else sum(parts)  # type: ignore[misc]
-    spec = (("spot", "Spot", "delta + gamma", add("pnl_delta", "pnl_gamma"), f["reval_spot"]),
+    smile = bool(f.get("pnl_smile_delta"))  # sticky moneyness: the spot-implied vol move is spot P&L
+    spot_terms = ("pnl_delta", "pnl_gamma", "pnl_smile_delta") if smile else ("pnl_delta", "pnl_gamma")
+    spec = (("spot", "Spot", "delta + gamma + smile delta" if smile else "delta + gamma", add(*spot_terms),
+             f["reval_spot"]),
             ("vol", "Volatility", "vega + volga", add("pnl_vega", "pnl_volga"), f["reval_vol"]),
             ("cross", "Cross spot-vol", "vanna", f["pnl_vanna"], 0.0 if f["reval_spot"] is not None else None),
             ("time", "Time", "theta", f["pnl_theta"], f["reval_time"]),
@@ -131,6 +142,8 @@ def _waterfall(f: Mapping[str, float | None], unpriced: int, currency: str) -> c
     labels = {"delta": "Delta", "gamma": "Gamma", "vega": "Vega", "volga": "Volga", "vanna": "Vanna",
               "theta": "Theta", "rates": "Rates", "dividend": "Dividend"}
     steps = [(f"pnl_{t}", labels[t], f[f"pnl_{t}"], "") for t in TAYLOR_TERMS]
+    if f.get("pnl_smile_delta"):  # sticky moneyness: a ninth explained line
+        steps.insert(1, ("pnl_smile_delta", "Smile delta", f["pnl_smile_delta"], "spot-implied vol move"))
     steps += [("pnl_new_trade", "New trades", f["pnl_new_trade"], f"{unpriced} unpriced, left out" if unpriced else ""),
               ("pnl_expiry", "Expiries", f["pnl_expiry"], ""),
               ("pnl_amendment", "Amendments", f["pnl_amendment"], ""),
@@ -186,6 +199,21 @@ def _rule_counts(rows: tuple[ExceptionRow, ...]) -> tuple[tuple[str, str, int], 
     return tuple((severity, rule, n) for (severity, rule), n in sorted(counts.items()))
 
 
+def _vol_parts(frame: pd.DataFrame) -> dict[str, tuple[tuple[FigureRow, ...], FigureRow]]:
+    """Per book: the vol P&L rows by expiry bucket and their total row."""
+    if not len(frame):
+        return {}
+    frame = frame.assign(label=[VOL_BUCKETS[int(b)][1] for b in frame["bucket"]])
+    rows = _figure_rows(frame, "label", ("positions",), VOL_PART_COLUMNS)
+    totals = frame.groupby("book", sort=True)[["positions", *VOL_PART_COLUMNS]].sum(min_count=1)
+    out = {}
+    for book, book_rows in rows.items():
+        t = totals.loc[book]
+        out[book] = (book_rows, FigureRow("All expiries", (str(int(t["positions"])),),
+                                          tuple(_number(t[c]) for c in VOL_PART_COLUMNS)))
+    return out
+
+
 _COUNT_COLUMNS = ("positions", "carried", "closed", "new", "new_unpriced", "expired", "settled", "rejected", "warnings",
                   "position_breaches")
 
@@ -199,6 +227,7 @@ def book_pages(frames: NightFrames, config: JobConfig) -> list[BookPage]:
     exposures = _figure_rows(frames.underlyings, "underlying", ("positions",), EXPOSURE_COLUMNS)
     positions = _figure_rows(frames.positions, "trade_id", POSITION_TEXT[1:], POSITION_VALUES)
     unpriced = _figure_rows(frames.unpriced, "trade_id", POSITION_TEXT[1:], POSITION_VALUES)
+    vol_parts = _vol_parts(frames.vol_parts)
     numeric = [c for c, kind in BOOK_PNL if kind == "DOUBLE"]
     pages = []
     for record in frames.books.to_dict("records"):
@@ -225,7 +254,8 @@ def book_pages(frames: NightFrames, config: JobConfig) -> list[BookPage]:
             underlyings=underlyings.get(name, ()), exposures=exposures.get(name, ()),
             positions=positions.get(name, ()), unpriced=unpriced.get(name, ()),
             history_lines=lines, history_residual=cumulative, quality=q, exceptions=exceptions.get(name, ()),
-            exception_rules=_rule_counts(exceptions.get(name, ()))))
+            exception_rules=_rule_counts(exceptions.get(name, ())),
+            vol_parts=vol_parts.get(name, ((), None))[0], vol_parts_total=vol_parts.get(name, ((), None))[1]))
     pages.sort(key=_attention)
     return pages
 
