@@ -406,9 +406,18 @@ def american_price_unchecked(s: FloatArray, k: FloatArray, t: FloatArray, v: Flo
                              q: FloatArray, cp: FloatArray, *, scheme: Scheme = STANDARD,
                              threads: int | None = None) -> FloatArray:
     """Price of validated flat float arrays (no two-boundary case); ``cp`` is +1 call / -1 put."""
+    return american_price_and_exercised_unchecked(s, k, t, v, r, q, cp, scheme=scheme, threads=threads)[0]
+
+
+def american_price_and_exercised_unchecked(
+    s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray, q: FloatArray, cp: FloatArray, *,
+    scheme: Scheme = STANDARD, threads: int | None = None,
+) -> tuple[FloatArray, NDArray[np.bool_]]:
+    """Price and, per option, whether spot sits in the exercise region (time and vol left, exercised early)."""
     frame = put_frame(s, k, r, q, cp)
     limit, european, early = regimes(t, v, frame.rr)
     out = np.empty(s.size)
+    exercised = np.zeros(s.size, dtype=bool)
     if european.any():
         i = np.flatnonzero(european)
         out[i] = price_unchecked(s[i], k[i], t[i], v[i], r[i], q[i], cp[i])
@@ -421,7 +430,8 @@ def american_price_unchecked(s: FloatArray, k: FloatArray, t: FloatArray, v: Flo
         bounds = solve_put_boundaries(T, vol, rr, qq, scheme, threads=threads)
         values = put_values(bounds, state, frame.x[i], derivatives=False, threads=threads)
         out[i] = in_option_units(values, frame.scale[i], s[i], k[i], t[i], v[i], r[i], q[i], cp[i])
-    return out
+        exercised[i] = values.exercised
+    return out, exercised
 
 
 def in_option_units(values: PutValues, scale: FloatArray, s: FloatArray, k: FloatArray, t: FloatArray,

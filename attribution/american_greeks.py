@@ -24,7 +24,7 @@ vol, e.g. a put in its exercise region) the vol is refused with :data:`NOT_IDENT
 from __future__ import annotations
 
 import numpy as np
-from numpy.typing import ArrayLike
+from numpy.typing import ArrayLike, NDArray
 
 from attribution.american import (
     STANDARD,
@@ -65,9 +65,21 @@ def american_greeks_unchecked(s: FloatArray, k: FloatArray, t: FloatArray, v: Fl
                               q: FloatArray, cp: FloatArray, *, scheme: Scheme = STANDARD,
                               threads: int | None = None) -> Greeks:
     """Price and greeks of validated flat float arrays; ``cp`` is +1 call / -1 put."""
+    return american_greeks_and_exercised_unchecked(s, k, t, v, r, q, cp, scheme=scheme, threads=threads)[0]
+
+
+def american_greeks_and_exercised_unchecked(
+    s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray, q: FloatArray, cp: FloatArray, *,
+    scheme: Scheme = STANDARD, threads: int | None = None, bumps: bool = True,
+) -> tuple[Greeks, NDArray[np.bool_]]:
+    """Greeks and, per option, whether spot sits in the exercise region (time and vol left, exercised early).
+
+    ``bumps=False``: only price, delta, gamma and theta of the American rows (one boundary, no bumps).
+    """
     frame = put_frame(s, k, r, q, cp)
     limit, european, early = regimes(t, v, frame.rr)
     out = tuple(np.zeros(s.size) for _ in Greeks.__slots__)
+    exercised = np.zeros(s.size, dtype=bool)
     parts: list[tuple[np.ndarray, Greeks]] = []
     if european.any():
         i = np.flatnonzero(european)
@@ -77,11 +89,13 @@ def american_greeks_unchecked(s: FloatArray, k: FloatArray, t: FloatArray, v: Fl
         parts.append((i, _limit_greeks(s[i], k[i], t[i], r[i], q[i], cp[i])))
     if early.any():
         i = np.flatnonzero(early)
-        parts.append((i, _early_greeks(s[i], k[i], t[i], v[i], r[i], q[i], cp[i], scheme, threads)))
+        early_greeks, exercised[i] = _early_greeks(s[i], k[i], t[i], v[i], r[i], q[i], cp[i], scheme, threads,
+                                                   bumps)
+        parts.append((i, early_greeks))
     for i, g in parts:
         for target, name in zip(out, Greeks.__slots__, strict=True):
             target[i] = getattr(g, name)
-    return Greeks(*out)
+    return Greeks(*out), exercised
 
 
 def _limit_greeks(s: FloatArray, k: FloatArray, t: FloatArray, r: FloatArray, q: FloatArray,
@@ -116,21 +130,31 @@ def _to_option(p: PutValues, x: FloatArray, scale: FloatArray, call: np.ndarray)
 
 
 def _early_greeks(s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray, q: FloatArray,
-                  cp: FloatArray, scheme: Scheme, threads: int | None) -> Greeks:
-    """Greeks of options exercised early (put of the symmetry with rate > 0): 7 boundaries per distinct state."""
+                  cp: FloatArray, scheme: Scheme, threads: int | None,
+                  bumps: bool = True) -> tuple[Greeks, NDArray[np.bool_]]:
+    """Greeks of options exercised early (put of the symmetry with rate > 0): 7 boundaries per distinct state.
+
+    ``bumps=False``: price, delta, gamma and theta only, on one boundary (vega and the rest left 0).
+    """
     f = put_frame(s, k, r, q, cp)
     call = cp > 0
     (T, vol, rr, qq), state = distinct_states(t, v, f.rr, f.qq)
     m = T.size
     hv = np.minimum(VOL_BUMP, 0.5 * vol)
     hr_down = np.minimum(RATE_BUMP, 0.5 * rr)
-    bump_vol = np.concatenate([vol, vol + hv, vol - hv, vol, vol, vol, vol])
-    bump_r = np.concatenate([rr, rr, rr, rr + RATE_BUMP, rr - hr_down, rr, rr])
-    bump_q = np.concatenate([qq, qq, qq, qq, qq, qq + RATE_BUMP, qq - RATE_BUMP])
-    bounds = solve_put_boundaries(np.tile(T, 7), bump_vol, bump_r, bump_q, scheme, threads=threads)
+    copies = 7 if bumps else 1
+    bump_vol = np.concatenate([vol, vol + hv, vol - hv, vol, vol, vol, vol][:copies])
+    bump_r = np.concatenate([rr, rr, rr, rr + RATE_BUMP, rr - hr_down, rr, rr][:copies])
+    bump_q = np.concatenate([qq, qq, qq, qq, qq, qq + RATE_BUMP, qq - RATE_BUMP][:copies])
+    bounds = solve_put_boundaries(np.tile(T, copies), bump_vol, bump_r, bump_q, scheme, threads=threads)
     base = put_values(bounds, state, f.x, threads=threads)
-    price, delta, gamma = _to_option(base, f.x, f.scale, call)
+    _, delta, gamma = _to_option(base, f.x, f.scale, call)
     price = in_option_units(base, f.scale, s, k, t, v, r, q, cp)  # intrinsic and European floors in option units
+    held = ~base.exercised  # the exercise region: intrinsic, whatever vol, rates or time
+    theta = (r * price - (r - q) * s * delta - 0.5 * v * v * s * s * gamma) * held
+    zero = np.zeros_like(price)
+    if not bumps:
+        return Greeks(price, delta, gamma, zero, theta, zero, zero, zero, zero), base.exercised
     up, down = (put_values(bounds, state + j * m, f.x, threads=threads) for j in (1, 2))
     h_v = hv[state]
     _, delta_up, _ = _to_option(up, f.x, f.scale, call)
@@ -144,10 +168,8 @@ def _early_greeks(s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r:
     d_rr = f.scale * (p_r_up - p_r_down) / (RATE_BUMP + hr_down[state])
     d_qq = f.scale * (p_q_up - p_q_down) / (2.0 * RATE_BUMP)
     rho, dividend_rho = np.where(call, d_qq, d_rr), np.where(call, d_rr, d_qq)
-    theta = r * price - (r - q) * s * delta - 0.5 * v * v * s * s * gamma
-    held = ~base.exercised  # the exercise region: intrinsic, whatever vol, rates or time
-    return Greeks(price, delta, gamma, vega * held, theta * held, rho * held, dividend_rho * held,
-                  vanna * held, volga * held)
+    return Greeks(price, delta, gamma, vega * held, theta, rho * held, dividend_rho * held,
+                  vanna * held, volga * held), base.exercised
 
 
 def american_implied_vol(price: ArrayLike, spot: ArrayLike, strike: ArrayLike, tau_years: ArrayLike,
@@ -173,8 +195,9 @@ def american_implied_vol(price: ArrayLike, spot: ArrayLike, strike: ArrayLike, t
         vol[i] = _secant(p[i], s[i], k[i], t[i], r[i], q[i], cp[i], _start(p[i], s[i], k[i], t[i], r[i], q[i],
                                                                            cp[i], scheme), scheme)
         hv = np.minimum(VOL_BUMP, 0.5 * vol[i])
-        vega = (american_price_unchecked(s[i], k[i], t[i], vol[i] + hv, r[i], q[i], cp[i], scheme=scheme)
-                - american_price_unchecked(s[i], k[i], t[i], vol[i] - hv, r[i], q[i], cp[i], scheme=scheme)) / (2 * hv)
+        at = american_price_unchecked(s[i], k[i], t[i], vol[i], r[i], q[i], cp[i], scheme=scheme)
+        below = american_price_unchecked(s[i], k[i], t[i], vol[i] - hv, r[i], q[i], cp[i], scheme=scheme)
+        vega = (at - below) / hv  # from below: a mark at intrinsic fits every vol up to the one found
         flat = ~(vega >= VEGA_FLOOR_PER_STRIKE * k[i])
         vol[i[flat]] = np.nan
         reason[i[flat]] = NOT_IDENTIFIABLE_RULE

@@ -15,6 +15,7 @@ from typing import Any
 
 TIME_BASES = ("ACT/365F", "BUS/252")
 ENGINES = ("local", "dask")
+AMERICAN_PRECISIONS = ("standard", "precise")
 SMILE_DYNAMICS = ("sticky strike", "sticky moneyness")
 
 
@@ -96,6 +97,7 @@ class JobConfig:
     engine: str = "local"
     scheduler: str | None = None
     revaluation: bool = True
+    american_precision: str = "standard"
     write_reports: bool = True
     history_nights: int = 60
     smile: SmileSettings = field(default_factory=SmileSettings)
@@ -227,6 +229,7 @@ def load_job(path: Path) -> JobConfig:
         engine=str(job.get("engine", "local")),
         scheduler=job.get("scheduler"),
         revaluation=bool(job.get("revaluation", True)),
+        american_precision=str(job.get("american_precision", "standard")),
         write_reports=bool(job.get("write_reports", True)),
         history_nights=int(job.get("history_nights", 60)),
         smile=smile,
@@ -239,6 +242,9 @@ def validate(config: JobConfig, source: str = "options") -> JobConfig:
     """Refuse settings the job cannot honour, naming the key."""
     if config.time_basis not in TIME_BASES:
         raise ConfigError(f"{source}: time basis {config.time_basis!r} is not one of {', '.join(TIME_BASES)}")
+    if config.american_precision not in AMERICAN_PRECISIONS:
+        raise ConfigError(f"{source}: american_precision {config.american_precision!r} is not one of "
+                          f"{', '.join(AMERICAN_PRECISIONS)}")
     if config.engine not in ENGINES:
         raise ConfigError(f"{source}: engine {config.engine!r} is not one of {', '.join(ENGINES)}")
     if len(config.reporting_currency) != 3 or not config.reporting_currency.isalpha():

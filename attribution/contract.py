@@ -131,7 +131,8 @@ def _instruments(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
     rules.unique("instrument_id")
     rules.reject(~frame["option_type"].isin(["call", "put"]), "option_type must be call or put",
                  shown(frame, "option_type"))
-    rules.reject(frame["exercise"] != "european", "only european exercise is supported", shown(frame, "exercise"))
+    rules.reject(~frame["exercise"].isin(["european", "american"]), "exercise must be european or american",
+                 shown(frame, "exercise"))
     rules.finite("strike", "multiplier")
     rules.positive("strike", "multiplier")
     currency = frame["currency"].astype(str)

@@ -130,8 +130,10 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     clean0 = clean_night(raw0, log, config.checks, config.reporting_currency)
     clean1 = clean_night(raw1, log, config.checks, config.reporting_currency)
     watch.lap("validate")
-    market0 = build_market(clean0, instrument_terms(clean0, clean1), basis, config.checks, log)
-    market1 = build_market(clean1, instrument_terms(clean1, clean0), basis, config.checks, log)
+    market0 = build_market(clean0, instrument_terms(clean0, clean1), basis, config.checks, log,
+                           config.american_precision)
+    market1 = build_market(clean1, instrument_terms(clean1, clean0), basis, config.checks, log,
+                           config.american_precision)
     stale = flag_stale_marks(market0, market1, config.checks.stale_spot_move,
                              raw1.path("option_marks.parquet"), log)
     legs = match_legs(clean0, clean1, market0, market1, log)

@@ -13,25 +13,27 @@ state (S0, vol0, tau0, r0, q0), the run-date state (S1, ...), the greeks at the 
     theta    = units theta_per_year dt_years
     rates    = units rho dr
     dividend = units dividend_rho dq
+
+American options (the ``american`` mask) use the American price and greeks. One whose state crosses
+its exercise boundary overnight (in the exercise region on one date, not on the other) has no Taylor
+expansion across the kink: its terms are the order-independent revaluation shares instead (spot in
+delta, vol in vega, time in theta, rates, dividend; gamma, volga and vanna 0), so that its
+explained P&L is the model P&L and its residual is the mark gap alone; ``crossed_boundary`` marks it.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 
-from attribution.pricing import FloatArray, Greeks, greeks_unchecked, price_unchecked
+import numpy as np
+from numpy.typing import NDArray
+
+from attribution.american import STANDARD, Scheme
+from attribution.pricing import FloatArray, Greeks
 from attribution.schema import TAYLOR_TERMS
+from attribution.valuation import MarketState, revaluation_shares, value, value_and_exercised, value_and_greeks
 
-
-@dataclass(frozen=True, slots=True)
-class MarketState:
-    """The five risk factors of each position on one date (decimals, years)."""
-
-    spot: FloatArray
-    vol: FloatArray
-    tau_years: FloatArray
-    rate: FloatArray
-    div_yield: FloatArray
+__all__ = ["Explain", "MarketState", "explain_overnight", "model_value"]
 
 
 @dataclass(frozen=True, slots=True)
@@ -53,21 +55,32 @@ class Explain:
     higher_order: FloatArray
     mark_gap: FloatArray
     greeks_prior: Greeks
+    crossed_boundary: NDArray[np.bool_]
 
     def terms(self) -> dict[str, FloatArray]:
         """The eight Taylor terms by name, in the contract's order."""
         return {name: getattr(self, name) for name in TAYLOR_TERMS}
 
 
-def model_value(strike: FloatArray, cp: FloatArray, state: MarketState) -> FloatArray:
-    """Model price per unit of underlying at ``state``."""
-    return price_unchecked(state.spot, strike, state.tau_years, state.vol, state.rate, state.div_yield, cp)
+def model_value(strike: FloatArray, cp: FloatArray, state: MarketState, american: NDArray[np.bool_] | None = None,
+                scheme: Scheme = STANDARD) -> FloatArray:
+    """Model price per unit of underlying at ``state`` (American rows by the American method)."""
+    return value(strike, cp, state, american, scheme=scheme)
 
 
 def explain_overnight(strike: FloatArray, cp: FloatArray, units: FloatArray, state0: MarketState,
-                      state1: MarketState, price0: FloatArray, price1: FloatArray, dt_years: FloatArray) -> Explain:
-    """Taylor split and full-revaluation split of each position's overnight P&L."""
-    g = greeks_unchecked(state0.spot, strike, state0.tau_years, state0.vol, state0.rate, state0.div_yield, cp)
+                      state1: MarketState, price0: FloatArray, price1: FloatArray, dt_years: FloatArray,
+                      american: NDArray[np.bool_] | None = None, *, scheme: Scheme = STANDARD,
+                      group: NDArray[np.intp] | None = None,
+                      prior: tuple[Greeks, NDArray[np.bool_]] | None = None) -> Explain:
+    """Taylor split and full-revaluation split of each position's overnight P&L.
+
+    ``group``: rows with equal values share both states (e.g. one instrument), so American prices and
+    greeks are computed once per group. ``prior``: the greeks and exercise flags at ``state0`` when the
+    caller has them already (as :func:`attribution.valuation.value_and_greeks` returns them).
+    """
+    g, exercised0 = prior or value_and_greeks(strike, cp, state0, american, scheme=scheme, group=group)
+    value1, exercised1 = value_and_exercised(strike, cp, state1, american, scheme=scheme, group=group)
     d_spot = state1.spot - state0.spot
     d_vol = state1.vol - state0.vol
     d_rate = state1.rate - state0.rate
@@ -80,8 +93,16 @@ def explain_overnight(strike: FloatArray, cp: FloatArray, units: FloatArray, sta
     theta = units * g.theta_per_year * dt_years
     rates = units * g.rho * d_rate
     dividend = units * g.dividend_rho * d_div
+    model = units * (value1 - g.price)
+    crossed = (exercised0 != exercised1) & (state1.tau_years > 0)
+    if crossed.any():
+        shares = revaluation_shares(strike, cp, state0, state1, crossed, scheme=scheme, group=group)
+        for term, share in ((delta, shares.spot), (vega, shares.vol), (theta, shares.time), (rates, shares.rates),
+                            (dividend, shares.dividend)):
+            term[crossed] = units[crossed] * share[crossed]
+        for term in (gamma, volga, vanna):
+            term[crossed] = 0.0
     explained = delta + gamma + vega + volga + vanna + theta + rates + dividend
     actual = units * (price1 - price0)
-    model = units * (model_value(strike, cp, state1) - g.price)
     return Explain(actual, delta, gamma, vega, volga, vanna, theta, rates, dividend, explained,
-                   actual - explained, model, model - explained, actual - model, g)
+                   actual - explained, model, model - explained, actual - model, g, crossed)

@@ -15,6 +15,8 @@ import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 
+from attribution.american import PRECISE, STANDARD, TWO_BOUNDARY_RULE, Scheme, american_price_unchecked
+from attribution.american_greeks import NOT_IDENTIFIABLE_RULE, american_implied_vol
 from attribution.config import CheckSettings
 from attribution.contract import CleanNight
 from attribution.curves import zero_rates
@@ -61,6 +63,8 @@ class InstrumentMarket:
     reason: NDArray[np.object_]
     listed: NDArray[np.bool_]
     terms_rejected: NDArray[np.bool_]
+    american: NDArray[np.bool_]  # exercise = american: priced by attribution.american
+    american_scheme: Scheme = STANDARD  # the job's American precision
 
     def locate(self, instrument_ids: NDArray[np.object_]) -> NDArray[np.intp]:
         """Index of each id in this market, -1 where absent.
@@ -93,9 +97,15 @@ def _first_reason(reason: NDArray[np.object_], bad: NDArray[np.bool_], text: str
     reason[fill] = text[fill] if isinstance(text, np.ndarray) else text
 
 
+AMERICAN_SCHEMES = {"standard": STANDARD, "precise": PRECISE}
+
+
 def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, checks: CheckSettings,
-                 log: ExceptionLog) -> InstrumentMarket:
-    """The state of every instrument in ``terms`` on ``night``'s date, with its usability."""
+                 log: ExceptionLog, american_precision: str = "standard") -> InstrumentMarket:
+    """The state of every instrument in ``terms`` on ``night``'s date, with its usability.
+
+    ``american_precision``: ``standard`` or ``precise``, the scheme of the American method.
+    """
     as_of = night.raw.as_of
     own_ids = night.instruments.index
     n = len(terms)
@@ -104,6 +114,8 @@ def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, check
     currency = terms["currency"].to_numpy(dtype=object)
     option_type = terms["option_type"].to_numpy(dtype=object)
     cp = np.where(option_type == "call", 1.0, -1.0)
+    american = terms["exercise"].to_numpy(dtype=object) == "american"
+    scheme = AMERICAN_SCHEMES[american_precision]
     strike = terms["strike"].to_numpy(dtype=float)
     expiry = terms["expiry"].to_numpy(dtype="datetime64[D]")
     tau = basis.year_fraction(np.datetime64(as_of, "D"), expiry) if n else np.zeros(0)
@@ -139,20 +151,28 @@ def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, check
     marked_vol = take(night.marks["implied_vol"].to_numpy(float), m_idx, np.nan)
     _first_reason(reason, ~marked, f"no usable option mark on {as_of}")
 
+    put_rate, put_yield = np.where(cp > 0, div_yield, rate), np.where(cp > 0, rate, div_yield)  # put-call symmetry
+    two = american & (put_yield < put_rate) & (put_rate < 0)
+    log.add(night.raw.path("instruments.parquet"), ids[two & (reason == "")].to_numpy(), TWO_BOUNDARY_RULE,
+            "rates and yield of this date give an American option two exercise boundaries")
+    _first_reason(reason, two, TWO_BOUNDARY_RULE)
     vol, vol_solved, vol_mismatch = _vols(night, ids, reason, price, marked_vol, spot, strike, tau, rate,
-                                          div_yield, cp, checks, log)
+                                          div_yield, cp, checks, log, american, scheme)
     usable = reason == ""
     return InstrumentMarket(as_of, ids, underlying, currency, option_type, cp, strike,
                             terms["multiplier"].to_numpy(dtype=float), expiry, tau, spot, div_yield, rate, price,
                             vol, marked_vol, vol_solved, vol_mismatch, spot_known, usable, reason, listed,
-                            terms_rejected)
+                            terms_rejected, american, scheme)
 
 
 def _vols(night: CleanNight, ids: pd.Index, reason: NDArray[np.object_], price: FloatArray, marked_vol: FloatArray,
           spot: FloatArray, strike: FloatArray, tau: FloatArray, rate: FloatArray, div_yield: FloatArray,
-          cp: FloatArray, checks: CheckSettings, log: ExceptionLog,
+          cp: FloatArray, checks: CheckSettings, log: ExceptionLog, american: NDArray[np.bool_], scheme: Scheme,
           ) -> tuple[FloatArray, NDArray[np.bool_], NDArray[np.bool_]]:
-    """Check marks against the no-arbitrage bounds, solve missing vols, flag vols that disagree with price."""
+    """Check marks against the no-arbitrage bounds, solve missing vols, flag vols that disagree with price.
+
+    American marks: bounds ``[intrinsic, S (call) or K (put)]``; vols solved and checked with the American model.
+    """
     marks_file = night.raw.path("option_marks.parquet")
     candidates = reason == ""
     vol = marked_vol.copy()
@@ -160,6 +180,8 @@ def _vols(night: CleanNight, ids: pd.Index, reason: NDArray[np.object_], price: 
         disc_q, disc_r = np.exp(-div_yield * tau), np.exp(-rate * tau)
         lower = np.maximum(cp * (spot * disc_q - strike * disc_r), 0.0)
         upper = np.where(cp > 0, spot * disc_q, strike * disc_r)
+        lower = np.where(american, np.maximum(lower, cp * (spot - strike)), lower)
+        upper = np.where(american, np.where(cp > 0, spot, strike), upper)
     slack = 1e-9 * np.maximum(1.0, np.abs(price))
     outside = candidates & ((price < lower - slack) | (price > upper + slack))
     detail = pd.Series([f"price {p:.6g} outside [{lo:.6g}, {hi:.6g}]" for p, lo, hi in
@@ -175,10 +197,18 @@ def _vols(night: CleanNight, ids: pd.Index, reason: NDArray[np.object_], price: 
     if solve.any():
         i = np.flatnonzero(solve)
         result = implied_vol(price[i], spot[i], strike[i], tau[i], rate[i], div_yield[i], cp[i] > 0)
+        a = american[i]
+        if a.any():
+            am = american_implied_vol(price[i[a]], spot[i[a]], strike[i[a]], tau[i[a]], rate[i[a]], div_yield[i[a]],
+                                      cp[i[a]] > 0, scheme=scheme)
+            result.vol[a], result.reason[a] = am.vol, am.reason
         vol[i] = result.vol
         failed = result.reason != ""
-        log.add(marks_file, ids[i[failed]].to_numpy(), "implied vol cannot be solved from price",
-                result.reason[failed])
+        flat = result.reason == NOT_IDENTIFIABLE_RULE
+        log.add(marks_file, ids[i[failed & ~flat]].to_numpy(), "implied vol cannot be solved from price",
+                result.reason[failed & ~flat])
+        log.add(marks_file, ids[i[flat]].to_numpy(), "american vol not identifiable",
+                "the American price hardly moves with vol here (vega below the floor): give implied_vol")
         reason[i[failed]] = "implied vol cannot be solved: " + result.reason[failed]
         vol_solved[i[~failed]] = True
 
@@ -187,6 +217,10 @@ def _vols(night: CleanNight, ids: pd.Index, reason: NDArray[np.object_], price: 
     if check.any():
         i = np.flatnonzero(check)
         model = price_unchecked(spot[i], strike[i], tau[i], vol[i], rate[i], div_yield[i], cp[i])
+        a = american[i]
+        if a.any():
+            model[a] = american_price_unchecked(spot[i[a]], strike[i[a]], tau[i[a]], vol[i[a]], rate[i[a]],
+                                                div_yield[i[a]], cp[i[a]], scheme=scheme)
         scale = np.maximum(price[i], 0.01 * spot[i])
         off = np.abs(model - price[i]) > checks.iv_price_tolerance * scale
         vol_mismatch[i[off]] = True

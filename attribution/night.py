@@ -15,8 +15,7 @@ from attribution.contract import CleanNight
 from attribution.explain import Explain, MarketState, explain_overnight
 from attribution.lifecycle import CARRIED, CLOSED, EXPIRIES, NEW, NEW_UNPRICED, Legs, trade_date_flags
 from attribution.market import InstrumentMarket, take
-from attribution.pricing import greeks_unchecked
-from attribution.revaluation import shapley_shares
+from attribution.pricing import Greeks
 from attribution.schema import (
     EXPOSURE_COLUMNS,
     PNL_COLUMNS,
@@ -27,6 +26,7 @@ from attribution.schema import (
 )
 from attribution.smile_night import NightSmiles, vol_columns
 from attribution.timebasis import DAYS_PER_YEAR_BUSINESS, DAYS_PER_YEAR_CALENDAR, TimeBasis
+from attribution.valuation import revaluation_shares, value_and_greeks
 from attribution.vol_time import VarianceClock, clock_terms, decay_per_year
 
 FloatArray = NDArray[np.float64]
@@ -91,6 +91,8 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     trade_price1 = take(run.positions["trade_price"].to_numpy(float), legs.row1, np.nan)
     mult = market1.multiplier[i1]
     strike, cp = market1.strike[i1], market1.cp[i1]
+    american, scheme = market1.american[i1], market1.american_scheme
+    crossed = np.zeros(n, dtype=bool)
     units0 = qty0 * mult * legs.fx_rate
     units1 = qty1 * mult * legs.fx_rate
     dt_years = float(basis.year_fraction(prior_as_of, as_of)[0])
@@ -103,26 +105,35 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     price0 = np.where(has_prior, market0.price[i0], np.nan)
     price1 = np.where(expired, np.nan, market1.price[i1])
 
+    # Greeks at the prior state of everything held on the prior date, once per instrument (American: 7 boundaries).
+    p = np.flatnonzero(has_prior)
+    g0, exercised0 = value_and_greeks(strike[p], cp[p], _state(market0, i0[p]), american[p], scheme=scheme,
+                                      group=i0[p])
+    in_p = np.full(n, -1, dtype=np.intp)
+    in_p[p] = np.arange(p.size)
+
     k = np.flatnonzero(overnight)
     if k.size:
         s0, s1 = _state(market0, i0[k]), _state(market1, i1[k])
-        ex = explain_overnight(strike[k], cp[k], units0[k], s0, s1, price0[k], price1[k], np.full(k.size, dt_years))
+        pair = i0[k] * (len(market1.ids) + 1) + i1[k]  # one instrument on both dates: priced once (American)
+        kp = in_p[k]
+        prior_greeks = (Greeks(*(getattr(g0, name)[kp] for name in Greeks.__slots__)), exercised0[kp])
+        ex = explain_overnight(strike[k], cp[k], units0[k], s0, s1, price0[k], price1[k], np.full(k.size, dt_years),
+                               american[k], scheme=scheme, group=pair, prior=prior_greeks)
+        crossed[k] = ex.crossed_boundary
         for name in ("actual", *TAYLOR_TERMS, "explained", "residual", "model", "higher_order", "mark_gap"):
             cols[f"pnl_{name}"][k] = getattr(ex, name)
         for name, values in _vol_and_time(ex, units0[k], s0, s1, dt_years, i0[k], i1[k], smiles, smile_dynamics,
                                           clock).items():
             cols[name][k] = values
         if revaluation:
-            shares = shapley_shares(strike[k], cp[k], s0.spot, s0.vol, s0.tau_years, s0.rate, s0.div_yield,
-                                    s1.spot, s1.vol, s1.tau_years, s1.rate, s1.div_yield)
+            shares = revaluation_shares(strike[k], cp[k], s0, s1, american[k], scheme=scheme, group=pair)
             for factor in ("spot", "vol", "time", "rates", "dividend"):
                 cols[f"reval_{factor}"][k] = units0[k] * getattr(shares, factor)
 
     # Exposures at the prior state, for everything held on the prior date.
-    p = np.flatnonzero(has_prior)
     if p.size:
         s0 = _state(market0, i0[p])
-        g0 = greeks_unchecked(s0.spot, strike[p], s0.tau_years, s0.vol, s0.rate, s0.div_yield, cp[p])
         cols["delta_units"][p] = units0[p] / legs.fx_rate[p] * g0.delta
         cols["delta_cash"][p] = units0[p] * g0.delta * s0.spot
         cols["gamma_cash_1pct"][p] = units0[p] * g0.gamma * s0.spot * s0.spot / 100.0
@@ -136,7 +147,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         next_day = basis.next_business_day(as_of)
         step_years = float(basis.year_fraction(as_of, next_day)[0])
         s1 = _state(market1, i1[h])
-        g1 = greeks_unchecked(s1.spot, strike[h], s1.tau_years, s1.vol, s1.rate, s1.div_yield, cp[h])
+        g1, _ = value_and_greeks(strike[h], cp[h], s1, american[h], scheme=scheme, group=i1[h], full=False)
         cols["theta_next_business_day"][h] = units1[h] * g1.theta_per_year * step_years
 
     # Lifecycle lines.
@@ -156,6 +167,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         take(run.positions["book"].to_numpy(dtype=object), legs.row1, None) != legs.book)
     flags = _flags([
         (amended, "amended"),
+        (crossed, "crossed_exercise_boundary"),
         (amended & np.isnan(trade_price1), "amended_at_mark"),
         (status == NEW_UNPRICED, "unpriced"),
         (late, "booked_late"),
@@ -182,7 +194,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         "price_prior": price0, "price_run": price1,
         **cols,
         "limit_state": "within",
-        "kind": "option", "exercise": "european", "strategy": None,
+        "kind": "option", "exercise": np.where(american, "american", "european"), "strategy": None,
     })
     return frame[[name for name, _ in POSITION_PNL]]
 

@@ -79,7 +79,7 @@ ROW_CASES = [
     ("instruments", 2, "option_type", "Call", "option_type must be call or put"),
     ("instruments", 2, "option_type", "straddle", "option_type must be call or put"),
     ("instruments", 2, "option_type", None, "option_type is null"),
-    ("instruments", 2, "exercise", "american", "only european exercise is supported"),
+    ("instruments", 2, "exercise", "bermudan", "exercise must be european or american"),
     ("instruments", 2, "exercise", None, "exercise is null"),
     ("instruments", 2, "strike", 0.0, "strike must be > 0"),
     ("instruments", 2, "strike", -50.0, "strike must be > 0"),
