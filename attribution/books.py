@@ -70,8 +70,12 @@ def conservation(raw0: RawNight, raw1: RawNight, archived: pd.Series,
 
 
 def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.DataFrame,
-                config: JobConfig, as_of: dt.date, prior_as_of: dt.date) -> pd.DataFrame:
-    """One row per book: sums, counts by status, rejected and warning counts, limit state."""
+                config: JobConfig, as_of: dt.date, prior_as_of: dt.date,
+                desks: pd.Series | None = None) -> pd.DataFrame:
+    """One row per book: sums, counts by status, rejected and warning counts, limit state, desk.
+
+    ``desks``: the run date's desk per book (books.parquet); a book it does not list is ``(unassigned)``.
+    """
     amounts = list(PNL_COLUMNS) + list(REVAL_COLUMNS) + list(EXPOSURE_COLUMNS) + list(V2_AMOUNT_COLUMNS)
     grouped = positions.groupby("book", sort=True)
     sums = grouped[amounts].sum(min_count=0)
@@ -106,7 +110,7 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
     frame["residual_limit"] = applied
     frame["limit_state"] = np.where((states == "within") & (frame["position_breaches"] > 0), WATCH, states)
     frame["as_of"], frame["prior_as_of"] = pd.Timestamp(as_of), pd.Timestamp(prior_as_of)
-    frame["desk"] = UNASSIGNED_DESK
+    frame["desk"] = frame["book"].map(desks if desks is not None else {}).astype(object).fillna(UNASSIGNED_DESK)
     frame["official_pnl"] = frame["official_break"] = np.nan
     return frame[[name for name, _ in BOOK_PNL]]
 

@@ -32,6 +32,7 @@ class CleanNight:
     curves: pd.DataFrame           # currency, tenor_years, zero_rate
     fx: pd.Series                  # rate per currency (reporting currency per unit)
     rejected_trades: pd.DataFrame  # trade_id, book, rule of positions rejected by a row rule
+    desks: pd.Series               # desk per book (books.parquet); empty without the file
 
 
 Detail = str | Callable[[np.ndarray], object]
@@ -213,6 +214,18 @@ def _fx(raw: RawNight, log: ExceptionLog, reporting_currency: str) -> pd.Series:
     return rates
 
 
+def _desks(raw: RawNight, log: ExceptionLog) -> pd.Series:
+    """books.parquet: one desk per book. A rejected row leaves its book on the ``(unassigned)`` desk."""
+    file = "books.parquet"
+    frame = raw.tables.get(file)
+    if frame is None:
+        return pd.Series(dtype=object)
+    rules = _Rules(log, raw.path(file), frame, "book")
+    rules.required("book", "desk")
+    rules.unique("book")
+    return rules.clean().set_index("book")["desk"].astype(object)
+
+
 def clean_night(raw: RawNight, log: ExceptionLog, checks: CheckSettings, reporting_currency: str) -> CleanNight:
     """Apply every single-file row rule of the contract to one date's files."""
     positions, rejected = _positions(raw, log, checks)
@@ -225,4 +238,5 @@ def clean_night(raw: RawNight, log: ExceptionLog, checks: CheckSettings, reporti
         curves=_curves(raw, log, checks),
         fx=_fx(raw, log, reporting_currency),
         rejected_trades=rejected,
+        desks=_desks(raw, log),
     )

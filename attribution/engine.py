@@ -152,7 +152,7 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     ledger = position_books(raw0, raw1, log.frame())
     rejected = rejected_positions(ledger)
     exceptions = ledger.drop(columns="position")
-    books = book_frame(positions, exceptions, rejected, config, as_of, prior_as_of)
+    books = book_frame(positions, exceptions, rejected, config, as_of, prior_as_of, clean1.desks)
     positions_in, missing = conservation(raw0, raw1, positions["trade_id"], rejected)
     watch.lap("controls")
     hashes = {raw.path(f): h for raw in (raw0, raw1) for f, h in raw.hashes.items()}

@@ -36,13 +36,20 @@ FILE_COLUMNS: dict[str, tuple[tuple[str, str], ...]] = {
     "underlying_marks.parquet": (("underlying", STRING), ("spot", FLOAT), ("dividend_yield", FLOAT)),
     "rate_curves.parquet": (("currency", STRING), ("tenor_years", FLOAT), ("zero_rate", FLOAT)),
     "fx_rates.parquet": (("currency", STRING), ("rate", FLOAT)),
+    "books.parquet": (("book", STRING), ("desk", STRING)),
 }
-OPTIONAL_FILES = frozenset({"fx_rates.parquet"})
+OPTIONAL_FILES = frozenset({"fx_rates.parquet", "books.parquet"})
+# Columns a file may carry or leave out (version 2 of the contract): read and type-checked when
+# present, all null when absent, so later steps always see them.
+OPTIONAL_COLUMNS: dict[str, tuple[tuple[str, str], ...]] = {
+    "positions.parquet": (("strategy", STRING),),
+}
 
 # The contract's Arrow schema of each file, keyed by kind ("positions", ...), for writers of input data.
 _ARROW_TYPES = {STRING: pa.string(), FLOAT: pa.float64(), DATE: pa.date32()}
 CONTRACT_SCHEMAS: dict[str, pa.Schema] = {
-    file.removesuffix(".parquet"): pa.schema([(name, _ARROW_TYPES[kind]) for name, kind in columns])
+    file.removesuffix(".parquet"): pa.schema([(name, _ARROW_TYPES[kind])
+                                              for name, kind in columns + OPTIONAL_COLUMNS.get(file, ())])
     for file, columns in FILE_COLUMNS.items()
 }
 
@@ -121,6 +128,10 @@ def _to_frame(path: Path, table: pa.Table, columns: tuple[tuple[str, str], ...],
     data: dict[str, pd.Series] = {}
     rows = pd.RangeIndex(table.num_rows) if index is None else index
     for name, kind in columns:
+        if name not in table.column_names:  # an optional column the file leaves out
+            data[name] = pd.Series(None if kind == STRING else np.nan, index=rows,
+                                   dtype=object if kind == STRING else float)
+            continue
         try:
             values = _cast(table.column(name), kind).to_numpy(zero_copy_only=False)
         except pa.ArrowException as exc:
@@ -171,6 +182,11 @@ def read_file(folder: Path, file: str, books: frozenset[str] | None = None,
         arrow_type = table.schema.field(name).type
         if not _kind_ok(kind, arrow_type):
             raise InputFileError(f"{path}: column '{name}' has type {arrow_type}, the contract wants {kind}")
+    for name, kind in OPTIONAL_COLUMNS.get(file, ()):
+        if name in table.column_names and not _kind_ok(kind, table.schema.field(name).type):
+            raise InputFileError(f"{path}: column '{name}' has type {table.schema.field(name).type}, "
+                                 f"the contract wants {kind}")
+    columns = columns + OPTIONAL_COLUMNS.get(file, ())
     digest = hashlib.sha256(raw).hexdigest()
     if books is None or file != "positions.parquet":
         return _to_frame(path, table, columns), digest

@@ -194,9 +194,17 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         "price_prior": price0, "price_run": price1,
         **cols,
         "limit_state": "within",
-        "kind": "option", "exercise": np.where(american, "american", "european"), "strategy": None,
+        "kind": "option", "exercise": np.where(american, "american", "european"),
+        "strategy": _strategy(legs, prior, run),
     })
     return frame[[name for name, _ in POSITION_PNL]]
+
+
+def _strategy(legs: Legs, prior: CleanNight, run: CleanNight) -> NDArray[np.object_]:
+    """The desk's strategy label of each trade: the run date's row, else the prior date's (closed, expired)."""
+    run_label = take(run.positions["strategy"].to_numpy(dtype=object), legs.row1, None)
+    prior_label = take(prior.positions["strategy"].to_numpy(dtype=object), legs.row0, None)
+    return np.where(pd.isna(run_label), prior_label, run_label)
 
 
 def stale_flags(frame: pd.DataFrame, stale_instruments: NDArray[np.object_]) -> pd.DataFrame:

@@ -25,6 +25,7 @@ COLUMNS: dict[str, tuple[tuple[str, str], ...]] = {
     "underlying_marks": (("underlying", "string"), ("spot", "float64"), ("dividend_yield", "float64")),
     "rate_curves": (("currency", "string"), ("tenor_years", "float64"), ("zero_rate", "float64")),
     "fx_rates": (("currency", "string"), ("rate", "float64")),
+    "books": (("book", "string"), ("desk", "string")),
 }
 
 

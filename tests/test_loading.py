@@ -18,6 +18,7 @@ import pytest
 
 from attribution.loading import (
     FILE_COLUMNS,
+    OPTIONAL_COLUMNS,
     InputFileError,
     available_dates,
     folder_for,
@@ -129,6 +130,8 @@ def test_missing_column_is_fatal(desk: Path, kind: str, column: str) -> None:
     """A required column that is absent stops the run naming the file and the column."""
     name = kind.removesuffix(".parquet")
     path = _file(desk, RUN, name)
+    if not path.exists():  # an optional file the mini desk does not write
+        pq.write_table(table(name, []), path)
     pq.write_table(pq.read_table(path).drop_columns([column]), path)
     with pytest.raises(InputFileError, match=f"{kind}: required column '{column}' is missing"):
         read_night(desk, RUN)
@@ -140,7 +143,7 @@ def test_extra_column_is_accepted_and_ignored(desk: Path) -> None:
     t = pq.read_table(path)
     pq.write_table(t.append_column("desk_note", pa.array(["x"] * t.num_rows)), path)
     frame = read_night(desk, RUN).tables["positions.parquet"]
-    assert list(frame.columns) == [c for c, _ in FILE_COLUMNS["positions.parquet"]]
+    assert list(frame.columns) == [c for c, _ in FILE_COLUMNS["positions.parquet"] + OPTIONAL_COLUMNS["positions.parquet"]]
     assert len(frame) == t.num_rows
 
 
@@ -197,7 +200,8 @@ def test_empty_file_with_the_contract_schema_reads_as_zero_rows(desk: Path) -> N
     """A file with zero rows and the contract's columns is a valid, empty table."""
     pq.write_table(table("positions", []), _file(desk, RUN, "positions"))
     frame = read_night(desk, RUN).tables["positions.parquet"]
-    assert len(frame) == 0 and list(frame.columns) == [c for c, _ in FILE_COLUMNS["positions.parquet"]]
+    assert len(frame) == 0
+    assert list(frame.columns) == [c for c, _ in FILE_COLUMNS["positions.parquet"] + OPTIONAL_COLUMNS["positions.parquet"]]
 
 
 def test_prior_date_is_the_latest_folder_strictly_before(tmp_path: Path) -> None:
@@ -226,3 +230,32 @@ def test_mini_desk_reads_with_contract_dtypes(desk: Path) -> None:
         assert positions["quantity"].dtype == np.float64
         assert np.issubdtype(positions["trade_date"].dtype, np.datetime64)
         assert len(positions) == 6
+
+
+def test_strategy_column_is_optional(desk: Path) -> None:
+    """positions.parquet without `strategy` reads it as all null; with it, the labels come through (contract v2)."""
+    frame = read_night(desk, RUN).tables["positions.parquet"]
+    assert frame["strategy"].isna().all()
+    path = _file(desk, RUN, "positions")
+    t = pq.read_table(path)
+    labels = ["straddle"] + [None] * (t.num_rows - 1)
+    pq.write_table(t.append_column("strategy", pa.array(labels, type=pa.string())), path)
+    frame = read_night(desk, RUN).tables["positions.parquet"]
+    assert frame["strategy"].tolist()[0] == "straddle" and frame["strategy"].iloc[1:].isna().all()
+
+
+def test_strategy_of_the_wrong_type_is_fatal(desk: Path) -> None:
+    """A `strategy` column that is not text stops the run naming the file and the column."""
+    path = _file(desk, RUN, "positions")
+    t = pq.read_table(path)
+    pq.write_table(t.append_column("strategy", pa.array([1.0] * t.num_rows)), path)
+    with pytest.raises(InputFileError, match="positions.parquet: column 'strategy' has type double"):
+        read_night(desk, RUN)
+
+
+def test_books_file_is_optional(desk: Path) -> None:
+    """Without books.parquet the night has no books table; with it, its rows are read (contract v2)."""
+    assert "books.parquet" not in read_night(desk, RUN).tables
+    pq.write_table(table("books", [{"book": "B1", "desk": "Index vol"}]), _file(desk, RUN, "books"))
+    frame = read_night(desk, RUN).tables["books.parquet"]
+    assert frame.to_dict("records") == [{"book": "B1", "desk": "Index vol"}]
