@@ -136,13 +136,3 @@ def archived_dates(con: duckdb.DuckDBPyConnection) -> list[dt.date]:
     rows = con.execute("SELECT DISTINCT as_of FROM runs ORDER BY as_of").fetchall()
     return [r[0] for r in rows]
 
-
-def book_history(con: duckdb.DuckDBPyConnection, book: str, start: dt.date | None = None,
-                 end: dt.date | None = None) -> pd.DataFrame:
-    """A book's nightly series: totals, every term, residual, revaluation shares and states."""
-    return con.execute(
-        "SELECT b.*, q.zone, q.spearman, q.ks FROM book_pnl b "
-        "LEFT JOIN book_quality q ON q.as_of = b.as_of AND q.book = b.book "
-        "WHERE b.book = ? AND b.as_of >= coalesce(?, DATE '0001-01-01') "
-        "AND b.as_of <= coalesce(?, DATE '9999-12-31') ORDER BY b.as_of",
-        [book, start, end]).df()

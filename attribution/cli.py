@@ -1,4 +1,4 @@
-"""Command line: ``attribution run | backfill | check | demo | history | quality | bench``.
+"""Command line: ``attribution run | backfill | check | demo | history | quality | export | bench``.
 
 Exit codes: 0 success; 1 failure (unusable input file, archive busy, unexpected error; the
 archive is left as it was); 2 usage error; 3 finished, with rejected rows or limit breaches.
@@ -85,18 +85,31 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=7, help="random seed of the demo market (default 7)")
     _verbosity(p)
 
-    p = sub.add_parser("history", help="a book's nightly series from the archive")
-    p.add_argument("--book", required=True, help="book name, exactly as archived")
+    p = sub.add_parser("history", help="a book's or a desk's nightly series, with month- and year-to-date sums")
+    who = p.add_mutually_exclusive_group()
+    who.add_argument("--book", help="book name, exactly as archived")
+    who.add_argument("--desk", help="desk name, exactly as archived (book_pnl.desk): the sum of its books")
     p.add_argument("--from", dest="start", type=_date, help="first date")
     p.add_argument("--to", dest="end", type=_date, help="last date")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    p.add_argument("--schema", action="store_true", help="print the JSON Schema of --json's output and exit")
     p.add_argument("--job", type=Path, help="job file naming the archive")
     p.add_argument("--archive", type=Path, help="DuckDB archive file")
     _verbosity(p)
 
     p = sub.add_parser("quality", help="the attribution-quality test per book over the archived history")
-    p.add_argument("--as-of", type=_date, required=True, help="last night of the window")
+    p.add_argument("--as-of", type=_date, help="last night of the window (required unless --schema)")
     p.add_argument("--json", action="store_true", help="print a JSON array, one object per book")
+    p.add_argument("--schema", action="store_true", help="print the JSON Schema of --json's output and exit")
+    p.add_argument("--job", type=Path, help="job file naming the archive")
+    p.add_argument("--archive", type=Path, help="DuckDB archive file")
+    _verbosity(p)
+
+    p = sub.add_parser("export", help="write one archived night's rows (position_pnl, book_pnl, input_exceptions) "
+                                      "as CSV or Parquet files")
+    p.add_argument("--as-of", type=_date, required=True, help="the night, YYYY-MM-DD")
+    p.add_argument("--format", choices=("csv", "parquet"), required=True, help="file format")
+    p.add_argument("--out", type=Path, required=True, help="folder to write <table>.<format> into (created)")
     p.add_argument("--job", type=Path, help="job file naming the archive")
     p.add_argument("--archive", type=Path, help="DuckDB archive file")
     _verbosity(p)
@@ -180,26 +193,67 @@ def _archive_of(args: argparse.Namespace) -> Path:
     return load_job(args.job).archive_path if args.job else JobConfig().archive_path
 
 
+HISTORY_SHOWN = ("pnl_total", "pnl_actual", "pnl_delta", "pnl_gamma", "pnl_vega", "pnl_volga", "pnl_vanna",
+                 "pnl_theta", "pnl_rates", "pnl_dividend", "pnl_explained", "pnl_residual")
+TO_DATE_SHOWN = ("pnl_total", "pnl_actual", "pnl_delta", "pnl_gamma", "pnl_vega", "pnl_volga", "pnl_vanna",
+                 "pnl_theta", "pnl_rates", "pnl_dividend", "pnl_explained", "pnl_residual", "pnl_higher_order",
+                 "pnl_mark_gap", "pnl_new_trade", "pnl_expiry", "pnl_amendment", "pnl_fx_translation", "pnl_cash",
+                 "official_break")
+
+
+def _history_text(frame: object, who: str) -> str:
+    """The nightly table, then the last night's figures beside their month- and year-to-date sums."""
+    states = ["limit_state", "zone"] if "zone" in frame.columns else ["book_breaches"]  # type: ignore[attr-defined]
+    nightly = frame[["as_of", *HISTORY_SHOWN, "pnl_total_mtd", "pnl_total_ytd", *states]]  # type: ignore[index]
+    money = _money
+    last = frame.iloc[-1]  # type: ignore[attr-defined]
+    lines = [nightly.to_string(index=False, float_format=money), "",
+             f"{who}, night of {_clean(last['as_of'])}: the night, month to date and year to date",
+             f"{'':<20}{'night':>16}{'month to date':>16}{'year to date':>16}"]
+    for column in TO_DATE_SHOWN:
+        cells = [last[column], last[f"{column}_mtd"], last[f"{column}_ytd"]]
+        lines.append(f"{column:<20}" + "".join(f"{'-' if _clean(v) is None else money(v):>16}" for v in cells))
+    lines.append(f"{'limit breaches':<20}{'':>16}{int(last['breaches_mtd']):>16}{int(last['breaches_ytd']):>16}")
+    return "\n".join(lines)
+
+
+def json_schema(command: str) -> str:
+    """The JSON Schema (draft 2020-12) of ``attribution COMMAND --json``'s output, as shipped in the package."""
+    return (Path(__file__).parent / "schemas" / f"{command}.schema.json").read_text(encoding="utf-8")
+
+
 def _cmd_history(args: argparse.Namespace) -> int:
-    from attribution.archive import book_history, connect
+    if args.schema:
+        print(json_schema("history"), end="")
+        return EXIT_OK
+    if args.book is None and args.desk is None:
+        raise ConfigError("history: name a book (--book) or a desk (--desk)")
+    from attribution.archive import connect
+    from attribution.periods import book_series, desk_series
     con = connect(_archive_of(args), read_only=True)
     try:
-        frame = book_history(con, args.book, args.start, args.end)
+        if args.desk is not None:
+            frame, who = desk_series(con, args.desk, args.start, args.end), f"desk {args.desk!r}"
+        else:
+            frame, who = book_series(con, args.book, args.start, args.end), f"book {args.book!r}"
     finally:
         con.close()
     if frame.empty:
-        print(f"no archived nights for book {args.book!r}", file=sys.stderr)
+        print(printable(f"no archived nights for {who}"), file=sys.stderr)
         return EXIT_FAILED
     if args.json:
         print(json.dumps(records(frame), indent=1))
         return EXIT_OK
-    shown = ["as_of", "pnl_total", "pnl_actual", "pnl_delta", "pnl_gamma", "pnl_vega", "pnl_volga", "pnl_vanna",
-             "pnl_theta", "pnl_rates", "pnl_dividend", "pnl_explained", "pnl_residual", "limit_state", "zone"]
-    print(frame[shown].to_string(index=False, float_format=lambda x: f"{x:,.0f}"))
+    print(_history_text(frame, printable(who)))
     return EXIT_OK
 
 
 def _cmd_quality(args: argparse.Namespace) -> int:
+    if args.schema:
+        print(json_schema("quality"), end="")
+        return EXIT_OK
+    if args.as_of is None:
+        raise ConfigError("quality: --as-of is required")
     from attribution.archive import connect, quality_series
     from attribution.quality import quality_frame
     con = connect(_archive_of(args), read_only=True)
@@ -217,6 +271,19 @@ def _cmd_quality(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cmd_export(args: argparse.Namespace) -> int:
+    from attribution.archive import connect
+    from attribution.export import export_night
+    con = connect(_archive_of(args), read_only=True)
+    try:
+        written = export_night(con, args.as_of, args.format, args.out)
+    finally:
+        con.close()
+    for table, rows in written.items():
+        print(f"{args.out / f'{table}.{args.format}'}  {rows:,} row(s)")
+    return EXIT_OK
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
     from attribution.demo.run import run_demo
     return run_demo(args.into, days=args.days, seed=args.seed, echo=print)
@@ -229,7 +296,7 @@ def _cmd_bench(args: argparse.Namespace) -> int:
 
 
 COMMANDS = {"run": _cmd_run, "backfill": _cmd_backfill, "check": _cmd_check, "demo": _cmd_demo,
-            "history": _cmd_history, "quality": _cmd_quality, "bench": _cmd_bench}
+            "history": _cmd_history, "quality": _cmd_quality, "export": _cmd_export, "bench": _cmd_bench}
 
 
 def main(argv: Sequence[str] | None = None) -> int:

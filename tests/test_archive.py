@@ -266,6 +266,8 @@ ALLOWED_IN_SQL = {
     "report/queries.py": {"_columns(BOOK_PNL)", "_columns(BOOK_QUALITY)", "_columns(RUNS)", "terms", "row_cols",
                   "underlying_cols", "rest_terms",  # column lists of TERM_COLUMNS and EXPOSURE_COLUMNS
                   "exception_cols"},
+    "periods.py": {"_COUNT_SUMS", "_AMOUNT_SUMS", "_BOOK_RUNNING", "_DESK_RUNNING", "_PERIOD_SUMS", "_BOOK_NIGHTS",
+                   "_DESK_NIGHTS", "_RANGE", "key", "window", "c", "suffix", "since", "period"},
 }
 
 

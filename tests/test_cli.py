@@ -6,6 +6,7 @@ import json
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 from scipy import stats
 
@@ -13,7 +14,7 @@ from attribution.cli import build_parser, config_from, main, printable
 from attribution.errors import EXIT_FAILED, EXIT_OK, EXIT_USAGE
 from tests.mini_desk import RUN, write_mini_desk
 
-COMMANDS = ("run", "backfill", "check", "demo", "history", "quality", "bench")
+COMMANDS = ("run", "backfill", "check", "demo", "history", "quality", "export", "bench")
 
 
 @pytest.mark.parametrize("command", COMMANDS)
@@ -118,3 +119,127 @@ def test_check_prints_the_ledger_and_writes_nothing(tmp_path, capsys):
     out = capsys.readouterr().out
     assert code == 3 and "no FX rate" in out and "key=T3" in out
     assert not (tmp_path / "a.duckdb").exists()
+
+
+@pytest.fixture()
+def two_months(tmp_path):
+    """An archive with 70 nights of two books on two desks across a month and a year end (rows put in directly)."""
+    from attribution.archive import connect
+    archive = tmp_path / "h.duckdb"
+    con = connect(archive)
+    rng = np.random.default_rng(11)
+    dates = [str(d) for d in np.datetime64("2025-11-20") + np.arange(70)]
+    rows = []
+    for book, desk in (("B1", "Rates"), ("B2", "Rates")):
+        for d in dates:
+            rows.append((d, book, desk, *rng.normal(0, 1000, 3).tolist(), rng.choice(["within", "breach"])))
+    frame = pd.DataFrame(rows, columns=["as_of", "book", "desk", "pnl_total", "pnl_theta",
+                                                          "pnl_residual", "limit_state"])
+    con.execute("INSERT INTO book_pnl (as_of, book, desk, pnl_total, pnl_theta, pnl_residual, limit_state) "
+                "SELECT as_of::DATE, book, desk, pnl_total, pnl_theta, pnl_residual, limit_state FROM frame")
+    con.close()
+    frame["as_of"] = frame["as_of"].astype("datetime64[s]")
+    return archive, frame
+
+
+def _expected_to_date(frame, column):
+    """Running sums per calendar month and year, by pandas (independent of the SQL windows)."""
+    month = frame["as_of"].dt.to_period("M")
+    year = frame["as_of"].dt.year
+    return frame.groupby(month)[column].cumsum(), frame.groupby(year)[column].cumsum()
+
+
+def test_history_json_adds_month_and_year_to_date_of_every_term(two_months, capsys):
+    """``history --json`` carries pnl_total_mtd / _ytd (contract v2) and the same for every term, summed over
+    every archived night of the month and year up to the night, even when --from starts later."""
+    archive, frame = two_months
+    b1 = frame[frame["book"] == "B1"].reset_index(drop=True)
+    capsys.readouterr()
+    assert main(["history", "--book", "B1", "--archive", str(archive), "--json", "--from", "2025-12-10"]) == EXIT_OK
+    rows = json.loads(capsys.readouterr().out)
+    shown = b1[b1["as_of"] >= "2025-12-10"].index
+    assert [r["as_of"] for r in rows] == [d.date().isoformat() for d in b1.loc[shown, "as_of"]]
+    for column in ("pnl_total", "pnl_theta", "pnl_residual"):
+        mtd, ytd = _expected_to_date(b1, column)
+        np.testing.assert_allclose([r[f"{column}_mtd"] for r in rows], mtd[shown], rtol=1e-12)
+        np.testing.assert_allclose([r[f"{column}_ytd"] for r in rows], ytd[shown], rtol=1e-12)
+    breach = (b1["limit_state"] == "breach").astype(int)
+    assert [r["breaches_ytd"] for r in rows] == breach.groupby(b1["as_of"].dt.year).cumsum()[shown].tolist()
+    assert rows[-1]["official_break_mtd"] is None  # no official P&L archived: no break, not zero
+
+
+def test_history_of_a_desk_sums_its_books(two_months, capsys):
+    """``history --desk`` sums the desk's books each night and accumulates them like a book."""
+    archive, frame = two_months
+    desk = frame.groupby("as_of", as_index=False)[["pnl_total"]].sum()
+    capsys.readouterr()
+    assert main(["history", "--desk", "Rates", "--archive", str(archive), "--json"]) == EXIT_OK
+    rows = json.loads(capsys.readouterr().out)
+    assert rows[0]["books"] == 2 and rows[0]["desk"] == "Rates"
+    np.testing.assert_allclose([r["pnl_total"] for r in rows], desk["pnl_total"], rtol=1e-12)
+    np.testing.assert_allclose([r["pnl_total_ytd"] for r in rows], _expected_to_date(desk, "pnl_total")[1], rtol=1e-12)
+
+
+def test_history_table_ends_with_the_night_month_and_year_to_date(two_months, capsys):
+    """The text output closes with the last night's terms beside their month- and year-to-date sums."""
+    archive, frame = two_months
+    capsys.readouterr()
+    assert main(["history", "--book", "B2", "--archive", str(archive)]) == EXIT_OK
+    out = capsys.readouterr().out
+    b2 = frame[frame["book"] == "B2"].reset_index(drop=True)
+    mtd, ytd = _expected_to_date(b2, "pnl_total")
+    line = next(x for x in out.splitlines() if x.startswith("pnl_total "))
+    assert line.split()[1:] == [f"{b2['pnl_total'].iloc[-1]:,.0f}", f"{mtd.iloc[-1]:,.0f}", f"{ytd.iloc[-1]:,.0f}"]
+    assert "month to date" in out and "limit breaches" in out
+
+
+def _validate(command: str, capsys, document: object) -> None:
+    """``document`` is valid under the schema ``attribution COMMAND --schema`` prints (jsonschema, draft 2020-12)."""
+    from jsonschema import Draft202012Validator
+    capsys.readouterr()
+    assert main([command, "--schema"]) == EXIT_OK
+    schema = json.loads(capsys.readouterr().out)
+    Draft202012Validator.check_schema(schema)
+    errors = [e.message for e in Draft202012Validator(schema).iter_errors(document)]
+    assert errors == []
+
+
+def test_history_json_of_a_real_night_follows_its_documented_schema(archived, capsys):
+    """Every key and type of ``history --json`` on an archived night is in its JSON Schema (README, Machine-readable
+    output); the schema forbids undocumented keys, so a new archive column must be documented to pass."""
+    capsys.readouterr()
+    assert main(["history", "--book", "Index vol", "--archive", str(archived / "a.duckdb"), "--json"]) == EXIT_OK
+    book_rows = json.loads(capsys.readouterr().out)
+    assert main(["history", "--desk", "(unassigned)", "--archive", str(archived / "a.duckdb"), "--json"]) == EXIT_OK
+    desk_rows = json.loads(capsys.readouterr().out)
+    _validate("history", capsys, book_rows)
+    _validate("history", capsys, desk_rows)
+
+
+def test_history_schema_rejects_what_the_output_never_holds(capsys):
+    """The history schema is not vacuous: an unknown key, a text amount or a missing month-to-date fail it."""
+    from jsonschema import Draft202012Validator
+    assert main(["history", "--schema"]) == EXIT_OK
+    validator = Draft202012Validator(json.loads(capsys.readouterr().out))
+    good = {"as_of": "2026-01-02", "prior_as_of": "2026-01-01", "book": "B", "limit_state": "within", "zone": None,
+            "pnl_total": 1.0, "pnl_total_mtd": 1.0, "pnl_total_ytd": 1.0, "pnl_residual": 0.0,
+            "pnl_residual_mtd": 0.0, "pnl_residual_ytd": 0.0, "breaches_mtd": 0, "breaches_ytd": 0}
+    assert validator.is_valid([good])
+    assert not validator.is_valid([{**good, "surprise": 1}])
+    assert not validator.is_valid([{**good, "pnl_total": "1.0"}])
+    assert not validator.is_valid([{k: v for k, v in good.items() if k != "pnl_total_mtd"}])
+
+
+def test_quality_json_follows_its_documented_schema(archived, capsys):
+    """``quality --json`` on an archived night is valid under the schema ``quality --schema`` prints."""
+    capsys.readouterr()
+    assert main(["quality", "--as-of", RUN.isoformat(), "--archive", str(archived / "a.duckdb"), "--json"]) == EXIT_OK
+    rows = json.loads(capsys.readouterr().out)
+    assert rows
+    _validate("quality", capsys, rows)
+
+
+def test_history_without_a_book_or_desk_is_a_usage_error(capsys):
+    """``history`` needs --book or --desk (exit 2), unless it prints the schema."""
+    assert main(["history"]) == EXIT_USAGE
+    assert "--book" in capsys.readouterr().err

@@ -29,6 +29,7 @@ from attribution.loading import (
 from tests.contract_files import table
 from tests.mini_desk import PRIOR, RUN, write_mini_desk
 
+POSITION_COLUMNS = [c for c, _ in FILE_COLUMNS["positions.parquet"] + OPTIONAL_COLUMNS["positions.parquet"]]
 REQUIRED = ("positions", "instruments", "option_marks", "underlying_marks", "rate_curves")
 
 
@@ -143,7 +144,7 @@ def test_extra_column_is_accepted_and_ignored(desk: Path) -> None:
     t = pq.read_table(path)
     pq.write_table(t.append_column("desk_note", pa.array(["x"] * t.num_rows)), path)
     frame = read_night(desk, RUN).tables["positions.parquet"]
-    assert list(frame.columns) == [c for c, _ in FILE_COLUMNS["positions.parquet"] + OPTIONAL_COLUMNS["positions.parquet"]]
+    assert list(frame.columns) == POSITION_COLUMNS
     assert len(frame) == t.num_rows
 
 
@@ -201,7 +202,7 @@ def test_empty_file_with_the_contract_schema_reads_as_zero_rows(desk: Path) -> N
     pq.write_table(table("positions", []), _file(desk, RUN, "positions"))
     frame = read_night(desk, RUN).tables["positions.parquet"]
     assert len(frame) == 0
-    assert list(frame.columns) == [c for c, _ in FILE_COLUMNS["positions.parquet"] + OPTIONAL_COLUMNS["positions.parquet"]]
+    assert list(frame.columns) == POSITION_COLUMNS
 
 
 def test_prior_date_is_the_latest_folder_strictly_before(tmp_path: Path) -> None:
