@@ -48,8 +48,7 @@ OPTIONAL_COLUMNS: dict[str, tuple[tuple[str, str], ...]] = {
 # The contract's Arrow schema of each file, keyed by kind ("positions", ...), for writers of input data.
 _ARROW_TYPES = {STRING: pa.string(), FLOAT: pa.float64(), DATE: pa.date32()}
 CONTRACT_SCHEMAS: dict[str, pa.Schema] = {
-    file.removesuffix(".parquet"): pa.schema([(name, _ARROW_TYPES[kind])
-                                              for name, kind in columns + OPTIONAL_COLUMNS.get(file, ())])
+    file.removesuffix(".parquet"): pa.schema([(name, _ARROW_TYPES[kind]) for name, kind in columns])
     for file, columns in FILE_COLUMNS.items()
 }
 

@@ -43,9 +43,11 @@ WORDS = (None, "", "  ", "Call", "put ", "american", "usd", "EURO", "ZEN", "QRX"
 
 @pytest.fixture(scope="module")
 def base_tables(tmp_path_factory: pytest.TempPathFactory) -> dict[tuple[dt.date, str], list[dict[str, object]]]:
-    """The mini desk's twelve files as row lists, read once."""
+    """The mini desk's files (and a books file) as row lists, read once."""
     root = write_mini_desk(tmp_path_factory.mktemp("base") / "data")
+    desks = [{"book": "Index vol", "desk": "Equity"}, {"book": "Euro single names", "desk": "Equity"}]
     return {(day, kind): pq.read_table(folder_for(root, day) / f"{kind}.parquet").to_pylist()
+            if kind != "books" else desks  # the optional books file, which the mini desk does not write
             for day in (PRIOR, RUN) for kind in KINDS}
 
 
@@ -81,7 +83,7 @@ def damaged_desk(draw: st.DrawFn, base: dict[tuple[dt.date, str], list[dict[str,
         roll = draw(st.integers(0, 59))
         if roll == 0:
             files[key] = "missing"
-            fatal |= key[1] != "fx_rates"
+            fatal |= key[1] not in ("fx_rates", "books")  # optional files
         elif roll == 1:
             files[key] = "truncated"
             fatal = True

@@ -59,7 +59,7 @@ from attribution.loading import CONTRACT_SCHEMAS
 from attribution.pricing import FloatArray, bsm_greeks, bsm_price
 
 DEFAULT_START = dt.date(2025, 11, 3)
-SCHEMAS: dict[str, pa.Schema] = CONTRACT_SCHEMAS
+SCHEMAS: dict[str, pa.Schema] = {k: v for k, v in CONTRACT_SCHEMAS.items() if k != "books"}  # no desks yet
 FAULT_KINDS = ("stale_mark", "fat_finger_mark", "missing_mark", "noisy_marks")
 
 
