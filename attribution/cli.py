@@ -205,7 +205,9 @@ def _history_text(frame: object, who: str) -> str:
     """The nightly table, then the last night's figures beside their month- and year-to-date sums."""
     states = ["limit_state", "zone"] if "zone" in frame.columns else ["book_breaches"]  # type: ignore[attr-defined]
     nightly = frame[["as_of", *HISTORY_SHOWN, "pnl_total_mtd", "pnl_total_ytd", *states]]  # type: ignore[index]
-    money = _money
+
+    def money(x: float) -> str:
+        return f"{x:,.0f}"
     last = frame.iloc[-1]  # type: ignore[attr-defined]
     lines = [nightly.to_string(index=False, float_format=money), "",
              f"{who}, night of {_clean(last['as_of'])}: the night, month to date and year to date",
