@@ -33,6 +33,9 @@ class CleanNight:
     fx: pd.Series                  # rate per currency (reporting currency per unit)
     rejected_trades: pd.DataFrame  # trade_id, book, rule of positions rejected by a row rule
     desks: pd.Series               # desk per book (books.parquet); empty without the file
+    dividends: pd.DataFrame        # underlying, ex_date (datetime64[D]), amount; empty without the file
+    broken_schedules: frozenset[str]  # underlyings with a rejected row in dividends.parquet
+    corporate_actions: pd.DataFrame   # underlying, ex_date (datetime64[D]), ratio; empty without the file
 
 
 Detail = str | Callable[[np.ndarray], object]
@@ -226,9 +229,67 @@ def _desks(raw: RawNight, log: ExceptionLog) -> pd.Series:
     return rules.clean().set_index("book")["desk"].astype(object)
 
 
+def _dated_key(frame: pd.DataFrame) -> pd.Series:
+    """``UNDERLYING @ YYYY-MM-DD``: the ledger key of a dividend or corporate-action row."""
+    day = frame["ex_date"].astype("datetime64[s]").dt.strftime("%Y-%m-%d").fillna("(null)") if len(frame) else \
+        pd.Series(dtype=object)
+    return frame["underlying"].astype(str) + " @ " + day
+
+
+def _dividends(raw: RawNight, log: ExceptionLog) -> tuple[pd.DataFrame, frozenset[str]]:
+    """Clean dividend rows and the underlyings whose schedule has a rejected row.
+
+    A schedule missing one of its dividends would misprice every option on the underlying, so an
+    underlying with any rejected row is unusable that date (see :mod:`attribution.market`).
+    """
+    file = "dividends.parquet"
+    frame = raw.tables.get(file)
+    if frame is None:
+        return _empty_dated("amount"), frozenset()
+    frame = frame.assign(key=_dated_key(frame))
+    rules = _Rules(log, raw.path(file), frame, "key")
+    rules.required("underlying", "ex_date")
+    rules.finite("amount")
+    rules.positive("amount")
+    rules.unique("key")
+    listed = frame["underlying"].isin(raw.tables["underlying_marks.parquet"]["underlying"]).to_numpy()
+    rules.reject(~listed, "unknown underlying", lambda m: "no row in underlying_marks for "
+                 + frame["underlying"].to_numpy(dtype=object)[m].astype(str))
+    broken = frame.loc[~rules.ok & listed & frame["underlying"].notna().to_numpy(), "underlying"]
+    clean = rules.clean()[["underlying", "ex_date", "amount"]]
+    return _typed_dates(clean), frozenset(broken.astype(str))
+
+
+def _corporate_actions(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
+    """Clean share adjustments (splits): one per underlying and ex_date, ratio > 0."""
+    file = "corporate_actions.parquet"
+    frame = raw.tables.get(file)
+    if frame is None:
+        return _empty_dated("ratio")
+    frame = frame.assign(key=_dated_key(frame))
+    rules = _Rules(log, raw.path(file), frame, "key")
+    rules.required("underlying", "ex_date")
+    rules.finite("ratio")
+    rules.positive("ratio")
+    rules.unique("key")
+    return _typed_dates(rules.clean()[["underlying", "ex_date", "ratio"]])
+
+
+def _empty_dated(value: str) -> pd.DataFrame:
+    return pd.DataFrame({"underlying": pd.Series(dtype=object), "ex_date": pd.Series(dtype="datetime64[s]"),
+                         value: pd.Series(dtype=float)})
+
+
+def _typed_dates(frame: pd.DataFrame) -> pd.DataFrame:
+    out = frame.reset_index(drop=True)
+    out["ex_date"] = out["ex_date"].astype("datetime64[s]")
+    return out
+
+
 def clean_night(raw: RawNight, log: ExceptionLog, checks: CheckSettings, reporting_currency: str) -> CleanNight:
     """Apply every single-file row rule of the contract to one date's files."""
     positions, rejected = _positions(raw, log, checks)
+    dividends, broken_schedules = _dividends(raw, log)
     return CleanNight(
         raw=raw,
         positions=positions,
@@ -239,4 +300,7 @@ def clean_night(raw: RawNight, log: ExceptionLog, checks: CheckSettings, reporti
         fx=_fx(raw, log, reporting_currency),
         rejected_trades=rejected,
         desks=_desks(raw, log),
+        dividends=dividends,
+        broken_schedules=broken_schedules,
+        corporate_actions=_corporate_actions(raw, log),
     )

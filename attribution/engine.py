@@ -25,12 +25,14 @@ from attribution.books import book_frame, conservation, position_books, position
 from attribution.config import ConfigError, JobConfig
 from attribution.contract import clean_night
 from attribution.controls import BREACH
+from attribution.corporate_actions import restate_prior
+from attribution.dividends import going_ex
 from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
 from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.lifecycle import match_legs
 from attribution.loading import prior_date, read_night
 from attribution.market import build_market, flag_stale_marks, instrument_terms
-from attribution.night import position_rows, stale_flags
+from attribution.night import corporate_flags, dividend_income, position_rows, stale_flags
 from attribution.smile_night import check_smiles, night_smiles
 from attribution.timebasis import TimeBasis
 from attribution.vol_time import variance_clock
@@ -129,6 +131,7 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     basis = TimeBasis(config.time_basis, config.holidays)
     clean0 = clean_night(raw0, log, config.checks, config.reporting_currency)
     clean1 = clean_night(raw1, log, config.checks, config.reporting_currency)
+    clean0, restated = restate_prior(clean0, clean1, log)  # a split tonight: the prior date in new units
     watch.lap("validate")
     market0 = build_market(clean0, instrument_terms(clean0, clean1), basis, config.checks, log,
                            config.american_precision)
@@ -147,6 +150,8 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     positions = position_rows(legs, clean0, clean1, market0, market1, basis, config.revaluation, smiles,
                               config.smile.dynamics, clock)
     positions = stale_flags(positions, market1.ids[stale].to_numpy())
+    went_ex = going_ex(clean0.dividends, clean1.dividends, prior_as_of, as_of)
+    positions = corporate_flags(dividend_income(positions, went_ex), restated, went_ex)
     watch.lap("explain")
     positions["limit_state"] = position_limit_states(positions, config)
     ledger = position_books(raw0, raw1, log.frame())

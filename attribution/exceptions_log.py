@@ -14,6 +14,7 @@ import pandas as pd
 
 REJECTED = "rejected"
 WARNING = "warning"
+INFO = "info"  # nothing wrong: a record of what the job did to an input (a split's restatement)
 
 
 @dataclass(slots=True)

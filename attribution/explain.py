@@ -19,6 +19,18 @@ its exercise boundary overnight (in the exercise region on one date, not on the 
 expansion across the kink: its terms are the order-independent revaluation shares instead (spot in
 delta, vol in vega, time in theta, rates, dividend; gamma, volga and vanna 0), so that its
 explained P&L is the model P&L and its residual is the mark gap alone; ``crossed_boundary`` marks it.
+
+With discrete dividends (:mod:`attribution.dividends`) the model prices on the escrowed spot
+``x = S - D``; ``D`` (the dividends' present value) is part of the dividend factor. The first-order
+move ``delta dx`` is split into ``delta dS`` (delta) and ``-delta dD`` (dividend), and the
+second-order terms use ``dx``, the move of the spot the model prices on::
+
+    gamma    = units gamma dx^2 / 2                  vanna = units vanna dx dvol
+    dividend = units (dividend_rho dq - delta dD)
+
+so an ex-date night, where S falls by about the dividend and D by the same, has a delta term
+offset by the dividend term and no spurious gamma. Without dividends ``D = 0`` and every term is
+the one above.
 """
 
 from __future__ import annotations
@@ -82,17 +94,21 @@ def explain_overnight(strike: FloatArray, cp: FloatArray, units: FloatArray, sta
     g, exercised0 = prior or value_and_greeks(strike, cp, state0, american, scheme=scheme, group=group)
     value1, exercised1 = value_and_exercised(strike, cp, state1, american, scheme=scheme, group=group)
     d_spot = state1.spot - state0.spot
+    d_pv = state1.div_pv - state0.div_pv
+    d_priced = state1.escrowed_spot - state0.escrowed_spot  # the move of the spot the model prices on
     d_vol = state1.vol - state0.vol
     d_rate = state1.rate - state0.rate
     d_div = state1.div_yield - state0.div_yield
     delta = units * g.delta * d_spot
-    gamma = units * 0.5 * g.gamma * d_spot * d_spot
+    gamma = units * 0.5 * g.gamma * d_priced * d_priced
     vega = units * g.vega * d_vol
     volga = units * 0.5 * g.volga * d_vol * d_vol
-    vanna = units * g.vanna * d_spot * d_vol
+    vanna = units * g.vanna * d_priced * d_vol
     theta = units * g.theta_per_year * dt_years
     rates = units * g.rho * d_rate
     dividend = units * g.dividend_rho * d_div
+    if d_pv.any():  # without discrete dividends the term is exactly the contract's dividend_rho dq
+        dividend = dividend - units * g.delta * d_pv
     model = units * (value1 - g.price)
     crossed = (exercised0 != exercised1) & (state1.tau_years > 0)
     if crossed.any():

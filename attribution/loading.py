@@ -37,8 +37,10 @@ FILE_COLUMNS: dict[str, tuple[tuple[str, str], ...]] = {
     "rate_curves.parquet": (("currency", STRING), ("tenor_years", FLOAT), ("zero_rate", FLOAT)),
     "fx_rates.parquet": (("currency", STRING), ("rate", FLOAT)),
     "books.parquet": (("book", STRING), ("desk", STRING)),
+    "dividends.parquet": (("underlying", STRING), ("ex_date", DATE), ("amount", FLOAT)),
+    "corporate_actions.parquet": (("underlying", STRING), ("ex_date", DATE), ("ratio", FLOAT)),
 }
-OPTIONAL_FILES = frozenset({"fx_rates.parquet", "books.parquet"})
+OPTIONAL_FILES = frozenset({"fx_rates.parquet", "books.parquet", "dividends.parquet", "corporate_actions.parquet"})
 # Columns a file may carry or leave out (version 2 of the contract): read and type-checked when
 # present, all null when absent, so later steps always see them.
 OPTIONAL_COLUMNS: dict[str, tuple[tuple[str, str], ...]] = {

@@ -20,6 +20,7 @@ from attribution.american_greeks import NOT_IDENTIFIABLE_RULE, american_implied_
 from attribution.config import CheckSettings
 from attribution.contract import CleanNight
 from attribution.curves import zero_rates
+from attribution.dividends import schedule_pv
 from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.implied_vol import implied_vol
 from attribution.pricing import price_unchecked
@@ -65,6 +66,17 @@ class InstrumentMarket:
     terms_rejected: NDArray[np.bool_]
     american: NDArray[np.bool_]  # exercise = american: priced by attribution.american
     american_scheme: Scheme = STANDARD  # the job's American precision
+    div_pv: FloatArray | None = None  # present value of the dividends in each window (attribution.dividends)
+
+    @property
+    def escrowed_spot(self) -> FloatArray:
+        """The spot the model prices on: spot less the present value of the dividends to expiry."""
+        return self.spot if self.div_pv is None else self.spot - self.div_pv
+
+    @property
+    def dividend_pv(self) -> FloatArray:
+        """``div_pv``, zeros when none was given."""
+        return np.zeros_like(self.spot) if self.div_pv is None else self.div_pv
 
     def locate(self, instrument_ids: NDArray[np.object_]) -> NDArray[np.intp]:
         """Index of each id in this market, -1 where absent.
@@ -156,13 +168,37 @@ def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, check
     log.add(night.raw.path("instruments.parquet"), ids[two & (reason == "")].to_numpy(), TWO_BOUNDARY_RULE,
             "rates and yield of this date give an American option two exercise boundaries")
     _first_reason(reason, two, TWO_BOUNDARY_RULE)
-    vol, vol_solved, vol_mismatch = _vols(night, ids, reason, price, marked_vol, spot, strike, tau, rate,
+    div_pv = _dividend_pv(night, underlying, currency, expiry, spot, reason, basis, log)
+    vol, vol_solved, vol_mismatch = _vols(night, ids, reason, price, marked_vol, spot - div_pv, strike, tau, rate,
                                           div_yield, cp, checks, log, american, scheme)
     usable = reason == ""
     return InstrumentMarket(as_of, ids, underlying, currency, option_type, cp, strike,
                             terms["multiplier"].to_numpy(dtype=float), expiry, tau, spot, div_yield, rate, price,
                             vol, marked_vol, vol_solved, vol_mismatch, spot_known, usable, reason, listed,
-                            terms_rejected, american, scheme)
+                            terms_rejected, american, scheme, div_pv)
+
+
+def _dividend_pv(night: CleanNight, underlying: NDArray[np.object_], currency: NDArray[np.object_],
+                 expiry: NDArray[np.datetime64], spot: FloatArray, reason: NDArray[np.object_], basis: TimeBasis,
+                 log: ExceptionLog) -> FloatArray:
+    """Present value of each instrument's dividends; an unusable schedule or one worth the spot is a reason."""
+    as_of = night.raw.as_of
+    names = pd.Series(underlying, dtype=object).astype(str).to_numpy()
+    broken = pd.Index(underlying).isin(list(night.broken_schedules))
+    _first_reason(reason, broken, "the dividend schedule of " + names + f" has a rejected row in dividends.parquet "
+                  f"of {as_of} (see that row)")
+    div_pv = schedule_pv(as_of, underlying, currency, expiry, night.dividends, night.curves, basis)
+    with np.errstate(invalid="ignore"):
+        worthless = (reason == "") & (div_pv > 0) & ~(spot - div_pv > 0)
+    if worthless.any():
+        over = pd.DataFrame({"underlying": underlying[worthless], "spot": spot[worthless], "pv": div_pv[worthless]})
+        over = over.sort_values("pv", ascending=False).drop_duplicates("underlying")
+        log.add(night.raw.path("dividends.parquet"), over["underlying"].to_numpy(),
+                "dividends worth more than the spot",
+                [f"present value {p:.6g} of the dividends to an expiry is not below the spot {s:.6g}"
+                 for p, s in zip(over["pv"], over["spot"], strict=True)])
+    _first_reason(reason, worthless, "its dividends' present value is not below the spot on " + str(as_of))
+    return div_pv
 
 
 def _vols(night: CleanNight, ids: pd.Index, reason: NDArray[np.object_], price: FloatArray, marked_vol: FloatArray,

@@ -12,6 +12,7 @@ import pandas as pd
 from numpy.typing import NDArray
 
 from attribution.contract import CleanNight
+from attribution.dividends import income_per_unit
 from attribution.explain import Explain, MarketState, explain_overnight
 from attribution.lifecycle import CARRIED, CLOSED, EXPIRIES, NEW, NEW_UNPRICED, Legs, trade_date_flags
 from attribution.market import InstrumentMarket, take
@@ -34,7 +35,7 @@ FloatArray = NDArray[np.float64]
 
 def _state(market: InstrumentMarket, idx: NDArray[np.intp]) -> MarketState:
     return MarketState(market.spot[idx], market.vol[idx], market.tau_years[idx], market.rate[idx],
-                       market.div_yield[idx])
+                       market.div_yield[idx], market.dividend_pv[idx])
 
 
 def _flags(parts: list[tuple[NDArray[np.bool_], str]], n: int) -> NDArray[np.object_]:
@@ -192,6 +193,8 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         "rate_prior": np.where(has_prior, market0.rate[i0], np.nan), "rate_run": market1.rate[i1],
         "div_yield_prior": np.where(has_prior, market0.div_yield[i0], np.nan), "div_yield_run": market1.div_yield[i1],
         "price_prior": price0, "price_run": price1,
+        "div_pv_prior": np.where(has_prior, market0.dividend_pv[i0], np.nan),
+        "div_pv_run": np.where(expired, np.nan, market1.dividend_pv[i1]),
         **cols,
         "limit_state": "within",
         "kind": "option", "exercise": np.where(american, "american", "european"),
@@ -215,3 +218,37 @@ def stale_flags(frame: pd.DataFrame, stale_instruments: NDArray[np.object_]) -> 
         flags[hit] = np.where(flags[hit] == "", "stale_mark", flags[hit] + ",stale_mark")
         frame = frame.assign(flags=flags)
     return frame
+
+
+def corporate_flags(frame: pd.DataFrame, restated: pd.Series, went_ex: pd.DataFrame) -> pd.DataFrame:
+    """Flag the rows held over a night whose underlying was restated for a split (``restated``) or
+    had a dividend going ex (``ex_dividend``); a reader sees why a strike or a spot jumped."""
+    held = frame["status"].isin([CARRIED, CLOSED, *EXPIRIES]).to_numpy()
+    underlying = frame["underlying"]
+    parts = [(held & underlying.isin(restated.index).to_numpy(), "restated"),
+             (held & underlying.isin(went_ex["underlying"]).to_numpy(), "ex_dividend")]
+    if not any(mask.any() for mask, _ in parts):
+        return frame
+    flags = frame["flags"].to_numpy(dtype=object).copy()
+    for mask, word in parts:
+        flags[mask] = np.where(flags[mask] == "", word, flags[mask] + "," + word)
+    return frame.assign(flags=flags)
+
+
+def dividend_income(frame: pd.DataFrame, went_ex: pd.DataFrame) -> pd.DataFrame:
+    """Holders of the underlying itself on the prior date earn the dividends going ex tonight in ``pnl_cash``.
+
+    Per row of kind ``underlying`` held over the night: quantity x multiplier x FX x amount, added to
+    ``pnl_cash`` and ``pnl_total`` (so other cash of the row adds to it).
+    """
+    if went_ex.empty:
+        return frame
+    holder = (frame["kind"] == "underlying").to_numpy() & frame["status"].isin([CARRIED, CLOSED]).to_numpy()
+    if not holder.any():
+        return frame
+    per_unit = income_per_unit(went_ex, frame["underlying"].to_numpy(dtype=object)[holder])
+    cash = np.zeros(len(frame))
+    cash[holder] = (frame["quantity"].to_numpy(float)[holder] * frame["multiplier"].to_numpy(float)[holder]
+                    * frame["fx_rate"].to_numpy(float)[holder] * per_unit)
+    return frame.assign(pnl_cash=frame["pnl_cash"].to_numpy(float) + cash,
+                        pnl_total=frame["pnl_total"].to_numpy(float) + cash)

@@ -4,7 +4,9 @@ For every position the model is revalued at each combination of prior and run-da
 five factors spot, vol, time (tau), rates (r) and dividend (q): 2**5 = 32 states. State ``m`` holds
 factor ``i`` at its run-date value when bit ``i`` of ``m`` is set, at its prior value otherwise, with
 the factor order of :data:`FACTOR_NAMES` (bit 0 = spot ... bit 4 = dividend). State 0 is the prior
-state, state 31 the run-date state.
+state, state 31 the run-date state. With discrete dividends the model prices on the escrowed spot
+``S - D`` (:mod:`attribution.dividends`); the present value ``D`` moves with the dividend factor,
+beside the yield ``q``, so an ex-date's drop of ``S`` (spot) and of ``D`` (dividend) offset.
 
 The share of factor ``i`` is its Shapley value (Shapley, "A value for n-person games", 1953)::
 
@@ -130,6 +132,7 @@ def _check_inputs(arrays: dict[str, FloatArray]) -> None:
         raise InvalidPricingInput(f"cp must be +1 (call) or -1 (put); first bad at index {first}: {cp[first]!r}")
     for label, suffix in (("prior", "0"), ("run-date", "1")):
         s, v, t, r, q = (arrays[f"{name}{suffix}"] for name in ("spot", "vol", "tau", "rate", "div"))
+        s = s - arrays[f"pv{suffix}"]  # the escrowed spot the model prices on
         ok = np.isfinite(s) & np.isfinite(strike) & np.isfinite(t) & np.isfinite(v) & np.isfinite(r) & np.isfinite(q)
         ok &= (s > 0) & (strike > 0) & (v >= 0) & (t >= 0)
         if not ok.all():
@@ -143,14 +146,18 @@ def _check_inputs(arrays: dict[str, FloatArray]) -> None:
 def _revalue_states(strike: FloatArray, cp: FloatArray, spot: tuple[FloatArray, FloatArray],
                     vol: tuple[FloatArray, FloatArray], tau: tuple[FloatArray, FloatArray],
                     rate: tuple[FloatArray, FloatArray], div: tuple[FloatArray, FloatArray],
-                    out: FloatArray) -> FloatArray:
+                    pv: tuple[FloatArray, FloatArray], out: FloatArray) -> FloatArray:
     """Fill ``out`` ``(32, m)`` with the price of every state; pairs are (prior, run-date) 1-d arrays.
+
+    ``pv`` is the dividends' present value, moved with the dividend factor: the priced spot of state
+    (spot a, dividend e) is ``spot[a] - pv[e]`` (exactly ``spot[a]`` where there are no dividends).
 
     Same operations as ``price_unchecked`` on each state's arrays, with every partial result shared by
     several states computed once; the call/put sign is folded into the shared pieces (exact for +-1).
     """
     two = (0, 1)
-    cp_log_sk = [cp * np.log(spot[a] / strike) for a in two]
+    priced = {(a, e): spot[a] - pv[e] for a in two for e in two}
+    cp_log_sk = {ae: cp * np.log(x / strike) for ae, x in priced.items()}
     sqrt_tau = [np.sqrt(tau[c]) for c in two]
     live = {(b, c): (tau[c] > 0) & (vol[b] > 0) for b in two for c in two}
     all_live = {bc: bool(mask.all()) for bc, mask in live.items()}
@@ -161,13 +168,13 @@ def _revalue_states(strike: FloatArray, cp: FloatArray, spot: tuple[FloatArray, 
     cp_drift_tau = {(d, e, b, c): cp * (drift[d, e, b] * tau[c]) for (d, e, b) in drift for c in two}
     disc_q = {(e, c): np.exp(-div[e] * tau[c]) for e in two for c in two}
     cp_k_disc_r = {(d, c): cp * (strike * np.exp(-rate[d] * tau[c])) for d in two for c in two}
-    cp_s_disc_q = {(a, e, c): cp * (spot[a] * disc_q[e, c]) for a in two for (e, c) in disc_q}
+    cp_s_disc_q = {(a, e, c): cp * (priced[a, e] * disc_q[e, c]) for a in two for (e, c) in disc_q}
 
     n1 = np.empty_like(strike)
     n2 = np.empty_like(strike)
     for state in range(N_STATES):
         a, b, c, d, e = (state >> i & 1 for i in range(N_FACTORS))
-        np.add(cp_log_sk[a], cp_drift_tau[d, e, b, c], out=n1)
+        np.add(cp_log_sk[a, e], cp_drift_tau[d, e, b, c], out=n1)
         np.divide(n1, vst[b, c], out=n1)  # cp * d1
         np.subtract(n1, cp_vst[b, c], out=n2)  # cp * d2
         ndtr(n1, out=n1)
@@ -185,17 +192,21 @@ def shapley_shares(
     strike: ArrayLike, cp: ArrayLike,
     spot0: ArrayLike, vol0: ArrayLike, tau0: ArrayLike, rate0: ArrayLike, div0: ArrayLike,
     spot1: ArrayLike, vol1: ArrayLike, tau1: ArrayLike, rate1: ArrayLike, div1: ArrayLike,
+    pv0: ArrayLike = 0.0, pv1: ArrayLike = 0.0,
 ) -> RevaluationShares:
     """Shapley split of ``model(state1) - model(state0)`` per unit of underlying, one element per position.
 
     All arguments are 1-d float arrays of one length: ``strike``; ``cp`` +1 call / -1 put; the prior
     (``...0``) and run-date (``...1``) spot, vol (decimal), tau (years), rate and dividend yield
-    (continuous decimals). ``tau1`` may be 0 (expiry on the run date: intrinsic value). Raises
+    (continuous decimals); ``pv0``/``pv1`` the discrete dividends' present value (0: none), which
+    moves with the dividend factor. ``tau1`` may be 0 (expiry on the run date: intrinsic value). Raises
     :class:`attribution.pricing.InvalidPricingInput` naming the first bad index and rule.
     """
     arrays = {name: np.ascontiguousarray(value, dtype=float) for name, value in (
         ("strike", strike), ("cp", cp), ("spot0", spot0), ("vol0", vol0), ("tau0", tau0), ("rate0", rate0),
         ("div0", div0), ("spot1", spot1), ("vol1", vol1), ("tau1", tau1), ("rate1", rate1), ("div1", div1))}
+    for name, value in (("pv0", pv0), ("pv1", pv1)):
+        arrays[name] = np.ascontiguousarray(np.broadcast_to(np.asarray(value, dtype=float), arrays["strike"].shape))
     _check_inputs(arrays)
     n_positions = arrays["strike"].size
     shares = np.empty((N_FACTORS, n_positions))
@@ -203,7 +214,7 @@ def shapley_shares(
     for lo in range(0, n_positions, CHUNK_POSITIONS):
         hi = min(lo + CHUNK_POSITIONS, n_positions)
         part = {name: a[lo:hi] for name, a in arrays.items()}
-        pairs = {name: (part[f"{name}0"], part[f"{name}1"]) for name in ("spot", "vol", "tau", "rate", "div")}
+        pairs = {name: (part[f"{name}0"], part[f"{name}1"]) for name in ("spot", "vol", "tau", "rate", "div", "pv")}
         states = _revalue_states(part["strike"], part["cp"], out=values[:, : hi - lo], **pairs)
         shares[:, lo:hi] = shapley_allocate(states)
     return RevaluationShares(*shares)

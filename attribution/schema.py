@@ -59,6 +59,8 @@ POSITION_PNL: tuple[tuple[str, str], ...] = (
     # version 2
     ("kind", "VARCHAR"), ("exercise", "VARCHAR"), ("strategy", "VARCHAR"),
     *((c, "DOUBLE") for c in V2_AMOUNT_COLUMNS),
+    # present value of the discrete dividends to expiry on each date (the model prices on spot less it)
+    ("div_pv_prior", "DOUBLE"), ("div_pv_run", "DOUBLE"),
 )
 
 BOOK_PNL: tuple[tuple[str, str], ...] = (

@@ -25,13 +25,29 @@ BoolArray = NDArray[np.bool_]
 
 @dataclass(frozen=True, slots=True)
 class MarketState:
-    """The five risk factors of each position or instrument on one date (decimals, years)."""
+    """The five risk factors of each position or instrument on one date (decimals, years).
+
+    ``div_pv`` is the present value of the discrete dividends to expiry (:mod:`attribution.dividends`);
+    every model prices on :attr:`escrowed_spot` = ``spot - div_pv`` and moves ``div_pv`` with the
+    dividend factor. Without dividends it is 0 and the escrowed spot is the spot, bit for bit.
+    """
 
     spot: FloatArray
     vol: FloatArray
     tau_years: FloatArray
     rate: FloatArray
     div_yield: FloatArray
+    div_pv: FloatArray | float = 0.0
+
+    def __post_init__(self) -> None:
+        """``div_pv`` as an array shaped like ``spot`` (a scalar 0 when no dividends are given)."""
+        object.__setattr__(self, "div_pv", np.broadcast_to(np.asarray(self.div_pv, dtype=float),
+                                                           np.shape(self.spot)).copy())
+
+    @property
+    def escrowed_spot(self) -> FloatArray:
+        """The spot the model prices on: spot less the dividends' present value."""
+        return self.spot - self.div_pv
 
 
 def _distinct(rows: NDArray[np.intp], group: NDArray[np.intp] | None,
@@ -59,7 +75,7 @@ def value_and_exercised(strike: FloatArray, cp: FloatArray, state: MarketState, 
                         scheme: Scheme = STANDARD, group: NDArray[np.intp] | None = None,
                         ) -> tuple[FloatArray, BoolArray]:
     """Model price per unit and, per row, whether an American option sits in its exercise region."""
-    s, k, t, v, r, q = state.spot, strike, state.tau_years, state.vol, state.rate, state.div_yield
+    s, k, t, v, r, q = state.escrowed_spot, strike, state.tau_years, state.vol, state.rate, state.div_yield
     price = price_unchecked(s, k, t, v, r, q, cp)
     exercised = np.zeros(s.size, dtype=bool)
     rows = _american_rows(american, s.size)
@@ -78,7 +94,7 @@ def value_and_greeks(strike: FloatArray, cp: FloatArray, state: MarketState, ame
 
     ``full=False``: American rows get price, delta, gamma and theta only (one boundary instead of seven).
     """
-    s, k, t, v, r, q = state.spot, strike, state.tau_years, state.vol, state.rate, state.div_yield
+    s, k, t, v, r, q = state.escrowed_spot, strike, state.tau_years, state.vol, state.rate, state.div_yield
     g = greeks_unchecked(s, k, t, v, r, q, cp)
     exercised = np.zeros(s.size, dtype=bool)
     rows = _american_rows(american, s.size)
@@ -102,18 +118,21 @@ def revaluation_shares(strike: FloatArray, cp: FloatArray, state0: MarketState, 
     spot, and states are priced together so that those differing only in spot solve it once.
     """
     shares = shapley_shares(strike, cp, state0.spot, state0.vol, state0.tau_years, state0.rate, state0.div_yield,
-                            state1.spot, state1.vol, state1.tau_years, state1.rate, state1.div_yield)
+                            state1.spot, state1.vol, state1.tau_years, state1.rate, state1.div_yield,
+                            state0.div_pv, state1.div_pv)
     rows = _american_rows(american, strike.size)
     if not rows.size:
         return shares
     pairs = [(getattr(state0, name), getattr(state1, name)) for name in ("spot", "vol", "tau_years", "rate",
                                                                           "div_yield")]
-    first, inverse = _distinct(rows, group, (strike, cp, *(a for pair in pairs for a in pair)))
+    pv = (state0.div_pv, state1.div_pv)  # moves with the dividend factor (bit 4)
+    first, inverse = _distinct(rows, group, (strike, cp, *(a for pair in pairs for a in pair), *pv))
     u = rows[first]
     m = u.size
     columns = [np.concatenate([pair[state >> f & 1][u] for state in range(N_STATES)])
                for f, pair in enumerate(pairs)]
     spot, vol, tau, rate, div = columns
+    spot = spot - np.concatenate([pv[state >> 4 & 1][u] for state in range(N_STATES)])
     prices, _ = american_price_and_exercised_unchecked(spot, np.tile(strike[u], N_STATES), tau, vol, rate, div,
                                                         np.tile(cp[u], N_STATES), scheme=scheme)
     american_shares = shapley_allocate(prices.reshape(N_STATES, m))

@@ -26,6 +26,8 @@ COLUMNS: dict[str, tuple[tuple[str, str], ...]] = {
     "rate_curves": (("currency", "string"), ("tenor_years", "float64"), ("zero_rate", "float64")),
     "fx_rates": (("currency", "string"), ("rate", "float64")),
     "books": (("book", "string"), ("desk", "string")),
+    "dividends": (("underlying", "string"), ("ex_date", "date32"), ("amount", "float64")),
+    "corporate_actions": (("underlying", "string"), ("ex_date", "date32"), ("ratio", "float64")),
 }
 
 

@@ -96,12 +96,27 @@ def test_state_prices_match_reference_kernel() -> None:
     """The specialised 32-state pricer agrees with price_unchecked on every state (reference: attribution.pricing)."""
     book = _book(500)
     pairs = {name: (book[f"{name}0"], book[f"{name}1"]) for name in ("spot", "vol", "tau", "rate", "div")}
+    pv0 = np.where(np.arange(500) % 2 == 0, 0.0, 3.0)  # half the book on an escrowed spot (discrete dividends)
+    pairs["pv"] = (pv0, pv0 * 0.98)
     states = revaluation._revalue_states(book["strike"], book["cp"], out=np.empty((32, 500)), **pairs)
     for m in range(32):
         a, b, c, d, e = ((m >> i) & 1 for i in range(5))
-        expected = price_unchecked(pairs["spot"][a], book["strike"], pairs["tau"][c], pairs["vol"][b],
-                                   pairs["rate"][d], pairs["div"][e], book["cp"])
+        expected = price_unchecked(pairs["spot"][a] - pairs["pv"][e], book["strike"], pairs["tau"][c],
+                                   pairs["vol"][b], pairs["rate"][d], pairs["div"][e], book["cp"])
         assert_allclose(states[m], expected, rtol=1e-14, atol=1e-14)
+
+
+def test_dividend_present_value_moves_with_the_dividend_factor() -> None:
+    """An ex-date (S and D fall by the dividend) splits into offsetting spot and dividend shares; the sum is exact."""
+    n = 4
+    one = np.ones(n)
+    strike, cp = np.array([90.0, 100.0, 110.0, 100.0]), np.array([1.0, 1.0, -1.0, -1.0])
+    shares = shapley_shares(strike, cp, 100.0 * one, 0.25 * one, 0.5 * one, 0.04 * one, 0.0 * one,
+                            98.0 * one, 0.25 * one, 0.5 * one, 0.04 * one, 0.0 * one, pv0=2.0 * one, pv1=0.0 * one)
+    assert_allclose(shares.total, 0.0, atol=1e-12)  # the escrowed spot did not move: no model P&L
+    assert np.all(np.abs(shares.spot) > 0.1) and np.all(np.abs(shares.dividend) > 0.1)
+    assert_allclose(shares.spot, -shares.dividend, atol=1e-12)
+    assert np.all(shares.vol == 0.0) and np.all(shares.time == 0.0) and np.all(shares.rates == 0.0)
 
 
 def test_symmetric_factors_get_equal_shares() -> None:
