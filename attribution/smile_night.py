@@ -89,7 +89,7 @@ def _on_smile(m: InstrumentMarket, vol: FloatArray) -> NDArray[np.bool_]:
 
 def _date(m: InstrumentMarket, vol: FloatArray, code: IntArray, scale: FloatArray, n: int) -> DateSmiles:
     on = _on_smile(m, vol)
-    forward = m.spot * np.exp((m.rate - m.div_yield) * m.tau_years)
+    forward = m.escrowed_spot * np.exp((m.rate - m.div_yield) * m.tau_years)  # discrete dividends out
     x = np.zeros(len(code))
     with np.errstate(all="ignore"):
         x[on] = np.log(m.strike[on] / forward[on]) / scale[code[on]]
@@ -185,7 +185,7 @@ def check_smiles(smiles: NightSmiles, m1: InstrumentMarket, vol1: FloatArray, of
     log.add(marks_file, ids[found.index], "off smile",
             [f"implied vol {v:.4f} is {abs(v - f) * 100:.2f} vol points from its fitted smile ({f:.4f}) on {s}"
              for v, f, s in zip(found.observed, found.bound, name[found.index], strict=True)], WARNING)
-    fly = butterfly(g, m1.strike[pts], m1.spot[pts], m1.tau_years[pts], vol1[pts], m1.rate[pts],
+    fly = butterfly(g, m1.strike[pts], m1.escrowed_spot[pts], m1.tau_years[pts], vol1[pts], m1.rate[pts],
                     m1.div_yield[pts])
     log.add(marks_file, ids[fly.index], "smile arbitrage",
             [f"butterfly: call value {c:.6g} at this strike is above {b:.6g}, the mix of its neighbouring "
@@ -194,7 +194,7 @@ def check_smiles(smiles: NightSmiles, m1: InstrumentMarket, vol1: FloatArray, of
     present = np.unique(g)              # codes are ordered by underlying then expiry
     same_und = smiles.underlying[present[1:]] == smiles.underlying[present[:-1]]
     previous[present[1:][same_und]] = present[:-1][same_und]
-    forward = m1.spot[pts] * np.exp((m1.rate[pts] - m1.div_yield[pts]) * m1.tau_years[pts])
+    forward = m1.escrowed_spot[pts] * np.exp((m1.rate[pts] - m1.div_yield[pts]) * m1.tau_years[pts])
     cal = calendar(g, previous, np.log(m1.strike[pts] / forward), vol1[pts] ** 2 * m1.tau_years[pts])
     log.add(marks_file, ids[cal.index], "smile arbitrage",
             [f"calendar: total variance {w:.6g} is below {b:.6g}, the earlier expiry's at the same forward "
