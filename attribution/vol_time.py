@@ -120,7 +120,7 @@ def clock_terms(g: Greeks, units: FloatArray, state0: MarketState, state1: Marke
     """
     root0 = np.sqrt(ratio0)
     d_vol = state1.vol / np.sqrt(ratio1) - state0.vol / root0
-    d_spot = state1.spot - state0.spot
+    d_spot = state1.escrowed_spot - state0.escrowed_spot  # the priced spot: discrete dividends out
     decay = decay_per_year(g, state0, ratio0)
     carry = g.theta_per_year - decay_per_year(g, state0, np.ones_like(ratio0))
     theta_decay = units * decay * dt_var_years
