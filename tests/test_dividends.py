@@ -204,3 +204,21 @@ def test_dividends_worth_the_spot_are_rejected(tmp_path: Path) -> None:
     assert (night.exceptions["rule"] == "dividends worth more than the spot").any()
     kept = set(night.positions.loc[night.positions["underlying"] == "KEL", "trade_id"])
     assert kept == {"D3"}  # the April option expires before the June dividend: still priced
+
+
+def test_every_exercise_style_prices_on_the_escrowed_spot() -> None:
+    """valuation.value with div_pv D equals the same model at spot S - D, European and American rows alike."""
+    from attribution.valuation import MarketState, revaluation_shares, value
+
+    n = 4
+    one = np.ones(n)
+    strike, cp = np.array([95.0, 100.0, 105.0, 100.0]), np.array([1.0, -1.0, -1.0, 1.0])
+    american = np.array([False, False, True, True])
+    with_div = MarketState(100.0 * one, 0.3 * one, 0.5 * one, 0.04 * one, 0.0 * one, 2.5 * one)
+    escrowed = MarketState(97.5 * one, 0.3 * one, 0.5 * one, 0.04 * one, 0.0 * one)
+    np.testing.assert_array_equal(value(strike, cp, with_div, american), value(strike, cp, escrowed, american))
+    ex_night = MarketState(97.5 * one, 0.3 * one, 0.5 * one, 0.04 * one, 0.0 * one, 0.0 * one)  # S and D fall 2.5
+    shares = revaluation_shares(strike, cp, with_div, ex_night, american)
+    model = value(strike, cp, ex_night, american) - value(strike, cp, with_div, american)
+    np.testing.assert_allclose(shares.total, model, rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(shares.spot, -shares.dividend, rtol=1e-9)  # the drop of S and of D offset
