@@ -48,7 +48,8 @@ def base_tables(tmp_path_factory: pytest.TempPathFactory) -> dict[tuple[dt.date,
     tables = {(day, kind): pq.read_table(folder_for(root, day) / f"{kind}.parquet").to_pylist()
               for day in (PRIOR, RUN) for kind in KINDS if (folder_for(root, day) / f"{kind}.parquet").exists()}
     for day in (PRIOR, RUN):  # a desk per book, a dividend ahead, a (neutral) split tonight
-        tables[day, "books"] = [{"book": "Index vol", "desk": "Equity"}, {"book": "Euro single names", "desk": "Equity"}]
+        tables[day, "books"] = [{"book": "Index vol", "desk": "Equity"},
+                                {"book": "Euro single names", "desk": "Equity"}]
         tables[day, "dividends"] = [{"underlying": "ZEN", "ex_date": dt.date(2027, 2, 5), "amount": 0.5}]
         tables[day, "corporate_actions"] = [{"underlying": "QRX", "ex_date": RUN, "ratio": 1.0}]
     return tables
