@@ -40,7 +40,8 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.special import ndtr
 
-from attribution.pricing import FloatArray, InvalidPricingInput, _available_cores, invalid_reasons, price_unchecked
+from attribution.arrays import FloatArray
+from attribution.pricing import InvalidPricingInput, _available_cores, invalid_reasons, price_unchecked
 
 TWO_BOUNDARY_RULE = "american exercise with two boundaries (put: q < r < 0; call: r < q < 0) is not supported"
 _INV_SQRT_2PI = 1.0 / np.sqrt(2.0 * np.pi)

@@ -40,8 +40,9 @@ from attribution.american import (
     regimes,
     solve_put_boundaries,
 )
+from attribution.arrays import FloatArray
 from attribution.implied_vol import ImpliedVolResult, implied_vol
-from attribution.pricing import FloatArray, Greeks, _limits, greeks_unchecked, price_unchecked
+from attribution.pricing import Greeks, _limits, greeks_unchecked, price_unchecked
 
 VOL_BUMP = 1e-3  # per 1.00 of vol (at most half the vol)
 RATE_BUMP = 1e-4  # per 1.00 of rate or yield (the put's rate stays > 0)

@@ -20,7 +20,7 @@ import pandas as pd
 import pyarrow as pa
 
 from attribution.errors import JobFailure
-from attribution.quality import quality_frame
+from attribution.quality_table import quality_frame
 from attribution.schema import TABLES
 
 

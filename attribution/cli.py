@@ -257,7 +257,7 @@ def _cmd_quality(args: argparse.Namespace) -> int:
     if args.as_of is None:
         raise ConfigError("quality: --as-of is required")
     from attribution.archive import connect, quality_series
-    from attribution.quality import quality_frame
+    from attribution.quality_table import quality_frame
     con = connect(_archive_of(args), read_only=True)
     try:
         frame = quality_frame(quality_series(con, args.as_of), args.as_of)

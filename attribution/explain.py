@@ -41,9 +41,12 @@ import numpy as np
 from numpy.typing import NDArray
 
 from attribution.american import STANDARD, Scheme
-from attribution.pricing import FloatArray, Greeks
-from attribution.schema import TAYLOR_TERMS
+from attribution.arrays import FloatArray
+from attribution.pricing import Greeks
 from attribution.valuation import MarketState, revaluation_shares, value, value_and_exercised, value_and_greeks
+
+# The eight Taylor terms, in the data contract's order; the archive's pnl_<term> columns derive from these.
+TAYLOR_TERMS: tuple[str, ...] = ("delta", "gamma", "vega", "volga", "vanna", "theta", "rates", "dividend")
 
 __all__ = ["Explain", "MarketState", "explain_overnight", "model_value"]
 

@@ -22,7 +22,8 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.special import ndtr
 
-from attribution.pricing import FloatArray, normal_pdf
+from attribution.arrays import FloatArray
+from attribution.pricing import invalid_reasons, no_arbitrage_bounds, normal_pdf
 
 MAX_ITERATIONS = 100
 _REL_TOL = 4e-16
@@ -87,21 +88,17 @@ def implied_vol(
     p, s, k, t, r, q, c = (np.atleast_1d(np.array(a, dtype=float)) for a in
                            np.broadcast_arrays(price, spot, strike, tau_years, rate, div_yield, is_call))
     cp = np.where(c != 0, 1.0, -1.0)
-    reason = np.full(p.shape, "", dtype=object)
-    finite = np.isfinite(p) & np.isfinite(s) & np.isfinite(k) & np.isfinite(t) & np.isfinite(r) & np.isfinite(q)
-    ok_inputs = finite & (s > 0) & (k > 0) & (t > 0)
+    reason = invalid_reasons(s, k, t, np.zeros_like(s), r, q)  # the model's own input rules (no vol given here)
+    lower, upper = no_arbitrage_bounds(s, k, t, r, q, cp)
     with np.errstate(all="ignore"):
-        disc_q, disc_r = np.exp(-q * t), np.exp(-r * t)
-        lower = np.maximum(cp * (s * disc_q - k * disc_r), 0.0)
-        upper = np.where(cp > 0, s * disc_q, k * disc_r)
-        forward = s * disc_q / disc_r
+        disc_r = np.exp(-r * t)
+        forward = s * np.exp(-q * t) / disc_r
     checks = [
-        (~finite, "a pricing input is not a finite number"),
-        (finite & ((s <= 0) | (k <= 0)), "spot and strike must be > 0"),
-        (finite & (t <= 0), "no time to expiry: implied vol is undefined"),
-        (ok_inputs & (p < lower), "price below the no-arbitrage lower bound (intrinsic value)"),
-        (ok_inputs & (p == lower), "price at the lower bound: implied vol is zero or undetermined"),
-        (ok_inputs & (p >= upper), "price at or above the no-arbitrage upper bound"),
+        (~np.isfinite(p), "price is not a finite number"),
+        (t == 0, "no time to expiry: implied vol is undefined"),
+        (p < lower, "price below the no-arbitrage lower bound (intrinsic value)"),
+        (p == lower, "price at the lower bound: implied vol is zero or undetermined"),
+        (p >= upper, "price at or above the no-arbitrage upper bound"),
     ]
     for bad, text in checks:
         reason[bad & (reason == "")] = text

@@ -17,16 +17,15 @@ from numpy.typing import NDArray
 
 from attribution.american import PRECISE, STANDARD, TWO_BOUNDARY_RULE, Scheme, american_price_unchecked
 from attribution.american_greeks import NOT_IDENTIFIABLE_RULE, american_implied_vol
+from attribution.arrays import FloatArray
 from attribution.config import CheckSettings
 from attribution.contract import CleanNight
 from attribution.curves import zero_rates
 from attribution.dividends import schedule_pv
 from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.implied_vol import implied_vol
-from attribution.pricing import price_unchecked
+from attribution.pricing import no_arbitrage_bounds, price_unchecked
 from attribution.timebasis import TimeBasis
-
-FloatArray = NDArray[np.float64]
 
 
 @dataclass(frozen=True, slots=True)
@@ -212,12 +211,7 @@ def _vols(night: CleanNight, ids: pd.Index, reason: NDArray[np.object_], price: 
     marks_file = night.raw.path("option_marks.parquet")
     candidates = reason == ""
     vol = marked_vol.copy()
-    with np.errstate(all="ignore"):
-        disc_q, disc_r = np.exp(-div_yield * tau), np.exp(-rate * tau)
-        lower = np.maximum(cp * (spot * disc_q - strike * disc_r), 0.0)
-        upper = np.where(cp > 0, spot * disc_q, strike * disc_r)
-        lower = np.where(american, np.maximum(lower, cp * (spot - strike)), lower)
-        upper = np.where(american, np.where(cp > 0, spot, strike), upper)
+    lower, upper = no_arbitrage_bounds(spot, strike, tau, rate, div_yield, cp, american)
     slack = 1e-9 * np.maximum(1.0, np.abs(price))
     outside = candidates & ((price < lower - slack) | (price > upper + slack))
     detail = pd.Series([f"price {p:.6g} outside [{lo:.6g}, {hi:.6g}]" for p, lo, hi in

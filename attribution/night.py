@@ -11,12 +11,14 @@ import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 
+from attribution.arrays import FloatArray
 from attribution.contract import CleanNight
 from attribution.dividends import income_per_unit
 from attribution.explain import Explain, MarketState, explain_overnight
 from attribution.lifecycle import CARRIED, CLOSED, EXPIRIES, NEW, NEW_UNPRICED, Legs, trade_date_flags
 from attribution.market import InstrumentMarket, take
 from attribution.pricing import Greeks
+from attribution.revaluation import FACTOR_NAMES
 from attribution.schema import (
     EXPOSURE_COLUMNS,
     PNL_COLUMNS,
@@ -29,8 +31,6 @@ from attribution.smile_night import NightSmiles, vol_columns
 from attribution.timebasis import DAYS_PER_YEAR_BUSINESS, DAYS_PER_YEAR_CALENDAR, TimeBasis
 from attribution.valuation import revaluation_shares, value_and_greeks
 from attribution.vol_time import VarianceClock, clock_terms, decay_per_year
-
-FloatArray = NDArray[np.float64]
 
 
 def _state(market: InstrumentMarket, idx: NDArray[np.intp]) -> MarketState:
@@ -129,7 +129,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
             cols[name][k] = values
         if revaluation:
             shares = revaluation_shares(strike[k], cp[k], s0, s1, american[k], scheme=scheme, group=pair)
-            for factor in ("spot", "vol", "time", "rates", "dividend"):
+            for factor in FACTOR_NAMES:
                 cols[f"reval_{factor}"][k] = units0[k] * getattr(shares, factor)
 
     # Exposures at the prior state, for everything held on the prior date.

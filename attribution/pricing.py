@@ -35,7 +35,8 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.special import ndtr
 
-FloatArray = NDArray[np.float64]
+from attribution.arrays import FloatArray
+
 _INV_SQRT_2PI = 1.0 / np.sqrt(2.0 * np.pi)
 CHUNK_OPTIONS = 4096  # options computed together: keeps a chunk's intermediate arrays in the CPU cache
 MIN_OPTIONS_PER_THREAD = 16 * CHUNK_OPTIONS  # below this, a thread costs more than it saves
@@ -70,6 +71,30 @@ def normal_pdf(x: FloatArray) -> FloatArray:
     return _INV_SQRT_2PI * np.exp(-0.5 * x * x)
 
 
+def _broken_rules(s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray,
+                  q: FloatArray) -> list[tuple[NDArray[np.bool_], str]]:
+    """The model's input rules, in order, each as (mask of the options breaking it, the rule in words).
+
+    The one place the rules are written: :func:`invalid_reasons`, :func:`valid_inputs` and the
+    fast path :func:`_all_valid` (the same rules on the arrays' minima and maxima) use them.
+    """
+    names = ("spot", "strike", "tau_years", "vol", "rate", "div_yield")
+    rules: list[tuple[NDArray[np.bool_], str]] = [
+        (~np.isfinite(a), f"{name} is not a finite number") for a, name in zip((s, k, t, v, r, q), names, strict=True)
+    ]
+    rules += [
+        (s <= 0, "spot must be > 0"),
+        (k <= 0, "strike must be > 0"),
+        (v < 0, "vol must be >= 0"),
+        (t < 0, "tau_years must be >= 0 (the option has expired)"),
+    ]
+    return rules
+
+
+def _broadcast_inputs(*inputs: ArrayLike) -> tuple[FloatArray, ...]:
+    return tuple(np.broadcast_arrays(*(np.asarray(a, dtype=float) for a in inputs)))
+
+
 def invalid_reasons(
     spot: ArrayLike,
     strike: ArrayLike,
@@ -82,27 +107,47 @@ def invalid_reasons(
 
     Rules: every input finite; spot > 0; strike > 0; vol >= 0; tau_years >= 0.
     """
-    arrays = np.broadcast_arrays(*(np.asarray(a, dtype=float) for a in
-                                   (spot, strike, tau_years, vol, rate, div_yield)))
-    s, k, t, v, _r, _q = arrays
-    reasons = np.full(s.shape, "", dtype=object)
-    names = ("spot", "strike", "tau_years", "vol", "rate", "div_yield")
-    checks: list[tuple[NDArray[np.bool_], str]] = [
-        (~np.isfinite(a), f"{name} is not a finite number") for a, name in zip(arrays, names, strict=True)
-    ]
-    checks += [
-        (s <= 0, "spot must be > 0"),
-        (k <= 0, "strike must be > 0"),
-        (v < 0, "vol must be >= 0"),
-        (t < 0, "tau_years must be >= 0 (the option has expired)"),
-    ]
-    for bad, reason in reversed(checks):  # reversed so that the first rule broken wins
+    arrays = _broadcast_inputs(spot, strike, tau_years, vol, rate, div_yield)
+    reasons = np.full(arrays[0].shape, "", dtype=object)
+    for bad, reason in reversed(_broken_rules(*arrays)):  # reversed so that the first rule broken wins
         reasons[bad] = reason
     return reasons
 
 
+def valid_inputs(spot: ArrayLike, strike: ArrayLike, tau_years: ArrayLike, vol: ArrayLike, rate: ArrayLike,
+                 div_yield: ArrayLike) -> NDArray[np.bool_]:
+    """True for each option whose inputs break none of the rules of :func:`invalid_reasons`."""
+    arrays = _broadcast_inputs(spot, strike, tau_years, vol, rate, div_yield)
+    ok = np.ones(arrays[0].shape, dtype=bool)
+    for bad, _ in _broken_rules(*arrays):
+        ok &= ~bad
+    return ok
+
+
+def no_arbitrage_bounds(spot: FloatArray, strike: FloatArray, tau_years: FloatArray, rate: FloatArray,
+                        div_yield: FloatArray, cp: FloatArray,
+                        american: NDArray[np.bool_] | None = None) -> tuple[FloatArray, FloatArray]:
+    """Model-free bounds of an option's price (``cp`` = +1 call, -1 put; no warnings on bad inputs).
+
+    European: ``max(cp (S e^-qT - K e^-rT), 0)`` and ``S e^-qT`` for a call, ``K e^-rT`` for a put.
+    Where ``american`` is true, exercise now is worth having: the lower bound is at least the
+    intrinsic value ``cp (S - K)`` and the upper bound is ``S`` for a call, ``K`` for a put.
+    """
+    with np.errstate(all="ignore"):
+        disc_q, disc_r = np.exp(-div_yield * tau_years), np.exp(-rate * tau_years)
+        lower = np.maximum(cp * (spot * disc_q - strike * disc_r), 0.0)
+        upper = np.where(cp > 0, spot * disc_q, strike * disc_r)
+        if american is not None:
+            lower = np.where(american, np.maximum(lower, cp * (spot - strike)), lower)
+            upper = np.where(american, np.where(cp > 0, spot, strike), upper)
+    return lower, upper
+
+
 def _all_valid(s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray, q: FloatArray) -> bool:
-    """True when every input is valid; exact, since min and max propagate NaN and see any infinity."""
+    """True when every input is valid (the rules of :func:`_broken_rules`, checked on minima and maxima).
+
+    Exact, since min and max propagate NaN and see any infinity; no per-option array is allocated.
+    """
     if s.size == 0:
         return True
     low = np.array([s.min(), k.min(), t.min(), v.min(), r.min(), q.min()])

@@ -33,12 +33,11 @@ from fractions import Fraction
 from math import factorial
 
 import numpy as np
-from numpy.typing import ArrayLike, NDArray
+from numpy.typing import ArrayLike
 from scipy.special import ndtr
 
-from attribution.pricing import InvalidPricingInput, invalid_reasons
-
-FloatArray = NDArray[np.float64]
+from attribution.arrays import FloatArray
+from attribution.pricing import InvalidPricingInput, invalid_reasons, valid_inputs
 
 FACTOR_NAMES: tuple[str, ...] = ("spot", "vol", "time", "rates", "dividend")
 N_FACTORS = len(FACTOR_NAMES)
@@ -133,8 +132,7 @@ def _check_inputs(arrays: dict[str, FloatArray]) -> None:
     for label, suffix in (("prior", "0"), ("run-date", "1")):
         s, v, t, r, q = (arrays[f"{name}{suffix}"] for name in ("spot", "vol", "tau", "rate", "div"))
         s = s - arrays[f"pv{suffix}"]  # the escrowed spot the model prices on
-        ok = np.isfinite(s) & np.isfinite(strike) & np.isfinite(t) & np.isfinite(v) & np.isfinite(r) & np.isfinite(q)
-        ok &= (s > 0) & (strike > 0) & (v >= 0) & (t >= 0)
+        ok = valid_inputs(s, strike, t, v, r, q)
         if not ok.all():
             bad = np.flatnonzero(~ok)
             reason = invalid_reasons(s[bad[0]], strike[bad[0]], t[bad[0]], v[bad[0]], r[bad[0]], q[bad[0]])

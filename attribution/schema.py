@@ -7,10 +7,9 @@ the job's reporting currency. See README.md, "The archive", for the meaning of e
 
 from __future__ import annotations
 
-TAYLOR_TERMS: tuple[str, ...] = (
-    "delta", "gamma", "vega", "volga", "vanna", "theta", "rates", "dividend",
-)
-REVAL_FACTORS: tuple[str, ...] = ("spot", "vol", "time", "rates", "dividend")
+from attribution.explain import TAYLOR_TERMS
+from attribution.revaluation import FACTOR_NAMES as REVAL_FACTORS
+
 LIFECYCLE_LINES: tuple[str, ...] = ("new_trade", "expiry", "amendment")
 
 PNL_COLUMNS: tuple[str, ...] = (

@@ -47,8 +47,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-FloatArray = NDArray[np.float64]
-IntArray = NDArray[np.intp]
+from attribution.arrays import FloatArray, IntArray
 
 MIN_STRIKES = 3            # distinct strikes needed for a quadratic; fewer: level only
 BISQUARE_C = 4.685         # Tukey's bisquare tuning constant (95 % efficiency under normal errors)

@@ -28,10 +28,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from attribution.arrays import FloatArray, IntArray
 from attribution.pricing import price_unchecked
-
-FloatArray = NDArray[np.float64]
-IntArray = NDArray[np.intp]
 
 PRICE_SLACK = 1e-6        # butterfly slack, share of spot: rounding of quoted vols is not arbitrage
 VARIANCE_SLACK = 1e-6     # calendar slack, total variance (vol^2 x years)

@@ -21,6 +21,7 @@ import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 
+from attribution.arrays import FloatArray, IntArray
 from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.market import InstrumentMarket
 from attribution.smile import (
@@ -33,9 +34,6 @@ from attribution.smile import (
     split_vol_pnl,
 )
 from attribution.smile_checks import butterfly, calendar, off_smile
-
-FloatArray = NDArray[np.float64]
-IntArray = NDArray[np.intp]
 
 STICKY_MONEYNESS = "sticky moneyness"
 

@@ -34,12 +34,11 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from attribution.arrays import FloatArray
 from attribution.config import VolTimeSettings
 from attribution.explain import MarketState
 from attribution.pricing import Greeks
 from attribution.timebasis import DAYS_PER_YEAR_BUSINESS, DAYS_PER_YEAR_CALENDAR, TimeBasis
-
-FloatArray = NDArray[np.float64]
 
 
 @dataclass(frozen=True, slots=True)

@@ -19,7 +19,8 @@ from collections.abc import Callable
 import numpy as np
 import pandas as pd
 
-from attribution.quality import quality_frame, quality_test
+from attribution.quality import quality_test
+from attribution.quality_table import quality_frame
 
 TARGET_SECONDS = 2.0
 

@@ -19,12 +19,11 @@ from scipy import stats
 from attribution.quality import (
     QualityResult,
     ks_rows,
-    nightly_series,
-    quality_frame,
     quality_test,
     spearman_rows,
     zone_of,
 )
+from attribution.quality_table import nightly_series, quality_frame
 from attribution.schema import BOOK_QUALITY
 
 RTOL = 1e-12

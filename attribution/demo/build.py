@@ -33,6 +33,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from numpy.typing import NDArray
 
+from attribution.arrays import FloatArray
 from attribution.demo.desk import (
     DAYS_PER_YEAR,
     DeskSpec,
@@ -56,7 +57,7 @@ from attribution.demo.market import (
 )
 from attribution.demo.nights import Night, PlantedFault, Pool, Trades
 from attribution.loading import CONTRACT_SCHEMAS
-from attribution.pricing import FloatArray, bsm_greeks, bsm_price
+from attribution.pricing import bsm_greeks, bsm_price
 
 DEFAULT_START = dt.date(2025, 11, 3)
 SCHEMAS: dict[str, pa.Schema] = {k: v for k, v in CONTRACT_SCHEMAS.items() if k != "books"}  # no desks yet

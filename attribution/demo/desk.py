@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from attribution.pricing import FloatArray
+from attribution.arrays import FloatArray
 
 KINDS = ("index", "stock", "fx")
 STYLES = ("outright", "short_vol", "delta_neutral")

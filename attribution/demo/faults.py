@@ -5,10 +5,10 @@ from __future__ import annotations
 import numpy as np
 from numpy.typing import NDArray
 
+from attribution.arrays import FloatArray
 from attribution.demo.desk import DeskSpec
 from attribution.demo.market import IntArray, ListedInstruments, MarketPaths
 from attribution.demo.nights import Night, PlantedFault, Trades
-from attribution.pricing import FloatArray
 
 
 def _carried_in_book(market: MarketPaths, store: ListedInstruments, trades: Trades, nights: list[Night], d: int,

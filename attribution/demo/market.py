@@ -18,8 +18,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import NDArray
 
+from attribution.arrays import FloatArray
 from attribution.demo.desk import DAYS_PER_YEAR, DeskSpec
-from attribution.pricing import FloatArray
 
 IntArray = NDArray[np.int64]
 

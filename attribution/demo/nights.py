@@ -8,8 +8,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import NDArray
 
+from attribution.arrays import FloatArray
 from attribution.demo.market import IntArray
-from attribution.pricing import FloatArray
 
 
 @dataclass(frozen=True, slots=True)

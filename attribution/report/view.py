@@ -33,7 +33,7 @@ from attribution.report.queries import (
     VOL_PART_COLUMNS,
     NightFrames,
 )
-from attribution.schema import BOOK_PNL, TAYLOR_TERMS
+from attribution.schema import BOOK_PNL, REVAL_COLUMNS, TAYLOR_TERMS
 from attribution.timebasis import TimeBasis
 
 _LIMIT_RANK = {"breach": 0, "watch": 1}
@@ -128,7 +128,7 @@ def _methods(f: Mapping[str, float | None]) -> tuple[tuple[MethodRow, ...], Meth
             ("time", "Time", "theta", f["pnl_theta"], f["reval_time"]),
             ("rates", "Rates", "rho", f["pnl_rates"], f["reval_rates"]),
             ("dividend", "Dividend", "dividend", f["pnl_dividend"], f["reval_dividend"]))
-    reval_total = add(*(f"reval_{k}" for k in ("spot", "vol", "time", "rates", "dividend")))
+    reval_total = add(*REVAL_COLUMNS)
     bars = charts.pair_bars([(s[3], s[4]) for s in spec] + [(f["pnl_explained"], reval_total)])
     rows = tuple(MethodRow(key, label, terms, a, b, None if a is None or b is None else b - a, bar)
                  for (key, label, terms, a, b), bar in zip(spec, bars, strict=False))
