@@ -60,6 +60,8 @@ def run(out: Path, days: int, nights: int) -> None:
 
 def _table(con: duckdb.DuckDBPyConnection, name: str) -> pd.DataFrame:
     frame = con.execute(f"SELECT * FROM {name}").df()  # name from the archive's own catalogue
+    if "file" in frame.columns:  # input files named below the run's own folder
+        frame["file"] = frame["file"].str.replace(r"^.*/(as_of=[^/]+/[^/]+)$", r"\1", regex=True)
     keys = [c for c in frame.columns if c not in VOLATILE.get(name, set())][:6]
     return frame.sort_values(keys, kind="stable", ignore_index=True) if len(frame) else frame
 
@@ -100,7 +102,10 @@ def compare_archives(before: Path, after: Path) -> int:
         problems += len(differing) + (len(fa) != len(fb))
         print(f"{name:<17} rows {len(fa):>7,} / {len(fb):>7,}  columns compared {len(compared):>3}  "
               f"differing: {', '.join(differing) or 'none'}")
-    same_settings = _settings(a) == _settings(b)
+    settings_a, settings_b = _settings(a), _settings(b)
+    same_settings = settings_a == settings_b
+    if not same_settings:
+        print("settings before:", settings_a[0][0], "\nsettings after: ", settings_b[0][0])
     problems += not same_settings
     print(f"runs.job_settings and input_hashes (folders left out): {'same' if same_settings else 'DIFFERENT'}")
     a.close()
@@ -108,8 +113,8 @@ def compare_archives(before: Path, after: Path) -> int:
     return problems
 
 
-def _masked(path: Path) -> str:
-    text = path.read_text(encoding="utf-8")
+def _masked(path: Path, out: Path) -> str:
+    text = path.read_text(encoding="utf-8").replace(str(out.resolve()), "OUT").replace(str(out), "OUT")
     for pattern in _MASKS:
         text = pattern.sub("#", text)
     return text
@@ -123,7 +128,7 @@ def compare_reports(before: Path, after: Path) -> int:
     for missing in sorted(files_a ^ files_b):
         print(f"report file on one side only: {missing}")
     for rel in sorted(files_a & files_b):
-        if _masked(before / rel) != _masked(after / rel):
+        if _masked(before / rel, before.parent) != _masked(after / rel, after.parent):
             print(f"report file differs: {rel}")
             problems += 1
     print(f"report files compared: {len(files_a & files_b)}, differing: {problems}")
