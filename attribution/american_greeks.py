@@ -42,7 +42,7 @@ from attribution.american import (
 )
 from attribution.arrays import FloatArray
 from attribution.implied_vol import ImpliedVolResult, implied_vol
-from attribution.pricing import Greeks, _limits, greeks_unchecked, price_unchecked
+from attribution.pricing import Greeks, _limits, greeks_unchecked, no_arbitrage_bounds, price_unchecked
 
 VOL_BUMP = 1e-3  # per 1.00 of vol (at most half the vol)
 RATE_BUMP = 1e-4  # per 1.00 of rate or yield (the put's rate stays > 0)
@@ -186,7 +186,7 @@ def american_implied_vol(price: ArrayLike, spot: ArrayLike, strike: ArrayLike, t
     cp = np.where(c != 0, 1.0, -1.0)
     zero = np.zeros_like(p)
     floor = american_price_unchecked(s, k, t, zero, r, q, cp, scheme=scheme)  # the value at zero vol
-    upper = np.where(cp > 0, s, k)
+    _, upper = no_arbitrage_bounds(s, k, t, r, q, cp, american=np.ones(p.shape, dtype=bool))
     reason = np.full(p.shape, "", dtype=object)
     reason[p >= upper] = "price at or above the no-arbitrage upper bound"
     reason[(reason == "") & (p < floor - 1e-12 * k)] = "price below the American value at zero vol"
