@@ -17,10 +17,9 @@ from numpy.typing import NDArray
 
 from attribution.american import STANDARD, Scheme, american_price_and_exercised_unchecked
 from attribution.american_greeks import american_greeks_and_exercised_unchecked
-from attribution.pricing import FloatArray, Greeks, greeks_unchecked, price_unchecked
+from attribution.arrays import BoolArray, FloatArray
+from attribution.pricing import Greeks, greeks_unchecked, price_unchecked
 from attribution.revaluation import FACTOR_NAMES, N_STATES, RevaluationShares, shapley_allocate, shapley_shares
-
-BoolArray = NDArray[np.bool_]
 
 
 @dataclass(frozen=True, slots=True)
