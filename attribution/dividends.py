@@ -23,10 +23,10 @@ import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 
+from attribution.arrays import FloatArray
 from attribution.curves import zero_rates
 from attribution.timebasis import TimeBasis
 
-FloatArray = NDArray[np.float64]
 _DAY_OFFSET = np.int64(2**31)  # days since 1970 made non-negative for the packed (underlying, day) key
 
 
