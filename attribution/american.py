@@ -424,7 +424,9 @@ def american_price_and_exercised_unchecked(
         out[i] = price_unchecked(s[i], k[i], t[i], v[i], r[i], q[i], cp[i])
     if limit.any():
         i = np.flatnonzero(limit)
-        out[i] = frame.scale[i] * deterministic_put(frame.x[i], t[i], frame.rr[i], frame.qq[i])
+        intrinsic = np.maximum(cp[i] * (s[i] - k[i]), 0.0)  # at expiry, exactly
+        out[i] = np.where(t[i] > 0, frame.scale[i] * deterministic_put(frame.x[i], t[i], frame.rr[i], frame.qq[i]),
+                          intrinsic)
     if early.any():
         i = np.flatnonzero(early)
         (T, vol, rr, qq), state = distinct_states(t[i], v[i], frame.rr[i], frame.qq[i])

@@ -17,6 +17,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
+from attribution.american import american_price
 from attribution.demo import FAULT_KINDS, SCHEMAS, DemoSummary, build_demo
 from attribution.demo.desk import (
     DeskDefinitionError,
@@ -81,16 +82,23 @@ def _state(files: dict[str, pd.DataFrame], day: dt.date) -> pd.DataFrame:
 
 
 def _model(frame: pd.DataFrame) -> np.ndarray:
-    return bsm_price(frame["spot"], frame["strike"], frame["tau"], frame["implied_vol"], frame["rate"],
-                     frame["dividend_yield"], frame["option_type"] == "call")
+    args = (frame["spot"], frame["strike"], frame["tau"], frame["implied_vol"], frame["rate"], frame["dividend_yield"],
+            frame["option_type"] == "call")
+    return np.where(frame["exercise"] == "american", american_price(*args), bsm_price(*args))
 
 
 def _bounds(m: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
-    """No-arbitrage bounds max(cp(S e^-qT - K e^-rT), 0) and (S e^-qT for a call, K e^-rT for a put)."""
+    """No-arbitrage bounds max(cp(S e^-qT - K e^-rT), 0) and (S e^-qT for a call, K e^-rT for a put); American
+    options also at least intrinsic cp(S - K) and at most S (call) or K (put) (common practice, no source)."""
     call = (m["option_type"] == "call").to_numpy()
+    american = (m["exercise"] == "american").to_numpy()
+    sign = np.where(call, 1.0, -1.0)
+    spot, strike = m["spot"].to_numpy(), m["strike"].to_numpy()
     fwd_s = (m["spot"] * np.exp(-m["dividend_yield"] * m["tau"])).to_numpy()
     fwd_k = (m["strike"] * np.exp(-m["rate"] * m["tau"])).to_numpy()
-    return np.maximum(np.where(call, 1.0, -1.0) * (fwd_s - fwd_k), 0.0), np.where(call, fwd_s, fwd_k)
+    lower = np.maximum(sign * (fwd_s - fwd_k), 0.0)
+    lower = np.where(american, np.maximum(lower, sign * (spot - strike)), lower)
+    return lower, np.where(american, np.where(call, spot, strike), np.where(call, fwd_s, fwd_k))
 
 
 def _faulty_marks(built: Built, day: dt.date) -> set[str]:
@@ -170,7 +178,7 @@ def test_row_rules_of_the_contract_hold(built: Built) -> None:
     for day, f in built.nights.items():
         pos, ins, und = f["positions"], f["instruments"], f["underlying_marks"]
         assert (ins["strike"] > 0).all() and (ins["multiplier"] > 0).all() and (und["spot"] > 0).all()
-        assert set(ins["option_type"]) == {"call", "put"} and set(ins["exercise"]) == {"european"}
+        assert set(ins["option_type"]) == {"call", "put"} and set(ins["exercise"]) == {"european", "american"}
         assert ins["currency"].str.fullmatch(r"[A-Z]{3}").all()
         assert (pd.to_datetime(ins["expiry"]).dt.date >= day).all()
         assert ins.notna().all().all() and und.notna().all().all() and f["rate_curves"].notna().all().all()
@@ -201,7 +209,7 @@ def test_clean_marks_are_bsm_prices_strictly_inside_the_bounds(built: Built) -> 
 
 
 def test_clean_marks_agree_with_quantlib(built: Built) -> None:
-    """A sample of clean live marks equals QuantLib's analytic European price to rel 1e-9 (abs: the floor)."""
+    """Clean live marks equal QuantLib: analytic European to rel 1e-9, QdFp American to 1.5e-3 per 100 (+ floor)."""
     day = built.summary.dates[3]
     m = _state(built.nights[day], day)
     m = m[(m["tau"] > 0) & m["implied_vol"].notna() & ~m["underlying"].isin(_faulty_marks(built, day))]
@@ -219,11 +227,20 @@ def test_clean_marks_agree_with_quantlib(built: Built) -> None:
                 ql.YieldTermStructureHandle(ql.FlatForward(today, row.rate, counts)),
                 ql.BlackVolTermStructureHandle(ql.BlackConstantVol(today, ql.NullCalendar(), row.implied_vol, counts)))
             kind = ql.Option.Call if row.option_type == "call" else ql.Option.Put
-            option = ql.EuropeanOption(ql.PlainVanillaPayoff(kind, row.strike),
-                                       ql.EuropeanExercise(ql.Date(expiry.day, expiry.month, expiry.year)))
-            option.setPricingEngine(ql.AnalyticEuropeanEngine(process))
+            ql_expiry = ql.Date(expiry.day, expiry.month, expiry.year)
             floor = load_desk().min_time_value_share * row.spot  # a live mark's least time value
-            assert row.price == pytest.approx(option.NPV(), rel=1e-9, abs=floor), row.instrument_id
+            if row.exercise == "american":  # QuantLib's QdFpAmericanEngine; our standard mode: 1.5e-3 per 100
+                option = ql.VanillaOption(ql.PlainVanillaPayoff(kind, row.strike),
+                                          ql.AmericanExercise(today, ql_expiry))
+                option.setPricingEngine(ql.QdFpAmericanEngine(process, ql.QdFpLegendreTanhSinhScheme(48, 10, 24,
+                                                                                                       1e-9)))
+                intrinsic = max((row.spot - row.strike) * (1 if kind == ql.Option.Call else -1), 0.0)
+                reference, tolerance = max(option.NPV(), intrinsic), floor + 1.5e-5 * row.strike
+            else:
+                option = ql.EuropeanOption(ql.PlainVanillaPayoff(kind, row.strike), ql.EuropeanExercise(ql_expiry))
+                option.setPricingEngine(ql.AnalyticEuropeanEngine(process))
+                reference, tolerance = option.NPV(), floor
+            assert row.price == pytest.approx(reference, rel=1e-9, abs=tolerance), row.instrument_id
     finally:
         ql.Settings.instance().evaluationDate = saved
 

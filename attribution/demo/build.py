@@ -7,7 +7,8 @@ vectorised over instruments and trades:
 
 * listing: the next monthly and the quarterly expiries, strikes on a grid of standard deviations
   around spot; later listings add new expiries and strikes beyond the listed range;
-* marks: the BSM price (:func:`attribution.pricing.bsm_price`) at the smile vol, the curve rate at
+* marks: the BSM price (:func:`attribution.pricing.bsm_price`; American-style single-stock options:
+  :func:`attribution.american.american_price`) at the smile vol, the curve rate at
   the option's time to expiry (ACT/365F) and the dividend yield; ``implied_vol`` is left null for a
   fixed share of instruments of clean books; a live option keeps a tiny time value so that its
   mark lies strictly inside the no-arbitrage bounds;
@@ -33,6 +34,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from numpy.typing import NDArray
 
+from attribution.american import american_price_and_exercised_unchecked
 from attribution.arrays import FloatArray
 from attribution.demo.desk import (
     DAYS_PER_YEAR,
@@ -123,8 +125,21 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments
     sign = np.where(is_call, 1.0, -1.0)
     lower = np.maximum(sign * (spot * np.exp(-div * tau) - strike * np.exp(-rate * tau)), 0.0)
     upper = np.where(is_call, spot * np.exp(-div * tau), strike * np.exp(-rate * tau))
+    american = np.array([u.exercise == "american" for u in desk.underlyings])[und]
+    exercised = np.zeros(live.size, dtype=bool)
+    if american.any():  # listed single-stock options: the American price and its wider bounds
+        a = np.flatnonzero(american)
+        price[a], exercised[a] = american_price_and_exercised_unchecked(
+            spot[a], strike[a], tau[a], vol[a], rate[a], div[a], np.where(is_call[a], 1.0, -1.0))
+        lower[a] = np.maximum(lower[a], sign[a] * (spot[a] - strike[a]))
+        upper[a] = np.where(is_call[a], spot[a], strike[a])
     price = np.where(tau > 0, np.maximum(price, lower + desk.min_time_value_share * spot), price)
-    night = Night(live=live, price=price, vol=np.where(store.null_vol[live], np.nan, vol),
+    # An American mark far from the money hardly moves with vol (or sits in its exercise region) and does not
+    # identify one (README, American exercise): the desk gives its vol; only marks within a standard deviation
+    # of the money leave it to the job.
+    near = np.abs(np.log(strike / spot)) < vol * np.sqrt(tau)
+    null_vol = store.null_vol[live] & ~(american & (exercised | ~near))
+    night = Night(live=live, price=price, vol=np.where(null_vol, np.nan, vol),
                    keep=np.ones(live.size, bool), tau=tau, lower=lower, upper=upper,
                    rows=np.zeros(0, np.int64), quantity=np.zeros(0))
     open_ = tau * DAYS_PER_YEAR >= desk.trading.min_days_to_expiry_new
@@ -271,7 +286,8 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
     instruments = pa.Table.from_arrays([
         instrument_id, pa.array(names[store.und], pa.string()),
         pa.array(np.where(store.is_call, "call", "put"), pa.string()),
-        pa.array(np.full(store.und.size, "european"), pa.string()), pa.array(store.strike, pa.float64()),
+        pa.array(np.array([u.exercise for u in desk.underlyings])[store.und], pa.string()),
+        pa.array(store.strike, pa.float64()),
         pa.array(store.expiry, pa.date32()), pa.array(desk.param("multiplier")[store.und], pa.float64()),
         pa.array(codes[ccy[store.und]], pa.string())], schema=SCHEMAS["instruments"])
     booked = pa.Table.from_arrays([

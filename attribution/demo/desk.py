@@ -43,6 +43,7 @@ class UnderlyingSpec:
     name: str
     description: str
     kind: str
+    exercise: str  # "european" or "american": the style of every option listed on it
     currency: str
     spot: float
     atm_vol: float
@@ -186,6 +187,8 @@ def _check(desk: DeskSpec) -> None:
     for u in desk.underlyings:
         rules.append((u.currency in codes and u.foreign_currency in (*codes, ""),
                       f"underlying {u.name}: currency {u.currency or '?'}{'/' + u.foreign_currency} not defined"))
+        rules.append((u.exercise in ("european", "american"),
+                      f"underlying {u.name}: exercise must be european or american, got {u.exercise!r}"))
         rules.append((u.spot > 0 and u.atm_vol > 0 and u.multiplier > 0,
                       f"underlying {u.name}: spot, atm_vol and multiplier must be > 0"))
     pairs = {(u.foreign_currency, u.currency) for u in desk.underlyings if u.kind == "fx"}
