@@ -116,8 +116,9 @@ def write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, frames: dict[str
     try:
         for table in TABLES:
             con.execute(f"DELETE FROM {table} WHERE as_of = ?", [as_of])
-        for table in ("position_pnl", "book_pnl", "input_exceptions"):
-            _insert(con, table, frames[table])
+        for table in ("position_pnl", "book_pnl", "input_exceptions", "dividend_schedule"):
+            if table in frames:
+                _insert(con, table, frames[table])
         quality = quality_frame(quality_series(con, as_of), as_of)
         _insert(con, "book_quality", quality)
         _insert(con, "runs", frames["runs"])

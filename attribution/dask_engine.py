@@ -216,7 +216,7 @@ def merge_parts(parts: list[PreparedNight], keys: tuple[PositionKeys, PositionKe
     return PreparedNight(parts[0].as_of, parts[0].prior_as_of, positions, books,
                          merge_exceptions([p.exceptions for p in parts]), parts[0].hashes,
                          sum(p.positions_in for p in parts), sum(p.rejected_positions for p in parts),
-                         unaccounted, stages)
+                         unaccounted, stages, parts[0].dividend_schedule)  # every part reads every dividend
 
 
 def _threads(client: Any) -> int:
@@ -261,7 +261,7 @@ def prepare_night_dask(config: JobConfig, as_of: dt.date, prior: dt.date | None 
             night = _on_cluster(own, config, as_of, prior, watch)
     return PreparedNight(night.as_of, night.prior_as_of, night.positions, night.books, night.exceptions,
                          night.hashes, night.positions_in, night.rejected_positions, night.unaccounted,
-                         tuple(watch.stages))
+                         tuple(watch.stages), night.dividend_schedule)
 
 
 __all__ = ["BookGroup", "PositionKeys", "book_groups", "cluster_client", "merge_parts", "position_keys",

@@ -102,3 +102,25 @@ def income_per_unit(tonight: pd.DataFrame, underlying: NDArray[np.object_]) -> F
         return np.zeros(len(underlying))
     per_underlying = tonight.groupby("underlying", sort=False)["amount"].sum()
     return per_underlying.reindex(pd.Index(np.asarray(underlying, dtype=object))).fillna(0.0).to_numpy(dtype=float)
+
+
+def schedule_frame(as_of: dt.date, prior_as_of: dt.date, run: pd.DataFrame, prior: pd.DataFrame,
+                   pairs: pd.DataFrame, curves: pd.DataFrame, basis: TimeBasis) -> pd.DataFrame:
+    """The ``dividend_schedule`` rows of a night: every dividend in force on ``as_of`` (ex_date after it) with
+    its present value on the curve of each currency its underlying's instruments trade in, and those that
+    went ex tonight (``went_ex``, no present value).
+
+    ``pairs``: distinct (underlying, currency) of the run date's instruments.
+    """
+    day = np.datetime64(as_of, "D")
+    ahead = run[run["ex_date"].to_numpy(dtype="datetime64[D]") > day].assign(went_ex=False)
+    gone = going_ex(prior, run, prior_as_of, as_of).assign(went_ex=True)
+    rows = pd.concat([ahead, gone], ignore_index=True).merge(pairs, on="underlying", how="inner")
+    t_years = basis.year_fraction(day, rows["ex_date"].to_numpy(dtype="datetime64[D]")) if len(rows) else np.zeros(0)
+    rate, _ = zero_rates(curves, rows["currency"].to_numpy(dtype=object), t_years)
+    pv = rows["amount"].to_numpy(dtype=float) * np.exp(-rate * t_years)
+    rows["pv"] = np.where(rows["went_ex"].to_numpy(dtype=bool), np.nan, pv)
+    rows.insert(0, "as_of", pd.Timestamp(as_of))
+    rows["ex_date"] = rows["ex_date"].astype("datetime64[s]")
+    columns = ["as_of", "underlying", "currency", "ex_date", "amount", "pv", "went_ex"]
+    return rows[columns].sort_values(["underlying", "currency", "ex_date"]).reset_index(drop=True)

@@ -26,7 +26,7 @@ from attribution.config import ConfigError, JobConfig
 from attribution.contract import clean_night
 from attribution.controls import BREACH
 from attribution.corporate_actions import restate_prior
-from attribution.dividends import going_ex
+from attribution.dividends import going_ex, schedule_frame
 from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
 from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.lifecycle import match_legs
@@ -57,6 +57,7 @@ class PreparedNight:
     rejected_positions: int
     unaccounted: tuple[str, ...]
     stages: tuple[tuple[str, float], ...]
+    dividend_schedule: pd.DataFrame | None = None  # rows of the dividend_schedule table (None: not computed)
 
 
 # The step that computes a night's tables: (config, as_of, prior, progress) -> PreparedNight.
@@ -152,6 +153,8 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     positions = stale_flags(positions, market1.ids[stale].to_numpy())
     went_ex = going_ex(clean0.dividends, clean1.dividends, prior_as_of, as_of)
     positions = corporate_flags(dividend_income(positions, went_ex), restated, went_ex)
+    pairs = pd.DataFrame({"underlying": market1.underlying, "currency": market1.currency}).drop_duplicates()
+    schedule = schedule_frame(as_of, prior_as_of, clean1.dividends, clean0.dividends, pairs, clean1.curves, basis)
     watch.lap("explain")
     positions["limit_state"] = position_limit_states(positions, config)
     ledger = position_books(raw0, raw1, log.frame())
@@ -162,7 +165,7 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     watch.lap("controls")
     hashes = {raw.path(f): h for raw in (raw0, raw1) for f, h in raw.hashes.items()}
     return PreparedNight(as_of, prior_as_of, positions, books, exceptions, hashes, positions_in, len(rejected),
-                         missing, tuple(watch.stages))
+                         missing, tuple(watch.stages), schedule)
 
 
 def _runs_frame(night: PreparedNight, config: JobConfig, run_id: str, started: dt.datetime,
@@ -238,6 +241,8 @@ def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
     exit_code = EXIT_FINDINGS if findings else EXIT_OK
     frames = {"position_pnl": night.positions, "book_pnl": night.books, "input_exceptions": night.exceptions,
               "runs": _runs_frame(night, config, str(uuid.uuid4()), started, exit_code, time.perf_counter() - t0)}
+    if night.dividend_schedule is not None:
+        frames["dividend_schedule"] = night.dividend_schedule
     con = session.con
     quality = write_night(con, as_of, frames)
     watch.lap("archive")

@@ -86,6 +86,13 @@ INPUT_EXCEPTIONS: tuple[tuple[str, str], ...] = (
     ("book", "VARCHAR"),   # the book of the position a row is about; NULL for rows of other files
 )
 
+# The dividends in force on the run date per underlying and currency (present value on that currency's curve),
+# and those that went ex during the night (went_ex, pv NULL). See attribution.dividends.schedule_frame.
+DIVIDEND_SCHEDULE: tuple[tuple[str, str], ...] = (
+    ("as_of", "DATE"), ("underlying", "VARCHAR"), ("currency", "VARCHAR"), ("ex_date", "DATE"),
+    ("amount", "DOUBLE"), ("pv", "DOUBLE"), ("went_ex", "BOOLEAN"),
+)
+
 BOOK_QUALITY: tuple[tuple[str, str], ...] = (
     ("as_of", "DATE"), ("book", "VARCHAR"), ("nights", "BIGINT"), ("provisional", "BOOLEAN"),
     ("spearman", "DOUBLE"), ("ks", "DOUBLE"), ("zone", "VARCHAR"),
@@ -108,4 +115,5 @@ TABLES: dict[str, tuple[tuple[str, str], ...]] = {
     "input_exceptions": INPUT_EXCEPTIONS,
     "book_quality": BOOK_QUALITY,
     "runs": RUNS,
+    "dividend_schedule": DIVIDEND_SCHEDULE,
 }

@@ -126,6 +126,10 @@ class BookPage:
     exception_rules: tuple[tuple[str, str, int], ...]
     vol_parts: tuple[FigureRow, ...] = ()   # by expiry bucket: label, (positions,), VOL_PART_COLUMNS
     vol_parts_total: FigureRow | None = None
+    dividend_schedule: tuple[FigureRow, ...] = ()  # underlying; (currency, next ex-date, count, last ex-date);
+    #                                                (next amount, its present value, present value of all)
+    ex_dates: tuple[FigureRow, ...] = ()           # underlying; (currency, positions); (amount, delta, dividend
+    #                                                term, cash dividends, residual, total)
 
 
 

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import datetime as dt
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import duckdb
 import pandas as pd
@@ -54,6 +54,8 @@ class NightFrames:
     history: pd.DataFrame
     run: pd.DataFrame
     vol_parts: pd.DataFrame
+    dividend_schedule: pd.DataFrame = field(default_factory=pd.DataFrame)  # per book and underlying held tonight
+    ex_dates: pd.DataFrame = field(default_factory=pd.DataFrame)           # per book and underlying gone ex tonight
 
 
 def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: int) -> NightFrames:
@@ -121,7 +123,33 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
         run=_frame(con, f"""SELECT {_columns(RUNS)} FROM runs WHERE as_of = ?
                             ORDER BY finished_at DESC NULLS LAST, started_at DESC LIMIT 1""", [as_of]),
         vol_parts=_vol_parts(con, as_of),
+        **(_dividends(con, as_of) if "dividend_schedule" in tables else {}),
     )
+
+
+def _dividends(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> dict[str, pd.DataFrame]:
+    """Per book: the schedule in force for each underlying it holds tonight, and tonight's ex-date P&L."""
+    schedule = _frame(con, """
+        WITH held AS (SELECT DISTINCT book, underlying, currency FROM position_pnl
+                      WHERE as_of = ? AND quantity_run_date <> 0),
+             s AS (SELECT * FROM dividend_schedule WHERE as_of = ? AND NOT went_ex)
+        SELECT h.book, s.underlying, s.currency, strftime(min(s.ex_date), '%Y-%m-%d') AS next_ex_date,
+               arg_min(s.amount, s.ex_date) AS next_amount, arg_min(s.pv, s.ex_date) AS next_pv,
+               count(*) AS dividends, strftime(max(s.ex_date), '%Y-%m-%d') AS last_ex_date, sum(s.pv) AS schedule_pv
+        FROM held h JOIN s ON s.underlying = h.underlying AND s.currency = h.currency
+        GROUP BY ALL ORDER BY h.book, s.underlying, s.currency""", [as_of, as_of])
+    ex_dates = _frame(con, """
+        WITH g AS (SELECT underlying, currency, sum(amount) AS amount FROM dividend_schedule
+                   WHERE as_of = ? AND went_ex GROUP BY ALL)
+        SELECT p.book, p.underlying, p.currency, any_value(g.amount) AS amount, count(*) AS positions,
+               sum(p.pnl_delta) AS pnl_delta, sum(p.pnl_dividend) AS pnl_dividend,
+               sum(CASE WHEN p.kind = 'underlying' AND p.status IN ('carried', 'closed')
+                        THEN p.quantity * p.multiplier * p.fx_rate * g.amount ELSE 0 END) AS cash_dividends,
+               sum(p.pnl_residual) AS pnl_residual, sum(p.pnl_total) AS pnl_total
+        FROM position_pnl p JOIN g ON g.underlying = p.underlying AND g.currency = p.currency
+        WHERE p.as_of = ? AND p.status IN ('carried', 'closed', 'expired')
+        GROUP BY ALL ORDER BY p.book, p.underlying, p.currency""", [as_of, as_of])
+    return {"dividend_schedule": schedule, "ex_dates": ex_dates}
 
 
 def _vol_parts(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> pd.DataFrame:

@@ -228,6 +228,11 @@ def book_pages(frames: NightFrames, config: JobConfig) -> list[BookPage]:
     positions = _figure_rows(frames.positions, "trade_id", POSITION_TEXT[1:], POSITION_VALUES)
     unpriced = _figure_rows(frames.unpriced, "trade_id", POSITION_TEXT[1:], POSITION_VALUES)
     vol_parts = _vol_parts(frames.vol_parts)
+    schedule = _figure_rows(frames.dividend_schedule, "underlying",
+                            ("currency", "next_ex_date", "dividends", "last_ex_date"),
+                            ("next_amount", "next_pv", "schedule_pv"))
+    ex_dates = _figure_rows(frames.ex_dates, "underlying", ("currency", "positions"),
+                            ("amount", "pnl_delta", "pnl_dividend", "cash_dividends", "pnl_residual", "pnl_total"))
     numeric = [c for c, kind in BOOK_PNL if kind == "DOUBLE"]
     pages = []
     for record in frames.books.to_dict("records"):
@@ -255,7 +260,8 @@ def book_pages(frames: NightFrames, config: JobConfig) -> list[BookPage]:
             positions=positions.get(name, ()), unpriced=unpriced.get(name, ()),
             history_lines=lines, history_residual=cumulative, quality=q, exceptions=exceptions.get(name, ()),
             exception_rules=_rule_counts(exceptions.get(name, ())),
-            vol_parts=vol_parts.get(name, ((), None))[0], vol_parts_total=vol_parts.get(name, ((), None))[1]))
+            vol_parts=vol_parts.get(name, ((), None))[0], vol_parts_total=vol_parts.get(name, ((), None))[1],
+            dividend_schedule=schedule.get(name, ()), ex_dates=ex_dates.get(name, ())))
     pages.sort(key=_attention)
     return pages
 
