@@ -28,11 +28,12 @@ import attribution.engine as engine_module
 from attribution.cli import main
 from attribution.config import JobConfig
 from attribution.schema import TABLES
+from tests.contract_files import put_rows
 from tests.mini_desk import PRIOR, RUN, write_mini_desk
 
 VOLATILE_RUN_COLUMNS = ["run_id", "started_at", "finished_at", "seconds"]
 ORDER = {"position_pnl": ["trade_id"], "book_pnl": ["book"], "input_exceptions": ["file", "key", "rule", "detail"],
-         "book_quality": ["book"], "runs": ["as_of"]}
+         "book_quality": ["book"], "runs": ["as_of"], "dividend_schedule": ["underlying", "currency", "ex_date"]}
 
 
 # ---------------------------------------------------------------- helpers shared with other archive-level tests
@@ -78,8 +79,11 @@ def read_archive(path: Path, as_of: dt.date) -> tuple[dict[str, tuple[int, int]]
 
 @pytest.fixture(scope="module")
 def desk(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """The mini desk, plus a run-date position in an unknown instrument (so every table gets rows)."""
+    """The mini desk, plus a run-date position in an unknown instrument and a dividend beyond every expiry
+    (so every table gets rows)."""
     root = write_mini_desk(tmp_path_factory.mktemp("archive") / "data")
+    for day in (PRIOR, RUN):
+        put_rows(root, day, "dividends", [{"underlying": "ZEN", "ex_date": dt.date(2027, 12, 1), "amount": 0.5}])
     path = root / f"as_of={RUN.isoformat()}" / "positions.parquet"
     positions = pq.read_table(path)
     extra = pa.Table.from_pylist([{"trade_id": "TX", "book": "Index vol", "instrument_id": "NO-SUCH-OPTION",
@@ -243,7 +247,7 @@ def test_run_record_holds_input_hashes_and_settings(archived, desk):
     record = rows["runs"].iloc[0]
     hashes = json.loads(record["input_hashes"])
     files = sorted(p for d in (PRIOR, RUN) for p in (desk / f"as_of={d.isoformat()}").glob("*.parquet"))
-    assert len(files) == 12
+    assert len(files) == 14  # six files and a dividends file per date
     assert hashes == {str(p): hashlib.sha256(p.read_bytes()).hexdigest() for p in files}
     settings = json.loads(record["job_settings"])
     expected = JobConfig(data_root=desk, archive_path=Path("a.duckdb"), reports_dir=Path("reports"),
