@@ -41,6 +41,7 @@ def test_defaults_without_a_job_file():
     ("[limits]\nresidual_abz = 5\n", "unknown key(s) residual_abz"),
     ("[time]\nholidays = ['2026-12-25']\n", "TOML date"),
     ("[job\n", "not valid TOML"),
+    ("[job]\namerican_precision = 'high'\n", "american_precision 'high' is not one of standard, precise"),
 ])
 def test_bad_job_files_are_refused_naming_the_file_and_key(tmp_path, text, message):
     """Every refusal names the job file and the key or rule."""
@@ -55,3 +56,11 @@ def test_missing_job_file_is_refused(tmp_path):
     """A job file that does not exist is a usage error naming it."""
     with pytest.raises(ConfigError, match="job file not found"):
         load_job(tmp_path / "absent.toml")
+
+
+def test_american_precision_is_a_job_option(tmp_path):
+    """[job] american_precision = "precise" selects the precise American scheme (README, American exercise)."""
+    path = tmp_path / "job.toml"
+    path.write_text('[job]\namerican_precision = "precise"\n')
+    assert load_job(path).american_precision == "precise"
+    assert JobConfig().american_precision == "standard"
