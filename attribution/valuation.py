@@ -64,6 +64,16 @@ def _american_rows(american: BoolArray | None, n: int) -> NDArray[np.intp]:
     return np.zeros(0, dtype=np.intp) if american is None else np.flatnonzero(american[:n])
 
 
+def _american_distinct(american: BoolArray | None, group: NDArray[np.intp] | None, values: tuple[FloatArray, ...],
+                       ) -> tuple[NDArray[np.intp], NDArray[np.intp], NDArray[np.intp]]:
+    """The American rows, the rows computed for them (one per distinct state) and, per American row, its own."""
+    rows = _american_rows(american, values[0].size)
+    if not rows.size:
+        return rows, rows, rows
+    first, inverse = _distinct(rows, group, values)
+    return rows, rows[first], inverse
+
+
 def value(strike: FloatArray, cp: FloatArray, state: MarketState, american: BoolArray | None = None, *,
           scheme: Scheme = STANDARD, group: NDArray[np.intp] | None = None) -> FloatArray:
     """Model price per unit of underlying."""
@@ -77,10 +87,8 @@ def value_and_exercised(strike: FloatArray, cp: FloatArray, state: MarketState, 
     s, k, t, v, r, q = state.escrowed_spot, strike, state.tau_years, state.vol, state.rate, state.div_yield
     price = price_unchecked(s, k, t, v, r, q, cp)
     exercised = np.zeros(s.size, dtype=bool)
-    rows = _american_rows(american, s.size)
+    rows, u, inverse = _american_distinct(american, group, (s, k, t, v, r, q, cp))
     if rows.size:
-        first, inverse = _distinct(rows, group, (s, k, t, v, r, q, cp))
-        u = rows[first]
         p, e = american_price_and_exercised_unchecked(s[u], k[u], t[u], v[u], r[u], q[u], cp[u], scheme=scheme)
         price[rows], exercised[rows] = p[inverse], e[inverse]
     return price, exercised
@@ -96,10 +104,8 @@ def value_and_greeks(strike: FloatArray, cp: FloatArray, state: MarketState, ame
     s, k, t, v, r, q = state.escrowed_spot, strike, state.tau_years, state.vol, state.rate, state.div_yield
     g = greeks_unchecked(s, k, t, v, r, q, cp)
     exercised = np.zeros(s.size, dtype=bool)
-    rows = _american_rows(american, s.size)
+    rows, u, inverse = _american_distinct(american, group, (s, k, t, v, r, q, cp))
     if rows.size:
-        first, inverse = _distinct(rows, group, (s, k, t, v, r, q, cp))
-        u = rows[first]
         ga, e = american_greeks_and_exercised_unchecked(s[u], k[u], t[u], v[u], r[u], q[u], cp[u], scheme=scheme,
                                                         bumps=full)
         for name in Greeks.__slots__:
