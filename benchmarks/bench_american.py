@@ -3,6 +3,7 @@
 Usage::
 
     python benchmarks/bench_american.py [--n 20000] [--quantlib-sample 1000] [--repeats 3]
+    python benchmarks/bench_american.py --accuracy     # the README's accuracy table only
 
 Random American options (calls and puts; S/K 0.5-2, tau 1 day-3 years, vol 5-100 %, r 0-8 %, q 0-10 %).
 
@@ -38,7 +39,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))  # the
 from american_sample import QuantLibAmerican, random_american  # noqa: E402
 from option_sample import OptionSample  # noqa: E402
 
-from attribution.american import FAST, STANDARD, Scheme, american_price  # noqa: E402
+from attribution.american import FAST, PRECISE, STANDARD, Scheme, american_price  # noqa: E402
 from attribution.american_greeks import american_greeks  # noqa: E402
 from attribution.valuation import MarketState, revaluation_shares, value_and_exercised, value_and_greeks  # noqa: E402
 
@@ -124,12 +125,27 @@ def night_share(repeats: int, scheme: Scheme) -> float:
     return best_of(repeats, work)
 
 
+def accuracy_table() -> int:
+    """Price errors per 100 of strike of each scheme on the tests' 2,000 options (seed 20260) against QuantLib."""
+    import QuantLib as ql
+
+    o = random_american(2000, seed=20260)
+    reference = QuantLibAmerican(ql, "legendre_tanh_sinh").prices(o)
+    for name, scheme in (("FAST", FAST), ("STANDARD", STANDARD), ("PRECISE", PRECISE)):
+        print(f"{name:9s} {error_line(o, american_price(*o.args(), scheme=scheme), reference)}")
+    return 0
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--n", type=int, default=20000, help="options priced by our kernel")
     parser.add_argument("--quantlib-sample", type=int, default=1000, help="options priced by the QuantLib loops")
     parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument("--accuracy", action="store_true",
+                        help="only print the README's accuracy table (the tests' 2,000 options against QuantLib)")
     args = parser.parse_args(argv)
+    if args.accuracy:
+        return accuracy_table()
     print(f"load average {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores")
     o = random_american(args.n, seed=2024)
     try:
