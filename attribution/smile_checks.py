@@ -14,7 +14,8 @@ for the message; the caller turns them into ledger warnings.
   marked vol must be convex in strike, C(K2) <= l C(K1) + (1 - l) C(K3) with l = (K3 - K2) / (K3 - K1)
   (a long butterfly cannot cost less than nothing; Carr and Madan, "A note on sufficient conditions
   for no arbitrage", Finance Research Letters 2, 2005). A put's vol is read as the call's at its strike
-  (put-call parity); where two marks share a strike, the first in the file stands for it.
+  (put-call parity); where two marks share a strike, the first in the file stands for it, and every mark
+  at a flagged strike is flagged.
 * Calendar: at a fixed forward log-moneyness k = ln(K / F), total implied variance vol^2 tau must not
   fall from one expiry to the next (same source). Each mark of an expiry is compared with the total
   variance of the previous expiry of its underlying at the same k, interpolated linearly between that
@@ -44,20 +45,25 @@ class Findings:
     bound: FloatArray
 
 
-def off_smile(smile: IntArray, strike: FloatArray, vol: FloatArray, fitted: FloatArray,
-              quadratic: NDArray[np.bool_], distance: float) -> Findings:
-    """Marks more than ``distance`` (decimal vol) from their smile's fit and from both neighbours' distance."""
-    residual = vol - fitted
+def _strike_pairs(smile: IntArray, strike: FloatArray) -> tuple[IntArray, IntArray]:
+    """One code per (smile, strike), numbered in smile then strike order: per mark, and each code's first mark."""
     order = np.lexsort((strike, smile))
     s, k = smile[order], strike[order]
     new_pair = np.ones(s.size, dtype=bool)
     new_pair[1:] = (s[1:] != s[:-1]) | (k[1:] != k[:-1])
-    pair_sorted = np.cumsum(new_pair) - 1                  # one code per (smile, strike), in strike order
     pair = np.empty(s.size, dtype=np.intp)
-    pair[order] = pair_sorted
-    n_pairs = int(pair_sorted[-1]) + 1 if s.size else 0
+    pair[order] = np.cumsum(new_pair) - 1
+    return pair, order[new_pair]
+
+
+def off_smile(smile: IntArray, strike: FloatArray, vol: FloatArray, fitted: FloatArray,
+              quadratic: NDArray[np.bool_], distance: float) -> Findings:
+    """Marks more than ``distance`` (decimal vol) from their smile's fit and from both neighbours' distance."""
+    residual = vol - fitted
+    pair, first_mark = _strike_pairs(smile, strike)
+    n_pairs = first_mark.size
     mean = np.bincount(pair, residual, n_pairs) / np.maximum(np.bincount(pair, minlength=n_pairs), 1)
-    pair_smile = s[new_pair]
+    pair_smile = smile[first_mark]
     start = np.searchsorted(pair_smile, pair_smile, side="left")
     end = np.searchsorted(pair_smile, pair_smile, side="right") - 1
     j = np.arange(n_pairs)
@@ -72,12 +78,8 @@ def off_smile(smile: IntArray, strike: FloatArray, vol: FloatArray, fitted: Floa
 
 def butterfly(smile: IntArray, strike: FloatArray, spot: FloatArray, tau: FloatArray, vol: FloatArray,
               rate: FloatArray, div_yield: FloatArray) -> Findings:
-    """Middle marks of neighbouring strike triples whose call prices are not convex in strike."""
-    order = np.lexsort((strike, smile))
-    s, k = smile[order], strike[order]
-    first = np.ones(s.size, dtype=bool)
-    first[1:] = (s[1:] != s[:-1]) | (k[1:] != k[:-1])
-    keep = order[first]                       # one mark per distinct strike, sorted by smile then strike
+    """Every mark at the middle strike of a neighbouring triple whose call prices are not convex in strike."""
+    pair, keep = _strike_pairs(smile, strike)   # keep: one mark per distinct strike, by smile then strike
     if keep.size < 3:
         return Findings(np.zeros(0, np.intp), np.zeros(0), np.zeros(0))
     call = price_unchecked(spot[keep], strike[keep], tau[keep], vol[keep], rate[keep], div_yield[keep],
@@ -86,8 +88,12 @@ def butterfly(smile: IntArray, strike: FloatArray, spot: FloatArray, tau: FloatA
     same = (g[:-2] == g[1:-1]) & (g[1:-1] == g[2:])
     lam = (kk[2:] - kk[1:-1]) / (kk[2:] - kk[:-2])
     bound = lam * call[:-2] + (1.0 - lam) * call[2:]
-    hit = np.flatnonzero(same & (call[1:-1] > bound + PRICE_SLACK * spot[keep[1:-1]]))
-    return Findings(keep[hit + 1], call[1:-1][hit], bound[hit])
+    bad = same & (call[1:-1] > bound + PRICE_SLACK * spot[keep[1:-1]])
+    bad_pair = np.zeros(keep.size, dtype=bool)
+    bad_pair[1:-1] = bad
+    hit = np.flatnonzero(bad_pair[pair])
+    at = pair[hit] - 1                            # index into the triples' arrays
+    return Findings(hit, call[1:-1][at], bound[at])
 
 
 def calendar(smile: IntArray, previous: IntArray, k: FloatArray, total_variance: FloatArray) -> Findings:

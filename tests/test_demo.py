@@ -249,7 +249,8 @@ def test_planted_faults_are_in_the_data_as_the_summary_says(built: Built) -> Non
     """Stale, fat-finger and missing marks once each in the faulty book; noisy marks on some nights."""
     s, desk = built.summary, load_desk()
     kinds = {f.kind for f in s.faults}
-    assert kinds == set(FAULT_KINDS) == {"stale_mark", "fat_finger_mark", "missing_mark", "noisy_marks"}
+    assert kinds == set(FAULT_KINDS) == {"stale_mark", "fat_finger_mark", "missing_mark", "off_smile_mark",
+                                         "smile_arbitrage_mark", "noisy_marks"}
     faulty_book = next(b.name for b in desk.books if b.marks == "planted_faults")
     for kind in ("stale_mark", "fat_finger_mark", "missing_mark"):
         (fault,) = _faults(built, kind)
@@ -272,6 +273,35 @@ def test_planted_faults_are_in_the_data_as_the_summary_says(built: Built) -> Non
         else:
             assert row["price"] / _model(marks.loc[[fault.instrument_or_trade]])[0] == pytest.approx(
                 desk.faults.fat_finger_factor, rel=1e-9)
+
+
+def test_smile_faults_lift_one_strike_off_its_smile_with_consistent_marks(built: Built) -> None:
+    """The off-smile and smile-arbitrage faults: every mark of one strike of a held series, once each in the faulty
+    book, vol lifted (by 4 vol points off smile), each price still BSM at its vol (rel 1e-9); the arbitrage's call is
+    above the mix of its neighbouring strikes' calls (Carr and Madan 2005's butterfly condition broken)."""
+    desk = load_desk()
+    faulty_book = next(b.name for b in desk.books if b.marks == "planted_faults")
+    for kind in ("off_smile_mark", "smile_arbitrage_mark"):
+        (fault,) = _faults(built, kind)
+        assert fault.book == faulty_book
+        marks = _state(built.nights[fault.as_of], fault.as_of).set_index("instrument_id")
+        row = marks.loc[fault.instrument_or_trade]
+        same = marks[(marks["underlying"] == row["underlying"]) & (marks["expiry"] == row["expiry"])]
+        at = same[same["strike"] == row["strike"]]
+        assert at["implied_vol"].nunique() == 1 and at["implied_vol"].notna().all()
+        np.testing.assert_allclose(at["price"], _model(at), rtol=1e-9)
+        if kind == "off_smile_mark":
+            assert "instead of" in fault.detail and f"{row['implied_vol']:.4f}" in fault.detail
+            continue
+        by_strike = same.groupby("strike").agg(implied_vol=("implied_vol", "max"), spot=("spot", "first"),
+                                               tau=("tau", "first"), rate=("rate", "first"),
+                                               dividend_yield=("dividend_yield", "first")).reset_index()
+        by_strike = by_strike[by_strike["implied_vol"].notna()]
+        k = by_strike["strike"].to_numpy()
+        i = int(np.flatnonzero(k == row["strike"])[0])
+        c = _model(by_strike.assign(option_type="call"))
+        lam = (k[i + 1] - k[i]) / (k[i + 1] - k[i - 1])
+        assert c[i] > lam * c[i - 1] + (1 - lam) * c[i + 1]
 
 
 def test_noisy_book_marks_are_off_the_model_on_its_noisy_nights_only(built: Built) -> None:

@@ -45,7 +45,8 @@ def test_demo_archives_every_night_and_conserves_positions(demo):
 
 
 def test_planted_faults_are_caught(demo, tmp_path):
-    """Stale mark -> warning; fat-finger mark -> a mark gap on that instrument; missing mark -> rejections."""
+    """Stale mark -> warning; fat-finger mark -> a mark gap on that instrument; missing mark -> rejections;
+    off-smile mark -> `off smile` only; butterfly in the marks -> `smile arbitrage`."""
     into, _ = demo
     faults = build_demo(tmp_path / "again", business_days=8).faults  # same seed: the same faults
     con = duckdb.connect(str(into / "archive.duckdb"), read_only=True)
@@ -59,9 +60,16 @@ def test_planted_faults_are_caught(demo, tmp_path):
             gap = con.execute("SELECT max(abs(pnl_mark_gap)) FROM position_pnl WHERE as_of = ? AND instrument_id = ?",
                               [day, fault.instrument_or_trade]).fetchone()[0]
             assert gap > 1_000.0
+        elif fault.kind in ("off_smile_mark", "smile_arbitrage_mark"):
+            rules = {r for (r,) in con.execute("SELECT rule FROM input_exceptions WHERE as_of = ? AND key = ? "
+                                               "AND severity = 'warning'", [day, fault.instrument_or_trade]).fetchall()}
+            assert ("off smile" if fault.kind == "off_smile_mark" else "smile arbitrage") in rules
+            if fault.kind == "off_smile_mark":
+                assert "smile arbitrage" not in rules
         elif fault.kind == "missing_mark":
             rejected = con.execute("SELECT count(*) FROM input_exceptions WHERE as_of = ? AND severity = 'rejected' "
                                    "AND detail LIKE '%no usable option mark%'", [day]).fetchone()[0]
             assert rejected >= 1
     con.close()
-    assert {f.kind for f in faults} >= {"stale_mark", "fat_finger_mark", "missing_mark"}
+    assert {f.kind for f in faults} >= {"stale_mark", "fat_finger_mark", "missing_mark", "off_smile_mark",
+                                        "smile_arbitrage_mark"}

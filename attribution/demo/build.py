@@ -63,7 +63,8 @@ from attribution.pricing import bsm_greeks, bsm_price
 
 DEFAULT_START = dt.date(2025, 11, 3)
 SCHEMAS: dict[str, pa.Schema] = {k: v for k, v in CONTRACT_SCHEMAS.items() if k != "books"}  # no desks yet
-FAULT_KINDS = ("stale_mark", "fat_finger_mark", "missing_mark", "noisy_marks")
+FAULT_KINDS = ("stale_mark", "fat_finger_mark", "missing_mark", "off_smile_mark", "smile_arbitrage_mark",
+               "noisy_marks")
 
 
 @dataclass(frozen=True, slots=True)
@@ -141,7 +142,7 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments
     null_vol = store.null_vol[live] & ~(american & (exercised | ~near))
     night = Night(live=live, price=price, vol=np.where(null_vol, np.nan, vol),
                    keep=np.ones(live.size, bool), tau=tau, lower=lower, upper=upper,
-                   rows=np.zeros(0, np.int64), quantity=np.zeros(0))
+                   rows=np.zeros(0, np.int64), quantity=np.zeros(0), spot=spot, rate=rate, div=div)
     open_ = tau * DAYS_PER_YEAR >= desk.trading.min_days_to_expiry_new
     z = np.log(strike / spot) / (vol * np.sqrt(np.maximum(tau, 1e-9)))
     series = series_key(und, store.expiry[live]) * 2 + is_call

@@ -52,6 +52,9 @@ class Night:
     upper: FloatArray
     rows: IntArray
     quantity: FloatArray
+    spot: FloatArray         # the rest of each live instrument's state, to reprice a planted mark
+    rate: FloatArray
+    div: FloatArray
 
 
 @dataclass(frozen=True, slots=True)
