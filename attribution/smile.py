@@ -16,7 +16,8 @@ money moves ``skew`` only. The fit is weighted least squares with prior weights
 ``1 / (1 + (x / 2)^2)`` (near-the-money marks count most, wings stay in), made robust by
 iteratively reweighted least squares with Tukey's bisquare weights (Beaton and Tukey,
 Technometrics 16, 1974; tuning constant 4.685, scale 1.4826 x the median absolute residual, floored
-at ``scale_floor``), so that one bad mark does not drag its smile: it stays in its own residual.
+at ``scale_floor``, taken from the plain fit and again halfway through the iterations), so that one
+bad mark does not drag its smile: it stays in its own residual.
 All smiles are fitted at once from grouped normal equations (``np.bincount`` sums).
 A smile with fewer than :data:`MIN_STRIKES` distinct strikes gets a level only (the weighted mean
 vol; skew and curvature 0), and :attr:`SmileFit.quadratic` says which is which.
@@ -113,11 +114,19 @@ def reference_scale(smile: IntArray, vol: FloatArray, tau_years: FloatArray, n_s
     return mean_vol * np.sqrt(mean_tau)
 
 
+def grouped_order(smile: IntArray, values: FloatArray) -> IntArray:
+    """Indexes sorting by smile, then by ``values`` within a smile: one float argsort of ``smile + scaled value``
+    (several times faster than a two-key lexsort; the scaled value lies in [0, 0.5], resolved to ~1e-11)."""
+    lo, hi = (float(values.min()), float(values.max())) if values.size else (0.0, 0.0)
+    span = hi - lo if hi > lo else 1.0
+    return np.argsort(smile + 0.5 * (values - lo) / span, kind="stable")
+
+
 def distinct_strikes(smile: IntArray, strike: FloatArray, n_smiles: int) -> NDArray[np.int64]:
     """How many distinct strikes each smile has."""
     if smile.size == 0:
         return np.zeros(n_smiles, dtype=np.int64)
-    order = np.lexsort((strike, smile))
+    order = grouped_order(smile, strike)
     s, k = smile[order], strike[order]
     first = np.ones(s.size, dtype=bool)
     first[1:] = (s[1:] != s[:-1]) | (k[1:] != k[:-1])
@@ -153,7 +162,7 @@ def _solve(smile: IntArray, x: FloatArray, vol: FloatArray, w: FloatArray, n: in
 
 def _group_median(smile: IntArray, values: FloatArray, n: int) -> FloatArray:
     """Lower median of ``values`` per smile (NaN for an empty smile)."""
-    order = np.lexsort((values, smile))
+    order = grouped_order(smile, values)
     counts = np.bincount(smile, minlength=n)
     starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
     out = np.full(n, np.nan)
@@ -170,9 +179,11 @@ def fit_smiles(smile: IntArray, x: FloatArray, vol: FloatArray, strike: FloatArr
     prior_w = 1.0 / (1.0 + 0.25 * x * x)
     w = prior_w
     coef = _solve(smile, x, vol, w, n_smiles, quadratic, None)
-    for _ in range(iterations):
+    spread = np.full(n_smiles, scale_floor)
+    for i in range(iterations):
         residual = vol - (coef[smile, 0] + coef[smile, 1] * x + coef[smile, 2] * x * x)
-        spread = np.maximum(MAD_TO_SIGMA * _group_median(smile, np.abs(residual), n_smiles), scale_floor)
+        if i % 2 == 0:  # the residual scale, from the plain fit and again halfway (a median is the costly step)
+            spread = np.maximum(MAD_TO_SIGMA * _group_median(smile, np.abs(residual), n_smiles), scale_floor)
         u = residual / (BISQUARE_C * spread[smile])
         w = prior_w * np.where(np.abs(u) < 1.0, (1.0 - u * u) ** 2, 0.0)
         # A level-only smile keeps plain weights: with one or two strikes there is no outlier to tell.

@@ -31,6 +31,7 @@ from numpy.typing import NDArray
 
 from attribution.arrays import FloatArray, IntArray
 from attribution.pricing import price_unchecked
+from attribution.smile import grouped_order
 
 PRICE_SLACK = 1e-6        # butterfly slack, share of spot: rounding of quoted vols is not arbitrage
 VARIANCE_SLACK = 1e-6     # calendar slack, total variance (vol^2 x years)
@@ -47,7 +48,7 @@ class Findings:
 
 def _strike_pairs(smile: IntArray, strike: FloatArray) -> tuple[IntArray, IntArray]:
     """One code per (smile, strike), numbered in smile then strike order: per mark, and each code's first mark."""
-    order = np.lexsort((strike, smile))
+    order = grouped_order(smile, strike)
     s, k = smile[order], strike[order]
     new_pair = np.ones(s.size, dtype=bool)
     new_pair[1:] = (s[1:] != s[:-1]) | (k[1:] != k[:-1])
@@ -101,7 +102,7 @@ def calendar(smile: IntArray, previous: IntArray, k: FloatArray, total_variance:
 
     ``previous[g]`` is the smile of the same underlying at the next earlier expiry (-1: none).
     """
-    order = np.lexsort((k, smile))
+    order = grouped_order(smile, k)
     gs, ks, ws = smile[order], k[order], total_variance[order]
     span = 64.0                                 # |k| < 30 in any market: smiles never overlap on the key
     key = gs * span + np.clip(ks, -30.0, 30.0)

@@ -68,14 +68,14 @@ class NightSmiles:
 
 def _codes(m0: InstrumentMarket, m1: InstrumentMarket) -> tuple[IntArray, IntArray, pd.DataFrame]:
     """Smile codes of each market's instruments, ordered by underlying then expiry."""
-    both = pd.DataFrame({"underlying": np.concatenate([m0.underlying, m1.underlying]).astype(object),
-                         "expiry": np.concatenate([m0.expiry, m1.expiry]).astype("datetime64[D]")})
-    u_codes, u_names = pd.factorize(both["underlying"], sort=True, use_na_sentinel=False)
-    e_codes, e_names = pd.factorize(both["expiry"], sort=True, use_na_sentinel=False)
-    combined = u_codes.astype(np.int64) * max(len(e_names), 1) + e_codes
-    distinct, code = np.unique(combined, return_inverse=True)
-    names = pd.DataFrame({"underlying": np.asarray(u_names, dtype=object)[distinct // max(len(e_names), 1)],
-                          "expiry": np.asarray(e_names, dtype="datetime64[D]")[distinct % max(len(e_names), 1)]})
+    u_codes, u_names = pd.factorize(np.concatenate([m0.underlying, m1.underlying]).astype(object), sort=True,
+                                    use_na_sentinel=False)
+    e_codes, e_names = pd.factorize(np.concatenate([m0.expiry, m1.expiry]).astype("datetime64[D]"), sort=True,
+                                    use_na_sentinel=False)
+    n_e = max(len(e_names), 1)
+    distinct, code = np.unique(u_codes.astype(np.int64) * n_e + e_codes, return_inverse=True)
+    names = pd.DataFrame({"underlying": np.asarray(u_names, dtype=object)[distinct // n_e],
+                          "expiry": np.asarray(e_names, dtype="datetime64[D]")[distinct % n_e]})
     code = code.astype(np.intp)
     return code[:len(m0.ids)], code[len(m0.ids):], names
 
@@ -158,10 +158,20 @@ def vol_columns(smiles: NightSmiles, i0: IntArray, i1: IntArray, units: FloatArr
             "pnl_vol_curvature": pnl.curvature, "pnl_vol_own": own, "pnl_smile_delta": smile_delta}
 
 
-def _name(smiles: NightSmiles, code: IntArray) -> NDArray[np.object_]:
-    und = pd.Series(smiles.underlying[code], dtype=object).astype(str)
-    exp = pd.Series(smiles.expiry[code].astype("datetime64[D]").astype(str), dtype=object)
-    return (und + " " + exp).to_numpy(dtype=object)
+def _names(smiles: NightSmiles, code: IntArray) -> list[str]:
+    """``underlying expiry`` of each smile code (for the few flagged marks only)."""
+    return [f"{u} {e}" for u, e in zip(smiles.underlying[code], smiles.expiry[code].astype("datetime64[D]"),
+                                         strict=True)]
+
+
+class _Ids:
+    """The instrument ids of the checked marks, turned into strings only for the few flagged."""
+
+    def __init__(self, ids: pd.Index, points: IntArray) -> None:
+        self._ids, self._points = ids, points
+
+    def __getitem__(self, index: IntArray) -> NDArray[np.object_]:
+        return self._ids[self._points[index]].to_numpy(dtype=object)
 
 
 def check_smiles(smiles: NightSmiles, m1: InstrumentMarket, vol1: FloatArray, off_smile_vol: float,
@@ -175,19 +185,19 @@ def check_smiles(smiles: NightSmiles, m1: InstrumentMarket, vol1: FloatArray, of
     if pts.size == 0:
         return
     g = run.smile[pts]
-    ids = m1.ids.to_numpy()[pts]
-    name = _name(smiles, g)
+    ids = _Ids(m1.ids, pts)
     # Off smile on the vols the smiles were fitted to (the variance clock's, when the job weights time).
     found = off_smile(g, m1.strike[pts], run.fit.fitted + run.fit.residual, run.fit.fitted, run.fit.quadratic[g],
                       off_smile_vol)
     log.add(marks_file, ids[found.index], "off smile",
             [f"implied vol {v:.4f} is {abs(v - f) * 100:.2f} vol points from its fitted smile ({f:.4f}) on {s}"
-             for v, f, s in zip(found.observed, found.bound, name[found.index], strict=True)], WARNING)
+             for v, f, s in zip(found.observed, found.bound, _names(smiles, g[found.index]), strict=True)], WARNING)
     fly = butterfly(g, m1.strike[pts], m1.escrowed_spot[pts], m1.tau_years[pts], vol1[pts], m1.rate[pts],
                     m1.div_yield[pts])
     log.add(marks_file, ids[fly.index], "smile arbitrage",
             [f"butterfly: call value {c:.6g} at this strike is above {b:.6g}, the mix of its neighbouring "
-             f"strikes on {s}" for c, b, s in zip(fly.observed, fly.bound, name[fly.index], strict=True)], WARNING)
+             f"strikes on {s}" for c, b, s in zip(fly.observed, fly.bound, _names(smiles, g[fly.index]), strict=True)],
+            WARNING)
     previous = np.full(len(smiles.underlying), -1, dtype=np.intp)
     present = np.unique(g)              # codes are ordered by underlying then expiry
     same_und = smiles.underlying[present[1:]] == smiles.underlying[present[:-1]]
@@ -196,4 +206,5 @@ def check_smiles(smiles: NightSmiles, m1: InstrumentMarket, vol1: FloatArray, of
     cal = calendar(g, previous, np.log(m1.strike[pts] / forward), vol1[pts] ** 2 * m1.tau_years[pts])
     log.add(marks_file, ids[cal.index], "smile arbitrage",
             [f"calendar: total variance {w:.6g} is below {b:.6g}, the earlier expiry's at the same forward "
-             f"moneyness on {s}" for w, b, s in zip(cal.observed, cal.bound, name[cal.index], strict=True)], WARNING)
+             f"moneyness on {s}"
+             for w, b, s in zip(cal.observed, cal.bound, _names(smiles, g[cal.index]), strict=True)], WARNING)
