@@ -299,7 +299,7 @@ def test_smile_faults_lift_one_strike_off_its_smile_with_consistent_marks(built:
         by_strike = by_strike[by_strike["implied_vol"].notna()]
         k = by_strike["strike"].to_numpy()
         i = int(np.flatnonzero(k == row["strike"])[0])
-        c = _model(by_strike.assign(option_type="call"))
+        c = _model(by_strike.assign(option_type="call", exercise="european"))
         lam = (k[i + 1] - k[i]) / (k[i + 1] - k[i - 1])
         assert c[i] > lam * c[i - 1] + (1 - lam) * c[i + 1]
 
