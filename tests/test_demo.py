@@ -276,9 +276,8 @@ def test_planted_faults_are_in_the_data_as_the_summary_says(built: Built) -> Non
 
 
 def test_smile_faults_lift_one_strike_off_its_smile_with_consistent_marks(built: Built) -> None:
-    """The off-smile and smile-arbitrage faults: every mark of one strike of a held series, once each in the faulty
-    book, vol lifted (by 4 vol points off smile), each price still BSM at its vol (rel 1e-9); the arbitrage's call is
-    above the mix of its neighbouring strikes' calls (Carr and Madan 2005's butterfly condition broken)."""
+    """Smile faults lift every mark of one strike, repriced at its vol; the arbitrage breaks the butterfly condition."""
+    # Prices BSM at their vol (rel 1e-9); butterfly condition of Carr and Madan (2005).
     desk = load_desk()
     faulty_book = next(b.name for b in desk.books if b.marks == "planted_faults")
     for kind in ("off_smile_mark", "smile_arbitrage_mark"):

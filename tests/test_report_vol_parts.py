@@ -37,8 +37,7 @@ def _table(index: Path, book: str) -> list[list[str]]:
 
 
 def test_vol_parts_by_expiry_bucket_equal_the_archive(night) -> None:
-    """Each bucket row's positions, vega + volga and parts are the SQL sums of the book's held positions by time to
-    expiry at the prior date; the total row sums them (half a display unit)."""
+    """Bucket rows and the total equal SQL sums by time to expiry at the prior date (half a display unit)."""
     con, index = night
     for book in BOOKS:
         rows = _table(index, book)[1:]

@@ -145,8 +145,7 @@ def test_vol_pnl_parts_add_up_to_vega_plus_volga_exactly():
 
 
 def test_sticky_moneyness_moves_the_smile_roll_into_smile_delta():
-    """A smile fixed in moneyness while spot falls: the vol move is all spot-implied, the vol parts are 0,
-    and vega + volga P&L plus smile delta is unchanged from sticky strike (1e-9)."""
+    """A smile fixed in moneyness while spot falls: all spot-implied, into smile delta, the total kept (1e-9)."""
     smile, strike, tau, x0, vol0, n, scale = _book(seed=13)
     x1 = standardised_moneyness(strike, np.full(strike.size, 97.0), scale)   # forward 100 -> 97
     fit0 = fit_smiles(smile, x0, vol0, strike, n)
@@ -164,9 +163,9 @@ def test_sticky_moneyness_moves_the_smile_roll_into_smile_delta():
 
 
 def test_smile_delta_is_the_smile_adjusted_delta_for_a_small_spot_move():
-    """For a small spot move, smile delta = units vega (dvol/dS along the smile) dS: the smile-adjusted delta's
-    extra term (common practice, no source; reference: a central finite difference of the prior smile; tolerance
-    1e-3 of the largest term, what the second-order terms of a 0.01 % move leave)."""
+    """For a small spot move, smile delta is units vega (dvol/dS along the smile) dS: the smile-adjusted delta."""
+    # Common practice, no source. Reference: a central finite difference of the prior smile; tolerance 1e-3 of the
+    # largest term, what the second-order terms of a 0.01 % move leave.
     smile, strike, tau, x0, vol0, n, scale = _book(seed=17)
     fit0 = fit_smiles(smile, x0, vol0, strike, n)
     ds = 0.01

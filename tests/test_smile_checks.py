@@ -28,8 +28,7 @@ def test_off_smile_flags_only_marks_beyond_the_distance_on_quadratic_smiles():
 
 
 def test_a_wing_the_quadratic_misses_is_not_off_smile_but_a_spike_in_it_is():
-    """Four wing strikes all 3 points above the fit stand out from the fit but not from their neighbours;
-    one of them 3 points higher again stands out from both and is the only mark flagged."""
+    """A wing 3 points above the fit is not off smile (its neighbours agree); a spike 3 points above the wing is."""
     smile = np.zeros(7, dtype=np.intp)
     strike = np.array([80.0, 90.0, 100.0, 110.0, 120.0, 130.0, 140.0])
     fitted = np.full(7, 0.20)
@@ -47,8 +46,7 @@ def test_a_flat_or_skewed_smile_has_no_butterfly_arbitrage():
 
 
 def test_a_vol_spike_at_one_strike_is_butterfly_arbitrage_at_that_strike():
-    """The 100 strike marked 12 points above its neighbours: its call costs more than the straddling
-    strikes' mix, C(K2) > l C(K1) + (1 - l) C(K3) (Carr and Madan 2005), flagged at the middle mark only."""
+    """The 100 strike 12 points above its neighbours breaks convexity in strike (Carr and Madan 2005): flagged."""
     vol = np.full(STRIKES.size, 0.20)
     vol[3] = 0.32
     found = butterfly(*_smile(vol))
@@ -69,8 +67,7 @@ def test_butterfly_reads_each_smile_separately_and_one_mark_per_strike():
 
 
 def test_total_variance_falling_between_neighbouring_expiries_is_calendar_arbitrage():
-    """At one forward moneyness total variance must not fall with expiry (Carr and Madan 2005): the later
-    expiry's mark below the earlier's interpolated total variance is flagged, the others are not."""
+    """A later expiry's mark below the earlier's total variance at its moneyness is flagged (Carr and Madan 2005)."""
     k = np.array([-0.2, -0.1, 0.0, 0.1, 0.2, -0.15, 0.0, 0.05, 0.3])
     smile = np.array([0, 0, 0, 0, 0, 1, 1, 1, 1], dtype=np.intp)
     tau = np.array([0.25] * 5 + [0.5] * 4)
@@ -82,8 +79,7 @@ def test_total_variance_falling_between_neighbouring_expiries_is_calendar_arbitr
 
 
 def test_calendar_interpolates_between_the_two_neighbouring_marks_and_skips_marks_outside():
-    """A later mark between two earlier marks is compared with their linear interpolation in k; beyond
-    the earlier expiry's range it is not compared."""
+    """A later mark is compared with the earlier marks' interpolation in k; beyond their range it is not compared."""
     k = np.array([-0.1, 0.1, 0.0, 0.5])
     smile = np.array([0, 0, 1, 1], dtype=np.intp)
     w = np.array([0.010, 0.020, 0.0149, 0.0])

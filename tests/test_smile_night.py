@@ -93,8 +93,7 @@ def test_parts_add_up_to_vega_plus_volga_in_positions_and_books(tmp_path):
 
 
 def test_a_planted_mark_move_is_own_and_warned_off_smile(tmp_path):
-    """One mark 4 vol points above its smile on the run date: its vol P&L is all own, the others' own is ~0,
-    and the ledger warns `off smile` for that mark only."""
+    """One mark 4 vol points above its smile: its vol P&L is all own, and `off smile` warns about it alone."""
     bad = _id(EXPIRIES[1], 105.0)
     root = _write(tmp_path, {PRIOR: 100.0, RUN: 100.0},
                   {PRIOR: lambda i, k, t, s: _prior_smile(k, t, s),
@@ -132,8 +131,7 @@ def test_a_later_expiry_below_the_earlier_total_variance_is_calendar_arbitrage(t
 
 
 def test_sticky_moneyness_moves_the_smile_roll_into_smile_delta_and_keeps_the_residual(tmp_path):
-    """Spot falls 3 % and the marks follow the prior smile in moneyness: under sticky moneyness the vol parts are ~0
-    and the vol P&L is smile delta; explained, residual and the other terms equal sticky strike's (1e-9)."""
+    """Marks following the smile in moneyness: vol P&L is smile delta, explained and residual as sticky strike's."""
     root = _write(tmp_path, {PRIOR: 100.0, RUN: 97.0},
                   {PRIOR: lambda i, k, t, s: _prior_smile(k, t, s), RUN: lambda i, k, t, s: _prior_smile(k, t, s)})
     strike_rows = _night(root).positions.set_index("trade_id")
@@ -150,8 +148,7 @@ def test_sticky_moneyness_moves_the_smile_roll_into_smile_delta_and_keeps_the_re
 
 
 def test_default_job_keeps_the_explains_vol_terms(tmp_path):
-    """Sticky strike (the default) leaves pnl_vega and pnl_volga as the contract's N vega dvol and N volga dvol^2 / 2
-    (greeks at the prior state; 1e-12 relative)."""
+    """Sticky strike (the default) keeps the contract's pnl_vega and pnl_volga (greeks at the prior state; 1e-12)."""
     root = _write(tmp_path, {PRIOR: 100.0, RUN: 101.0},
                   {PRIOR: lambda i, k, t, s: _prior_smile(k, t, 100.0),
                    RUN: lambda i, k, t, s: _prior_smile(k, t, 100.0) + 0.01})

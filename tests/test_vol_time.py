@@ -49,8 +49,9 @@ def test_weekend_holiday_and_event_weights_count_the_days_after_the_start():
 
 
 def test_decay_and_carry_are_the_two_parts_of_the_handbook_theta():
-    """At weight 1 decay is -S e^(-qT) n(d1) vol / (2 sqrt T) and carry the rest of theta (Hull, Options, Futures and
-    Other Derivatives, theta of a European call on a dividend-paying stock, from memory; scipy.stats.norm; 1e-10)."""
+    """At weight 1 decay is -S e^(-qT) n(d1) vol / (2 sqrt T) and carry the rest of the handbook theta (1e-10)."""
+    # Hull, Options, Futures and Other Derivatives: theta of a European call on a dividend-paying stock (from
+    # memory); normal density and distribution from scipy.stats.norm.
     s, k, t, v, r, q = 100.0, 95.0, 0.75, 0.3, 0.04, 0.015
     g = bsm_greeks(s, k, t, v, r, q, True)
     state = MarketState(np.array([s]), np.array([v]), np.array([t]), np.array([r]), np.array([q]))
@@ -102,8 +103,7 @@ def test_default_weights_reproduce_the_night_exactly(tmp_path):
 
 
 def test_a_quiet_weekend_shrinks_decay_keeps_carry_and_conserves(tmp_path):
-    """Friday to Monday, weekends at 0.2: decay is (1.4 / 3) / r of the unit clock's, carry unchanged; decay + carry
-    = theta, explained + residual = actual, and the model P&L is unchanged (prices keep their total variance; 1e-9)."""
+    """Weekends at 0.2: decay (1.4 / 3) / r of the unit clock's, carry and model P&L unchanged, identities kept."""
     root = write_mini_desk(tmp_path / "data")
     base, quiet = _night(root, VolTimeSettings()), _night(root, QUIET_WEEKENDS)
     held = base.index[base["status"] == "carried"]
