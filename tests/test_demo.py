@@ -73,11 +73,21 @@ def _rates(curves: pd.DataFrame, currency: pd.Series, tau: np.ndarray) -> np.nda
 
 
 def _state(files: dict[str, pd.DataFrame], day: dt.date) -> pd.DataFrame:
-    """Marks joined with their instrument and underlying, with tau (ACT/365F) and the contract's rate."""
+    """Marks joined with their instrument and underlying, with tau (ACT/365F), the contract's rate, and
+    ``spot`` the escrowed spot: the underlying's spot less the present value of the dividends of
+    dividends.parquet with day < ex_date <= expiry, each discounted at the curve's rate to its ex-date."""
     frame = (files["option_marks"].merge(files["instruments"], on="instrument_id")
              .merge(files["underlying_marks"], on="underlying"))
     frame["tau"] = (pd.to_datetime(frame["expiry"]) - pd.Timestamp(day)).dt.days.to_numpy() / 365.0
     frame["rate"] = _rates(files["rate_curves"], frame["currency"], frame["tau"].to_numpy())
+    pairs = frame[["underlying", "currency", "expiry"]].reset_index().merge(files["dividends"], on="underlying")
+    ex = pd.to_datetime(pairs["ex_date"])
+    pairs = pairs[(ex > pd.Timestamp(day)) & (ex <= pd.to_datetime(pairs["expiry"]))]
+    t = (pd.to_datetime(pairs["ex_date"]) - pd.Timestamp(day)).dt.days.to_numpy() / 365.0
+    pv = pairs["amount"].to_numpy() * np.exp(-_rates(files["rate_curves"], pairs["currency"], t) * t)
+    frame["dividend_pv"] = pd.Series(pv, index=pairs["index"].to_numpy()).groupby(level=0).sum().reindex(
+        frame.index, fill_value=0.0)
+    frame["spot"] = frame["spot"] - frame["dividend_pv"]
     return frame
 
 
@@ -128,6 +138,7 @@ def test_every_file_has_the_contract_columns_and_arrow_types(built: Built, tmp_p
         "underlying_marks": [pa.string(), pa.float64(), pa.float64()],
         "rate_curves": [pa.string(), pa.float64(), pa.float64()],
         "fx_rates": [pa.string(), pa.float64()],
+        "dividends": [pa.string(), pa.date32(), pa.float64()],
     }
     root = built.summary.data_root
     for day in built.summary.dates:
@@ -206,6 +217,16 @@ def test_clean_marks_are_bsm_prices_strictly_inside_the_bounds(built: Built) -> 
         np.testing.assert_allclose(m["price"][given], _model(m[given]), rtol=1e-9,
                                    atol=desk.min_time_value_share * m["spot"][given].max())
         assert 0.02 < 1 - given.mean() < 0.3  # some marks leave implied_vol to the job
+
+
+def test_stocks_list_their_dividends_ahead_every_date(built: Built) -> None:
+    """Every stock with a yield, and only those, has dividends ahead in each date's dividends.parquet (amounts > 0)."""
+    stocks = {u.name for u in load_desk().underlyings if u.kind == "stock" and u.dividend_yield > 0}
+    for day, f in built.nights.items():
+        div = f["dividends"]
+        assert set(div["underlying"]) == stocks
+        assert (pd.to_datetime(div["ex_date"]) > pd.Timestamp(day)).all() and (div["amount"] > 0).all()
+        assert not div.duplicated(["underlying", "ex_date"]).any()
 
 
 def test_clean_marks_agree_with_quantlib(built: Built) -> None:

@@ -45,6 +45,9 @@ from attribution.demo.desk import (
     monthly_expiries,
 )
 from attribution.demo.desk import business_days as desk_business_days
+from attribution.demo.dividends import Schedule, present_values
+from attribution.demo.dividends import apply as apply_dividends
+from attribution.demo.dividends import plan as plan_dividends
 from attribution.demo.faults import mark_faults, noisy_marks
 from attribution.demo.market import (
     IntArray,
@@ -62,7 +65,8 @@ from attribution.loading import CONTRACT_SCHEMAS
 from attribution.pricing import bsm_greeks, bsm_price
 
 DEFAULT_START = dt.date(2025, 11, 3)
-SCHEMAS: dict[str, pa.Schema] = {k: v for k, v in CONTRACT_SCHEMAS.items() if k != "books"}  # no desks yet
+SCHEMAS: dict[str, pa.Schema] = {k: v for k, v in CONTRACT_SCHEMAS.items()
+                                  if k not in ("books", "corporate_actions")}  # no desks, no split yet
 FAULT_KINDS = ("stale_mark", "fat_finger_mark", "missing_mark", "off_smile_mark", "smile_arbitrage_mark",
                "noisy_marks")
 
@@ -107,15 +111,18 @@ class DemoSummary:
 
 
 
-def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments) -> tuple[Night, Pool]:
-    """Clean marks of every live instrument tonight, and the pool open for new trades."""
+def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments,
+           schedule: Schedule) -> tuple[Night, Pool]:
+    """Clean marks of every live instrument tonight (on the escrowed spot), and the pool open for new trades."""
     day = market.dates[d]
     live = np.flatnonzero(store.expiry >= day)
     und, strike, is_call = store.und[live], store.strike[live], store.is_call[live]
     tau = (store.expiry[live] - day).astype(float) / DAYS_PER_YEAR
-    spot, div = market.spot[d, und], market.dividend_yield[d, und]
     codes = [c.code for c in desk.currencies]
     ccy = np.array([codes.index(u.currency) for u in desk.underlyings])[und]
+    names = np.array([u.name for u in desk.underlyings])
+    pv = present_values(market, d, schedule, names, und, np.array(codes)[ccy], store.expiry[live], np.array(codes))
+    spot, div = market.spot[d, und] - pv, market.dividend_yield[d, und]  # the spot the options are valued on
     rate = np.zeros(live.size)
     for c in range(len(codes)):
         rate[ccy == c] = zero_rate(market.zero_rates[d, c], market.tenors_years, tau[ccy == c])
@@ -279,7 +286,7 @@ def _prepare_root(root: Path, dates: NDArray[np.datetime64]) -> None:
 
 
 def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: Trades,
-           nights: list[Night], ids: NDArray[np.str_], trade_ids: NDArray[np.str_]) -> None:
+           nights: list[Night], ids: NDArray[np.str_], trade_ids: NDArray[np.str_], schedule: Schedule) -> None:
     names = np.array([u.name for u in desk.underlyings])
     codes = np.array([c.code for c in desk.currencies])
     ccy = np.array([list(codes).index(u.currency) for u in desk.underlyings])
@@ -312,6 +319,8 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
             "rate_curves": [pa.array(codes.repeat(n_tenor), pa.string()),
                             pa.array(np.tile(market.tenors_years, codes.size)), pa.array(market.zero_rates[d].ravel())],
             "fx_rates": [pa.array(codes, pa.string()), pa.array(market.fx_to_reporting[d])],
+            "dividends": pa.Table.from_pandas(schedule.frame(market.dates[d], names), schema=SCHEMAS["dividends"],
+                                              preserve_index=False).columns,
         }
         for name, columns in tables.items():
             pq.write_table(pa.Table.from_arrays(columns, schema=SCHEMAS[name]), folder / f"{name}.parquet")
@@ -332,6 +341,8 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
     market_rng, list_rng, trade_rng, fault_rng = (np.random.default_rng(s) for s in np.random.SeedSequence(seed)
                                                   .spawn(4))
     market = simulate_market(desk, dates, market_rng)
+    schedule = plan_dividends(desk, market, dates[-1] + np.timedelta64(500, "D"))
+    market = apply_dividends(desk, market, schedule)
     expiries = monthly_expiries(desk, dates[0].item(), dates[-1].item() + dt.timedelta(days=500))
     names = [u.name for u in desk.underlyings]
     clean = np.ones(len(names), bool)
@@ -343,7 +354,7 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
     for d in range(dates.size):
         if d % desk.trading.listing_every_days == 0:
             list_instruments(desk, market, d, store, expiries, clean, list_rng)
-        night, pool = _marks(desk, market, d, store)
+        night, pool = _marks(desk, market, d, store, schedule)
         _trade(trade_rng, desk, d, market, store, trades, pool, targets)
         night.rows, night.quantity = trades.live.copy(), trades.quantity[trades.live]
         nights.append(night)
@@ -354,7 +365,7 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
             faults += mark_faults(desk, market, store, trades, nights, ids, b)
         elif book.marks == "noisy":
             faults += noisy_marks(desk, market, store, nights, b, fault_rng)
-    _write(root, desk, market, store, trades, nights, ids, trade_ids)
+    _write(root, desk, market, store, trades, nights, ids, trade_ids, schedule)
     counts = np.array([night.rows.size for night in nights])
     first, last_expiry = dates[0].item(), store.expiry.max().item()
     return DemoSummary(

@@ -1,0 +1,87 @@
+"""Discrete dividends on the demo desk's single stocks (invented, like the rest of the desk).
+
+Each stock pays a quarterly cash dividend of a quarter of its initial yield times its initial spot, on
+ex-dates spread over the quarter by stock. Its spot drops by the payment on each ex-date, and its
+``dividend_yield`` keeps only a small borrow plus the simulated yield moves; the marks value its options
+on the escrowed spot (:func:`attribution.dividends.schedule_pv`), as the job does.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+
+import numpy as np
+import pandas as pd
+from numpy.typing import NDArray
+
+from attribution.demo.desk import DeskSpec
+from attribution.demo.market import MarketPaths
+from attribution.dividends import schedule_pv
+from attribution.pricing import FloatArray
+from attribution.timebasis import TimeBasis
+
+PAYMENTS_PER_YEAR = 4
+DAYS_BETWEEN = 91
+FIRST_OFFSET_DAYS = 20       # the first stock's first ex-date, days after the demo's start
+STAGGER_DAYS = 17            # each next stock's ex-dates this many days later (modulo the quarter)
+BORROW = 0.002               # the continuous part a stock keeps besides its dividends
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
+class Schedule:
+    """The desk's dividends, one row per payment."""
+
+    und: NDArray[np.int64]
+    ex_date: NDArray[np.datetime64]
+    amount: FloatArray
+
+    def frame(self, day: np.datetime64, names: NDArray[np.str_]) -> pd.DataFrame:
+        """dividends.parquet rows known on ``day``: the payments with an ex-date after it."""
+        ahead = self.ex_date > day
+        return pd.DataFrame({"underlying": names[self.und[ahead]].astype(object),
+                             "ex_date": self.ex_date[ahead].astype("datetime64[s]"), "amount": self.amount[ahead]})
+
+
+def plan(desk: DeskSpec, market: MarketPaths, horizon: np.datetime64) -> Schedule:
+    """Quarterly payments of every stock with a dividend yield, from shortly after the start up to ``horizon``;
+    an ex-date falling on a weekend moves to the next weekday."""
+    start = market.dates[0]
+    q0 = desk.param("dividend_yield")
+    und: list[int] = []
+    ex: list[np.datetime64] = []
+    amount: list[float] = []
+    stocks = [j for j, u in enumerate(desk.underlyings) if u.kind == "stock" and q0[j] > 0]
+    for k, j in enumerate(stocks):  # a handful of stocks with a handful of payments each
+        first = start + np.timedelta64(FIRST_OFFSET_DAYS + (STAGGER_DAYS * k) % DAYS_BETWEEN, "D")
+        days = np.busday_offset(np.arange(first, horizon, np.timedelta64(DAYS_BETWEEN, "D")), 0, roll="forward")
+        und += [j] * days.size
+        ex += list(days)
+        amount += [round(float(q0[j] * market.spot[0, j]) / PAYMENTS_PER_YEAR, 2)] * days.size
+    return Schedule(np.array(und, np.int64), np.array(ex, "datetime64[D]"), np.array(amount, float))
+
+
+def apply(desk: DeskSpec, market: MarketPaths, schedule: Schedule) -> MarketPaths:
+    """The market with each stock's spot dropping by its dividends from their ex-dates, and the stocks'
+    continuous yields reduced to the borrow plus their simulated moves."""
+    dates = market.dates
+    spot = market.spot.copy()
+    step = np.searchsorted(dates, schedule.ex_date)  # the first business date on or after each ex-date
+    inside = step < dates.size
+    for s, j, a in zip(step[inside], schedule.und[inside], schedule.amount[inside], strict=True):  # a few dozen
+        spot[s:, j] *= 1.0 - a / spot[s, j]
+    q = market.dividend_yield.copy()
+    stocks = np.array([u.kind == "stock" for u in desk.underlyings])
+    q[:, stocks] = np.maximum(q[:, stocks] - desk.param("dividend_yield")[stocks] + BORROW, 0.0)
+    return dataclasses.replace(market, spot=spot, dividend_yield=q)
+
+
+def present_values(market: MarketPaths, d: int, schedule: Schedule, names: NDArray[np.str_], und: NDArray[np.int64],
+                   currency: NDArray[np.str_], expiry: NDArray[np.datetime64], codes: NDArray[np.str_]) -> FloatArray:
+    """Present value on date ``d`` of each instrument's dividends up to its expiry (the job's own formula)."""
+    day = market.dates[d]
+    curves = pd.DataFrame({"currency": np.repeat(codes, market.tenors_years.size).astype(object),
+                           "tenor_years": np.tile(market.tenors_years, codes.size),
+                           "zero_rate": market.zero_rates[d].ravel()})
+    return schedule_pv(day.astype(dt.date), names[und].astype(object), currency.astype(object), expiry,
+                       schedule.frame(day, names), curves, TimeBasis())
