@@ -139,6 +139,7 @@ def test_every_file_has_the_contract_columns_and_arrow_types(built: Built, tmp_p
         "rate_curves": [pa.string(), pa.float64(), pa.float64()],
         "fx_rates": [pa.string(), pa.float64()],
         "dividends": [pa.string(), pa.date32(), pa.float64()],
+        "corporate_actions": [pa.string(), pa.date32(), pa.float64()],
     }
     root = built.summary.data_root
     for day in built.summary.dates:
@@ -227,6 +228,28 @@ def test_stocks_list_their_dividends_ahead_every_date(built: Built) -> None:
         assert set(div["underlying"]) == stocks
         assert (pd.to_datetime(div["ex_date"]) > pd.Timestamp(day)).all() and (div["amount"] > 0).all()
         assert not div.duplicated(["underlying", "ex_date"]).any()
+
+
+def test_one_stock_splits_two_for_one_with_its_options_adjusted(built: Built) -> None:
+    """corporate_actions lists one 2-for-1 split; from its ex-date the options listed before it keep their ids with
+    strike / 2 and multiplier x 2, other underlyings' terms stay, the spot halves (common practice, no source)."""
+    days = built.summary.dates
+    actions = built.nights[days[0]]["corporate_actions"]
+    assert len(actions) == 1 and actions["ratio"].iloc[0] == 2.0
+    stock, ex = actions["underlying"].iloc[0], pd.Timestamp(actions["ex_date"].iloc[0]).date()
+    assert days[0] < ex <= days[-1]
+    before = max(d for d in days if d < ex)
+    i0 = built.nights[before]["instruments"].set_index("instrument_id")
+    i1 = built.nights[ex]["instruments"].set_index("instrument_id")
+    both = i0.index.intersection(i1.index)
+    mine = both[(i0.loc[both, "underlying"] == stock).to_numpy()]
+    others = both[(i0.loc[both, "underlying"] != stock).to_numpy()]
+    assert len(mine) > 10
+    np.testing.assert_allclose(i1.loc[mine, "strike"], i0.loc[mine, "strike"] / 2.0, rtol=1e-12)
+    np.testing.assert_allclose(i1.loc[mine, "multiplier"], i0.loc[mine, "multiplier"] * 2.0, rtol=0)
+    assert (i1.loc[others, "strike"] == i0.loc[others, "strike"]).all()
+    spot = [built.nights[d]["underlying_marks"].set_index("underlying").loc[stock, "spot"] for d in (before, ex)]
+    assert 0.35 < spot[1] / spot[0] < 0.65
 
 
 def test_clean_marks_agree_with_quantlib(built: Built) -> None:

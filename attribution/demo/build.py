@@ -30,7 +30,9 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 from numpy.typing import NDArray
 
@@ -65,8 +67,7 @@ from attribution.loading import CONTRACT_SCHEMAS
 from attribution.pricing import bsm_greeks, bsm_price
 
 DEFAULT_START = dt.date(2025, 11, 3)
-SCHEMAS: dict[str, pa.Schema] = {k: v for k, v in CONTRACT_SCHEMAS.items()
-                                  if k not in ("books", "corporate_actions")}  # no desks, no split yet
+SCHEMAS: dict[str, pa.Schema] = {k: v for k, v in CONTRACT_SCHEMAS.items() if k != "books"}  # no desks yet
 FAULT_KINDS = ("stale_mark", "fat_finger_mark", "missing_mark", "off_smile_mark", "smile_arbitrage_mark",
                "noisy_marks")
 
@@ -112,16 +113,17 @@ class DemoSummary:
 
 
 def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments,
-           schedule: Schedule) -> tuple[Night, Pool]:
-    """Clean marks of every live instrument tonight (on the escrowed spot), and the pool open for new trades."""
+           dividends: pd.DataFrame, split: FloatArray) -> tuple[Night, Pool]:
+    """Clean marks of every live instrument tonight (on the escrowed spot, strikes adjusted for the split by
+    ``split``, per instrument), and the pool open for new trades."""
     day = market.dates[d]
     live = np.flatnonzero(store.expiry >= day)
-    und, strike, is_call = store.und[live], store.strike[live], store.is_call[live]
+    und, strike, is_call = store.und[live], store.strike[live] / split[live], store.is_call[live]
     tau = (store.expiry[live] - day).astype(float) / DAYS_PER_YEAR
     codes = [c.code for c in desk.currencies]
     ccy = np.array([codes.index(u.currency) for u in desk.underlyings])[und]
     names = np.array([u.name for u in desk.underlyings])
-    pv = present_values(market, d, schedule, names, und, np.array(codes)[ccy], store.expiry[live], np.array(codes))
+    pv = present_values(market, d, dividends, names, und, np.array(codes)[ccy], store.expiry[live], np.array(codes))
     spot, div = market.spot[d, und] - pv, market.dividend_yield[d, und]  # the spot the options are valued on
     rate = np.zeros(live.size)
     for c in range(len(codes)):
@@ -271,6 +273,10 @@ def _ids(desk: DeskSpec, store: ListedInstruments, trade_count: int) -> tuple[ND
     ids = parts[0]
     for part in parts[1:]:
         ids = np.char.add(ids, part)
+    _, first = np.unique(ids, return_index=True)
+    again = np.ones(ids.size, bool)
+    again[first] = False  # a series listed after the split at a strike an adjusted one had: a new id
+    ids = np.where(again, np.char.add(ids, "-2"), ids)
     if np.unique(ids).size != ids.size:
         raise RuntimeError("demo instrument ids are not unique")
     return ids, np.char.mod(f"{desk.trade_id_prefix}%08d", np.arange(trade_count))
@@ -285,8 +291,22 @@ def _prepare_root(root: Path, dates: NDArray[np.datetime64]) -> None:
                          "write the demo into an empty folder")
 
 
+def _split(schedule: Schedule, store: ListedInstruments, before_split: int, day: np.datetime64) -> FloatArray:
+    """Per listed instrument: the split ratio its listed strike is divided by on ``day`` (1 when unaffected)."""
+    return schedule.split_factor(store.und, np.arange(store.und.size) < before_split, day)
+
+
+def _terms(instruments: pa.Table, split: FloatArray) -> list[pa.ChunkedArray]:
+    """The instruments' columns with strikes divided and multipliers multiplied by the split ratio."""
+    strike = pc.divide(instruments["strike"], pa.array(split))
+    multiplier = pc.multiply(instruments["multiplier"], pa.array(split))
+    return [strike if n == "strike" else multiplier if n == "multiplier" else instruments[n]
+            for n in instruments.column_names]
+
+
 def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: Trades,
-           nights: list[Night], ids: NDArray[np.str_], trade_ids: NDArray[np.str_], schedule: Schedule) -> None:
+           nights: list[Night], ids: NDArray[np.str_], trade_ids: NDArray[np.str_], schedule: Schedule,
+           before_split: int) -> None:
     names = np.array([u.name for u in desk.underlyings])
     codes = np.array([c.code for c in desk.currencies])
     ccy = np.array([list(codes).index(u.currency) for u in desk.underlyings])
@@ -304,6 +324,7 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
         pa.array(trades.trade_price, pa.float64(), mask=np.isnan(trades.trade_price))],
         names=["trade_id", "book", "instrument_id", "trade_date", "trade_price"])
     n_tenor = market.tenors_years.size
+    actions = schedule.actions(names)
     for d, night in enumerate(nights):
         folder = root / f"as_of={market.dates[d]}"
         folder.mkdir(exist_ok=True)
@@ -311,7 +332,8 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
         tables = {
             "positions": [held["trade_id"], held["book"], held["instrument_id"], pa.array(night.quantity),
                           held["trade_date"], held["trade_price"]],
-            "instruments": instruments.take(pa.array(night.live)).columns,
+            "instruments": _terms(instruments.take(pa.array(night.live)),
+                                  _split(schedule, store, before_split, market.dates[d])[night.live]),
             "option_marks": [instrument_id.take(pa.array(night.live[night.keep])), pa.array(night.price[night.keep]),
                              pa.array(night.vol[night.keep], mask=np.isnan(night.vol[night.keep]))],
             "underlying_marks": [pa.array(names, pa.string()), pa.array(market.spot[d]),
@@ -319,8 +341,8 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
             "rate_curves": [pa.array(codes.repeat(n_tenor), pa.string()),
                             pa.array(np.tile(market.tenors_years, codes.size)), pa.array(market.zero_rates[d].ravel())],
             "fx_rates": [pa.array(codes, pa.string()), pa.array(market.fx_to_reporting[d])],
-            "dividends": pa.Table.from_pandas(schedule.frame(market.dates[d], names), schema=SCHEMAS["dividends"],
-                                              preserve_index=False).columns,
+            "dividends": schedule.columns(market.dates[d], names),
+            "corporate_actions": actions,
         }
         for name, columns in tables.items():
             pq.write_table(pa.Table.from_arrays(columns, schema=SCHEMAS[name]), folder / f"{name}.parquet")
@@ -351,10 +373,17 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
     weights = np.array([b.weight for b in desk.books])
     targets = np.ceil(positions_target * weights / weights.sum()).astype(np.int64)
     store, trades, nights = ListedInstruments(), Trades(), []
+    before_split = 0  # instruments listed before the split day: their strikes and multipliers are adjusted
+    every_dividend = schedule.frame(dates[0] - np.timedelta64(1, "D"), np.array(names))
     for d in range(dates.size):
+        if dates[d] < schedule.split_day:
+            before_split = store.und.size
         if d % desk.trading.listing_every_days == 0:
+            split = _split(schedule, store, before_split, dates[d])
+            store.strike = store.strike / split  # listed in tonight's units, so no strike is listed twice
             list_instruments(desk, market, d, store, expiries, clean, list_rng)
-        night, pool = _marks(desk, market, d, store, schedule)
+            store.strike[: split.size] *= split
+        night, pool = _marks(desk, market, d, store, every_dividend, _split(schedule, store, before_split, dates[d]))
         _trade(trade_rng, desk, d, market, store, trades, pool, targets)
         night.rows, night.quantity = trades.live.copy(), trades.quantity[trades.live]
         nights.append(night)
@@ -365,7 +394,7 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
             faults += mark_faults(desk, market, store, trades, nights, ids, b)
         elif book.marks == "noisy":
             faults += noisy_marks(desk, market, store, nights, b, fault_rng)
-    _write(root, desk, market, store, trades, nights, ids, trade_ids, schedule)
+    _write(root, desk, market, store, trades, nights, ids, trade_ids, schedule, before_split)
     counts = np.array([night.rows.size for night in nights])
     first, last_expiry = dates[0].item(), store.expiry.max().item()
     return DemoSummary(
