@@ -47,7 +47,7 @@ def main(argv: list[str] | None = None) -> int:
         started = time.perf_counter()
         frames = report.load_night(con, AS_OF, config.history_nights)
         loaded = time.perf_counter()
-        pages = report.book_pages(frames, config)
+        pages = report.book_pages(frames, report.night_settings(frames.run, config))
         laid_out = time.perf_counter()
         print(f"split: load {loaded - started:.2f} s, lay out {laid_out - loaded:.2f} s ({len(pages)} pages)")
 

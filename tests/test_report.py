@@ -9,11 +9,13 @@ display unit (amounts are shown to whole currency units).
 from __future__ import annotations
 
 import datetime as dt
+import json
 import math
 import re
 from pathlib import Path
 
 import duckdb
+import pandas as pd
 import pytest
 from report_fixtures import AS_OF, PageParser, build_archive, shown_number
 
@@ -338,6 +340,34 @@ def test_time_basis_comes_from_the_run_record(tmp_path: Path) -> None:
     page = PageParser(index.read_text(encoding="utf-8"))
     assert page.text("time-basis") == "BUS/252"
     assert f"{1 / 252:.6f}" in page.text("conventions")
+
+
+def test_past_night_shows_the_settings_its_run_record_archived(tmp_path: Path) -> None:
+    """Currency, watch fraction and holidays come from the night's run record, not from today's job."""
+    con = build_archive(tmp_path / "a.duckdb", ("Skew Desk",), per_book=6, history_nights=3, time_basis="BUS/252")
+    settings = {"time_basis": "BUS/252", "reporting_currency": "EUR", "holidays": [AS_OF.isoformat()],
+                "limits": {"watch_fraction": 0.5}, "book_limits": [["Skew Desk", {"watch_fraction": 0.6}]]}
+    con.execute("UPDATE runs SET job_settings = ? WHERE as_of = ?", [json.dumps(settings), AS_OF])
+    con.execute("UPDATE book_pnl SET limit_state = 'watch' WHERE as_of = ?", [AS_OF])
+    today = JobConfig(reporting_currency="USD", time_basis="ACT/365F")  # the job file changed since that night
+    index = report.render_night(con, AS_OF, tmp_path / "reports", today)
+    page = _page(index, "Skew Desk")
+    assert "has passed 60%" in page.text("limit-text")  # the book's archived override, not today's 80 %
+    assert "Total P&amp;L (EUR)" in (index.parent / report.file_name_for("Skew Desk")).read_text(encoding="utf-8")
+    conventions = PageParser(index.read_text(encoding="utf-8")).text("conventions")
+    assert "EUR" in conventions and "USD" not in conventions
+    assert page.text("time-basis") == "BUS/252"
+    assert report.night_settings(con.execute("SELECT * FROM runs WHERE as_of = ?", [AS_OF]).df(),
+                                 today).holidays == (AS_OF,)
+
+
+def test_night_settings_fall_back_to_the_job_where_the_record_is_silent() -> None:
+    """A record without a setting (an older archive) or no record at all takes the job's current value."""
+    job = JobConfig(reporting_currency="CHF", time_basis="BUS/252")
+    assert report.night_settings(pd.DataFrame({"job_settings": ['{"time_basis": "ACT/365F"}']}), job) == \
+        report.NightSettings("ACT/365F", (), "CHF", True, 0.8, {})
+    assert report.night_settings(pd.DataFrame({"job_settings": []}), job).time_basis == "BUS/252"
+    assert report.night_settings(pd.DataFrame({"job_settings": ["not json"]}), job).reporting_currency == "CHF"
 
 
 def test_revaluation_switched_off_is_shown_as_not_computed(tmp_path: Path) -> None:

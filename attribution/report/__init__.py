@@ -23,10 +23,11 @@ from attribution.report.html import EXCEPTIONS_SHOWN, render_files
 from attribution.report.pages import file_name_for
 from attribution.report.publish import write_atomically
 from attribution.report.queries import TERM_COLUMNS, TOP_POSITIONS, ReportError, load_night
+from attribution.report.settings import NightSettings, night_settings
 from attribution.report.view import book_pages, conventions, night_view
 
-__all__ = ["EXCEPTIONS_SHOWN", "TERM_COLUMNS", "TOP_POSITIONS", "ReportError", "book_pages", "file_name_for",
-           "load_night", "render_night"]
+__all__ = ["EXCEPTIONS_SHOWN", "TERM_COLUMNS", "TOP_POSITIONS", "NightSettings", "ReportError", "book_pages",
+           "file_name_for", "load_night", "night_settings", "render_night"]
 
 
 def render_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, reports_dir: Path, config: JobConfig) -> Path:
@@ -34,8 +35,9 @@ def render_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, reports_dir: Pa
     frames = load_night(con, as_of, config.history_nights)
     if not len(frames.books) and not len(frames.exceptions) and not len(frames.run):
         raise ReportError(f"archive: nothing archived for {as_of.isoformat()} (no run, no book, no exception)")
-    pages = book_pages(frames, config)
-    night = night_view(frames, pages, as_of, conventions(frames, as_of, config))
+    settings = night_settings(frames.run, config)  # the night's own settings, as its run record holds them
+    pages = book_pages(frames, settings)
+    night = night_view(frames, pages, as_of, conventions(frames, as_of, settings))
     target = Path(reports_dir) / as_of.isoformat()
     write_atomically(target, render_files(night, pages))
     return target / "index.html"

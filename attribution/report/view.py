@@ -3,14 +3,12 @@
 from __future__ import annotations
 
 import datetime as dt
-import json
 from collections.abc import Mapping
 from typing import TypeVar
 
 import numpy as np
 import pandas as pd
 
-from attribution.config import JobConfig
 from attribution.report import charts
 from attribution.report.pages import (
     BookPage,
@@ -33,6 +31,7 @@ from attribution.report.queries import (
     VOL_PART_COLUMNS,
     NightFrames,
 )
+from attribution.report.settings import NightSettings
 from attribution.schema import BOOK_PNL, REVAL_COLUMNS, TAYLOR_TERMS
 from attribution.timebasis import TimeBasis
 
@@ -218,7 +217,7 @@ _COUNT_COLUMNS = ("positions", "carried", "closed", "new", "new_unpriced", "expi
                   "position_breaches")
 
 
-def book_pages(frames: NightFrames, config: JobConfig) -> list[BookPage]:
+def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
     """One page per book row of the night, in the index's order (most attention first)."""
     quality = _quality(frames.quality)
     exceptions = _exceptions(frames.links)
@@ -253,8 +252,8 @@ def book_pages(frames: NightFrames, config: JobConfig) -> list[BookPage]:
         lines, cumulative = history.get(name, (None, None))
         pages.append(BookPage(
             summary=summary, figures=figures, counts=counts,
-            limit_text=_limit_text(figures, limit_code, config.limits_for(name).watch_fraction),
-            waterfall=_waterfall(figures, counts["new_unpriced"], config.reporting_currency),
+            limit_text=_limit_text(figures, limit_code, settings.watch_fraction_for(name)),
+            waterfall=_waterfall(figures, counts["new_unpriced"], settings.reporting_currency),
             methods=methods, method_total=method_total,
             underlyings=underlyings.get(name, ()), exposures=exposures.get(name, ()),
             positions=positions.get(name, ()), unpriced=unpriced.get(name, ()),
@@ -272,27 +271,20 @@ def _attention(page: BookPage) -> tuple[int, int, float, str]:
     return (_LIMIT_RANK.get(s.limit.code, 2), _ZONE_RANK.get(s.zone.code, 2), -abs(s.residual), s.name)
 
 
-def conventions(frames: NightFrames, as_of: dt.date, config: JobConfig) -> Conventions:
-    """The run's own time basis when its record names one, else the job's; revaluation as archived."""
-    basis_name = config.time_basis
-    if len(frames.run):
-        try:
-            settings = json.loads(_text(frames.run.iloc[0]["job_settings"]) or "{}")
-        except json.JSONDecodeError:
-            settings = {}
-        if isinstance(settings, dict) and settings.get("time_basis"):
-            basis_name = str(settings["time_basis"])
-    basis = TimeBasis(basis_name, config.holidays)
+def conventions(frames: NightFrames, as_of: dt.date, settings: NightSettings) -> Conventions:
+    """The night's time basis, holidays and currency as its run record archived them; revaluation as archived."""
+    basis_name = settings.time_basis
+    basis = TimeBasis(basis_name, settings.holidays)
     priors = frames.books["prior_as_of"].dropna() if len(frames.books) else pd.Series([], dtype=object)
     prior = pd.Timestamp(priors.max()).date() if len(priors) else None
     words = ("business days between the two dates (weekends and the job's holidays left out) / 252"
              if basis_name == "BUS/252" else "calendar days between the two dates / 365")
     return Conventions(
-        time_basis=basis_name, time_basis_words=words, reporting_currency=config.reporting_currency,
+        time_basis=basis_name, time_basis_words=words, reporting_currency=settings.reporting_currency,
         prior_as_of=prior, calendar_days=(as_of - prior).days if prior else None,
         year_fraction=float(basis.year_fraction(prior, as_of)[0]) if prior else None,
         next_business_day=basis.next_business_day(as_of),
-        revaluation_on=bool(frames.books["reval_spot"].notna().any()) if len(frames.books) else config.revaluation)
+        revaluation_on=bool(frames.books["reval_spot"].notna().any()) if len(frames.books) else settings.revaluation)
 
 
 
