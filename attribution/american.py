@@ -123,7 +123,8 @@ def _chebyshev_matrix(nodes: FloatArray, points: FloatArray) -> FloatArray:
     hit_rows, hit_cols = np.nonzero(exact)
     matrix[hit_rows] = 0.0
     matrix[hit_rows, hit_cols] = 1.0
-    return matrix
+    out: FloatArray = matrix
+    return out
 
 
 @lru_cache(maxsize=8)

@@ -17,7 +17,8 @@ STATE_ORDER = {WITHIN: 0, WATCH: 1, BREACH: 2}
 
 def _state(usage: NDArray[np.float64], watch_fraction: ArrayLike) -> NDArray[np.object_]:
     """usage = |residual| / limit (the worst test); > 1 breaches, >= watch_fraction watches."""
-    return np.where(usage > 1.0, BREACH, np.where(usage >= watch_fraction, WATCH, WITHIN)).astype(object)
+    watch = np.asarray(watch_fraction, dtype=float)
+    return np.where(usage > 1.0, BREACH, np.where(usage >= watch, WATCH, WITHIN)).astype(object)
 
 
 def limit_usage(residual: ArrayLike, actual: ArrayLike, abs_limit: ArrayLike, rel_limit: ArrayLike,

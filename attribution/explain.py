@@ -110,7 +110,7 @@ def explain_overnight(strike: FloatArray, cp: FloatArray, units: FloatArray, sta
     theta = units * g.theta_per_year * dt_years
     rates = units * g.rho * d_rate
     dividend = units * g.dividend_rho * d_div
-    if d_pv.any():  # without discrete dividends the term is exactly the contract's dividend_rho dq
+    if np.any(d_pv):  # without discrete dividends the term is exactly the contract's dividend_rho dq
         dividend = dividend - units * g.delta * d_pv
     model = units * (value1 - g.price)
     crossed = (exercised0 != exercised1) & (state1.tau_years > 0)

@@ -63,12 +63,14 @@ class Greeks:
 
 def call_put_sign(is_call: ArrayLike) -> FloatArray:
     """+1.0 for a call and -1.0 for a put."""
-    return np.where(np.asarray(is_call, dtype=bool), 1.0, -1.0)
+    sign: FloatArray = np.where(np.asarray(is_call, dtype=bool), 1.0, -1.0)
+    return sign
 
 
 def normal_pdf(x: FloatArray) -> FloatArray:
     """Standard normal density."""
-    return _INV_SQRT_2PI * np.exp(-0.5 * x * x)
+    density: FloatArray = _INV_SQRT_2PI * np.exp(-0.5 * x * x)
+    return density
 
 
 def _broken_rules(s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray,
@@ -195,8 +197,13 @@ def _for_each_chunk(n: int, block: Callable[[slice], None], threads: int | None)
     per_worker = -(-len(chunks) // workers)
     runs = [chunks[i:i + per_worker] for i in range(0, len(chunks), per_worker)]
     with ThreadPoolExecutor(max_workers=workers) as pool:
-        for done in [pool.submit(lambda run: [block(chunk) for chunk in run], run) for run in runs]:
+        for done in [pool.submit(_run_blocks, block, run) for run in runs]:
             done.result()
+
+
+def _run_blocks(block: Callable[[slice], None], run: list[slice]) -> None:
+    for chunk in run:
+        block(chunk)
 
 
 def d1_d2(

@@ -130,7 +130,7 @@ def revaluation_shares(strike: FloatArray, cp: FloatArray, state0: MarketState, 
         return shares
     pairs = [(getattr(state0, name), getattr(state1, name)) for name in ("spot", "vol", "tau_years", "rate",
                                                                           "div_yield")]
-    pv = (state0.div_pv, state1.div_pv)  # moves with the dividend factor (bit 4)
+    pv = (np.asarray(state0.div_pv), np.asarray(state1.div_pv))  # arrays after __post_init__; move with bit 4
     first, inverse = _distinct(rows, group, (strike, cp, *(a for pair in pairs for a in pair), *pv))
     u = rows[first]
     m = u.size
