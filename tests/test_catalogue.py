@@ -1,6 +1,6 @@
 """The catalogue of bad inputs: each case, its expected outcome, and that nothing is ever lost.
 
-Every case starts from the mini desk (tests/mini_desk.py, written from /work/shared/data-contract.md), changes
+Every case starts from the mini desk (tests/mini_desk.py, written from README.md, "Input files"), changes
 one thing, and runs the whole job through the command line (``attribution.cli.main``). The outcome is one of:
 
 * the run fails: exit code 1, a message naming the file (or folder) and the field, the archive untouched
@@ -39,7 +39,8 @@ from attribution.cli import main
 from attribution.engine import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
 from attribution.lifecycle import STATUSES
 from attribution.loading import folder_for
-from tests.contract_files import table
+from tests.conservation import assert_conserved
+from tests.contract_files import edit_row, put_rows, read_rows
 from tests.mini_desk import PRIOR, RUN, write_mini_desk
 
 NAN, INF = math.nan, math.inf
@@ -57,18 +58,14 @@ class Desk:
         return folder_for(self.root, day) / f"{kind}.parquet"
 
     def rows(self, day: dt.date, kind: str) -> list[dict[str, object]]:
-        return pq.read_table(self.path(day, kind)).to_pylist()
+        return read_rows(self.root, day, kind)
 
     def put(self, day: dt.date, kind: str, rows: list[dict[str, object]]) -> None:
-        pq.write_table(table(kind, rows), self.path(day, kind))
+        put_rows(self.root, day, kind, rows)
 
     def edit(self, day: dt.date, kind: str, key: str, **values: object) -> None:
         """Set ``values`` on the row whose first column is ``key``."""
-        rows = self.rows(day, kind)
-        first = next(iter(rows[0]))
-        [row] = [r for r in rows if r[first] == key]
-        row.update(values)
-        self.put(day, kind, rows)
+        edit_row(self.root, day, kind, key, **values)
 
     def drop(self, day: dt.date, kind: str, key: str) -> None:
         rows = self.rows(day, kind)
@@ -349,35 +346,6 @@ def _check_explained(expect: Explained, code: int, root: Path) -> None:
         assert archived[trade] == status
     assert_counts_add_up(tables)
     assert code == (EXIT_FINDINGS if expect.rejected or (ledger["key"].str.startswith("(null)")).any() else EXIT_OK)
-
-
-def raw_positions(data: Path) -> dict[str, pd.DataFrame]:
-    """Both dates' positions files as written (read with pyarrow, not the package), by file path."""
-    return {str(folder_for(data, day) / "positions.parquet"):
-            pq.read_table(folder_for(data, day) / "positions.parquet", columns=["trade_id"]).to_pandas()
-            for day in (PRIOR, RUN)}
-
-
-def assert_conserved(data: Path, positions: pd.DataFrame, ledger: pd.DataFrame,
-                     raw: dict[str, pd.DataFrame] | None = None) -> frozenset[str]:
-    """Every position of both dates is archived once or rejected by key, never both; returns the rejected trade_ids."""
-    raw = raw or raw_positions(data)
-    archived = positions["trade_id"]
-    assert archived.is_unique, archived[archived.duplicated()].tolist()
-    rejected_rows = ledger[ledger["file"].str.endswith("positions.parquet") & (ledger["severity"] == "rejected")]
-    ids: set[str] = set()
-    for file, frame in raw.items():
-        tid = frame["trade_id"]
-        ids |= set(tid.dropna())
-        in_file = set(rejected_rows.loc[rejected_rows["file"] == file, "key"])
-        for row in tid.index[tid.isna()]:
-            assert f"(null) row {row}" in in_file, (file, row)
-    rejected = set(rejected_rows["key"]) & ids
-    missing = ids - set(archived) - rejected
-    assert not missing, f"positions neither archived nor rejected: {sorted(missing)}"
-    assert not (set(archived) & rejected), f"archived and rejected: {sorted(set(archived) & rejected)}"
-    assert set(archived) <= ids
-    return frozenset(rejected)
 
 
 def assert_counts_add_up(tables: dict[str, pd.DataFrame]) -> None:

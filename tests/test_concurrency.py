@@ -25,8 +25,8 @@ import pytest
 
 from attribution.archive import archive_lock, connect
 from attribution.cli import main
+from tests.archive_checks import assert_same_rows, checksums, night_rows
 from tests.mini_desk import RUN, write_mini_desk
-from tests.test_archive import assert_same_rows, checksums, night_rows
 
 ARCHIVE, REPORTS = "archive.duckdb", "reports"
 WAIT_SECONDS = 300.0   # only a hung run gets near this; a slow machine does not

@@ -1,7 +1,7 @@
 """Single-file row rules of the data contract (attribution.contract).
 
 Each rule is checked by breaking one row of one file of the mini desk (tests/mini_desk.py, written from
-/work/shared/data-contract.md): exactly that row is rejected, with its file, its key and the rule, and
+README.md, "Input files"): exactly that row is rejected, with its file, its key and the rule, and
 every other row of the file stays in the clean table.
 """
 

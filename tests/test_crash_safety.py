@@ -38,8 +38,8 @@ import pytest
 from attribution.archive import archive_lock
 from attribution.cli import main
 from attribution.schema import TABLES
+from tests.archive_checks import assert_same_rows, checksums, night_rows
 from tests.synthetic_night import write_synthetic_desk
-from tests.test_archive import assert_same_rows, checksums, night_rows
 
 ARCHIVE, REPORTS = "archive.duckdb", "reports"
 WAIT_SECONDS = 300.0                 # only a hung run ever gets near this; a slow machine does not

@@ -1,6 +1,6 @@
 """Tests of the demo desk generator (attribution.demo) on short slices.
 
-The data contract (/work/shared/data-contract.md) is the reference for files, columns, types and
+The data contract (README.md, "Input files") is the reference for files, columns, types and
 row rules; QuantLib 1.x (AnalyticEuropeanEngine, flat curves, Actual365Fixed) is the outside
 reference for the BSM prices of clean marks; the rest are properties the scenario promises.
 """

@@ -189,3 +189,31 @@ def test_cycle_finder_sees_a_cycle_through_a_function_level_import(tmp_path):
     assert find_cycle(internal_edges(import_graph(pkg), known)) == ["pkg.engine", "pkg.sub.worker", "pkg.engine"]
     (pkg / "sub/worker.py").write_text("import numpy\n", encoding="utf-8")
     assert find_cycle(internal_edges(import_graph(pkg), known)) == []
+
+
+# ---------------------------------------------------------------- the tests and the repository
+
+
+REPOSITORY = PACKAGE.parent
+TESTS = REPOSITORY / "tests"
+
+
+def test_tests_share_helpers_only_through_helper_modules():
+    """No test file imports another test file; shared checks live in helper modules (tests/*.py without test_)."""
+    known = {f"tests.{p.stem}" for p in TESTS.glob("*.py")} | {p.stem for p in TESTS.glob("*.py")}
+    bad = [f"{p.name}:{i.line} imports {i.target}" for p in sorted(TESTS.glob("*.py"))
+           for i in imports_in(p.read_text(encoding="utf-8"), f"tests.{p.stem}", known)
+           if i.target.rpartition(".")[2].startswith("test_") or i.target.startswith("test_")]
+    assert bad == []
+
+
+def test_no_machine_paths_in_the_repository():
+    """No file cites a path outside the repository (the data contract for users is README.md, "Input files")."""
+    machine = ("/" + "work/", "/" + "shared/", "data-" + "contract.md")
+    folders = ("attribution", "tests", "benchmarks", "jobs", "fixtures", ".ci")
+    files = [REPOSITORY / n for n in ("README.md", "DEVELOPERS.md", "pyproject.toml")]
+    files += [p for f in folders for p in sorted((REPOSITORY / f).rglob("*")) if p.is_file()
+              and p.suffix in {".py", ".md", ".toml", ".html", ".css", ".json", ""} and "__pycache__" not in p.parts]
+    bad = [f"{p.relative_to(REPOSITORY)}: {m}" for p in files for m in machine
+           if m in p.read_text(encoding="utf-8", errors="replace")]
+    assert bad == []

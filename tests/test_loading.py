@@ -1,7 +1,7 @@
 """Reading one date's files: folders, required and optional files, columns and their types (attribution.loading).
 
 Inputs are written from the data contract (tests/contract_files.py, tests/mini_desk.py); the expected
-types and rules are the contract's (/work/shared/data-contract.md, "Inputs").
+types and rules are the contract's (README.md, "Input files").
 """
 
 from __future__ import annotations

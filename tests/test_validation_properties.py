@@ -1,6 +1,6 @@
 """Property tests of input validation: random damage to the tables never crashes the job and never loses a row.
 
-Starting from the mini desk (tests/mini_desk.py, written from /work/shared/data-contract.md), hypothesis
+Starting from the mini desk (tests/mini_desk.py, written from README.md, "Input files"), hypothesis
 removes random rows, duplicates rows (and so keys), and replaces random values by NaN, infinities,
 negatives, zero, None, huge or tiny numbers, blank and wrong strings and odd dates, in any of the sixteen
 files of the two dates; sometimes a whole file is deleted or cut short. Then ``engine.prepare_night``:
@@ -30,9 +30,9 @@ from attribution.config import JobConfig
 from attribution.engine import PreparedNight, prepare_night
 from attribution.lifecycle import STATUSES
 from attribution.loading import OPTIONAL_FILES, InputFileError, folder_for
+from tests.conservation import assert_conserved
 from tests.contract_files import COLUMNS, table
 from tests.mini_desk import PRIOR, RUN, write_mini_desk
-from tests.test_catalogue import assert_conserved
 
 KINDS = tuple(COLUMNS)
 FLOATS = (math.nan, math.inf, -math.inf, -1.0, 0.0, 1e300, -1e300, 1e-300, 5e12, 25.0, None)
