@@ -242,16 +242,10 @@ def _dividends(raw: RawNight, log: ExceptionLog) -> tuple[pd.DataFrame, frozense
     A schedule missing one of its dividends would misprice every option on the underlying, so an
     underlying with any rejected row is unusable that date (see :mod:`attribution.market`).
     """
-    file = "dividends.parquet"
-    frame = raw.tables.get(file)
-    if frame is None:
+    checked = _dated_rules(raw, log, "dividends.parquet", "amount")
+    if checked is None:
         return _empty_dated("amount"), frozenset()
-    frame = frame.assign(key=_dated_key(frame))
-    rules = _Rules(log, raw.path(file), frame, "key")
-    rules.required("underlying", "ex_date")
-    rules.finite("amount")
-    rules.positive("amount")
-    rules.unique("key")
+    frame, rules = checked
     listed = frame["underlying"].isin(raw.tables["underlying_marks.parquet"]["underlying"]).to_numpy()
     rules.reject(~listed, "unknown underlying", lambda m: "no row in underlying_marks for "
                  + frame["underlying"].to_numpy(dtype=object)[m].astype(str))
@@ -262,17 +256,25 @@ def _dividends(raw: RawNight, log: ExceptionLog) -> tuple[pd.DataFrame, frozense
 
 def _corporate_actions(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
     """Clean share adjustments (splits): one per underlying and ex_date, ratio > 0."""
-    file = "corporate_actions.parquet"
+    checked = _dated_rules(raw, log, "corporate_actions.parquet", "ratio")
+    if checked is None:
+        return _empty_dated("ratio")
+    return _typed_dates(checked[1].clean()[["underlying", "ex_date", "ratio"]])
+
+
+def _dated_rules(raw: RawNight, log: ExceptionLog, file: str, value: str) -> tuple[pd.DataFrame, _Rules] | None:
+    """The rules shared by the files keyed by underlying and ex_date: both required, the key unique, ``value``
+    a finite number > 0. None when the (optional) file is absent."""
     frame = raw.tables.get(file)
     if frame is None:
-        return _empty_dated("ratio")
+        return None
     frame = frame.assign(key=_dated_key(frame))
     rules = _Rules(log, raw.path(file), frame, "key")
     rules.required("underlying", "ex_date")
-    rules.finite("ratio")
-    rules.positive("ratio")
+    rules.finite(value)
+    rules.positive(value)
     rules.unique("key")
-    return _typed_dates(rules.clean()[["underlying", "ex_date", "ratio"]])
+    return frame, rules
 
 
 def _empty_dated(value: str) -> pd.DataFrame:

@@ -10,13 +10,14 @@ from the package.
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
-from dataclasses import dataclass
 from pathlib import Path
 
 import QuantLib as ql
 
 from tests.contract_files import write_folder
+from tests.mini_desk import Inst
 
 PRIOR = dt.date(2026, 3, 10)   # a Tuesday
 RUN = dt.date(2026, 3, 11)     # KEL's ex-date and SPL's split date
@@ -30,24 +31,14 @@ SPLIT_RATIO = 2.0
 ACTIONS = [("SPL", RUN, SPLIT_RATIO)]
 
 
-@dataclass(frozen=True)
-class Inst:
-    instrument_id: str
-    underlying: str
-    option_type: str
-    strike: float
-    expiry: dt.date
-    multiplier: float
-
-
-KEL = (Inst("KEL-C100-S26", "KEL", "call", 100.0, dt.date(2026, 9, 18), 100.0),
-       Inst("KEL-P100-S26", "KEL", "put", 100.0, dt.date(2026, 9, 18), 100.0),
-       Inst("KEL-C90-A26", "KEL", "call", 90.0, dt.date(2026, 4, 17), 100.0))
-MOR = (Inst("MOR-C50-S26", "MOR", "call", 50.0, dt.date(2026, 9, 18), 100.0),)
-SPL_OLD = (Inst("SPL-C80-D26", "SPL", "call", 80.0, dt.date(2026, 12, 18), 100.0),
-           Inst("SPL-P70-D26", "SPL", "put", 70.0, dt.date(2026, 12, 18), 100.0))
-SPL_NEW = tuple(Inst(i.instrument_id, i.underlying, i.option_type, i.strike / SPLIT_RATIO, i.expiry,
-                     i.multiplier * SPLIT_RATIO) for i in SPL_OLD)
+KEL = (Inst("KEL-C100-S26", "KEL", "call", 100.0, dt.date(2026, 9, 18), 100.0, "USD"),
+       Inst("KEL-P100-S26", "KEL", "put", 100.0, dt.date(2026, 9, 18), 100.0, "USD"),
+       Inst("KEL-C90-A26", "KEL", "call", 90.0, dt.date(2026, 4, 17), 100.0, "USD"))
+MOR = (Inst("MOR-C50-S26", "MOR", "call", 50.0, dt.date(2026, 9, 18), 100.0, "USD"),)
+SPL_OLD = (Inst("SPL-C80-D26", "SPL", "call", 80.0, dt.date(2026, 12, 18), 100.0, "USD"),
+           Inst("SPL-P70-D26", "SPL", "put", 70.0, dt.date(2026, 12, 18), 100.0, "USD"))
+SPL_NEW = tuple(dataclasses.replace(i, strike=i.strike / SPLIT_RATIO, multiplier=i.multiplier * SPLIT_RATIO)
+                for i in SPL_OLD)
 INSTRUMENTS = {PRIOR: KEL + MOR + SPL_OLD, RUN: KEL + MOR + SPL_NEW}
 POSITIONS = [("D1", "KEL-C100-S26", 10.0), ("D2", "KEL-P100-S26", -8.0), ("D3", "KEL-C90-A26", 5.0),
              ("D4", "MOR-C50-S26", 3.0), ("S1", "SPL-C80-D26", 6.0), ("S2", "SPL-P70-D26", -4.0)]
@@ -124,7 +115,7 @@ def write_dividend_desk(root: Path, *, desk_vols: bool = True, dividends: bool =
                            "trade_price": None} for t, i, q in POSITIONS],
             "instruments": [{"instrument_id": i.instrument_id, "underlying": i.underlying,
                              "option_type": i.option_type, "exercise": "european", "strike": i.strike,
-                             "expiry": i.expiry, "multiplier": i.multiplier, "currency": "USD"}
+                             "expiry": i.expiry, "multiplier": i.multiplier, "currency": i.currency}
                             for i in INSTRUMENTS[as_of]],
             "option_marks": [{"instrument_id": i.instrument_id, "price": mark(i, as_of),
                               "implied_vol": VOL[i.underlying] if desk_vols else None} for i in INSTRUMENTS[as_of]],
