@@ -18,10 +18,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import NDArray
 
-from attribution.arrays import FloatArray
+from attribution.arrays import FloatArray, IntArray
 from attribution.demo.desk import DAYS_PER_YEAR, DeskSpec
-
-IntArray = NDArray[np.int64]
 
 
 @dataclass(frozen=True, slots=True)
