@@ -5,10 +5,10 @@ Each check returns the positions (indexes into the arrays) of the marks it flags
 for the message; the caller turns them into ledger warnings.
 
 * Off smile: ``|vol - fitted|`` above a distance on a smile with a quadratic fit (:mod:`attribution.smile`),
-  and also that far from the distance of each of its two neighbouring strikes (the next lower and next higher;
-  at either end of the smile, the next two inward), so that a smile the quadratic does not follow everywhere
-  (flat far wings) does not flag every wing mark: a mark is off smile when it stands out from the fit and
-  from its neighbours.
+  and the mark's distance also that far from what its neighbours give: the line (in x) through the next
+  lower and next higher strike's distances, or, at either end of a smile, each of the next two strikes
+  inward. A smile the quadratic does not follow everywhere (a flat far wing) shifts neighbouring distances
+  together and is not flagged mark by mark; a mark that stands out from its neighbours is.
   With exactly three strikes the fit passes through every mark.
 * Butterfly: along one smile's distinct strikes K1 < K2 < K3 (neighbours), the call price at the
   marked vol must be convex in strike, C(K2) <= l C(K1) + (1 - l) C(K3) with l = (K3 - K2) / (K3 - K1)
@@ -57,22 +57,32 @@ def _strike_pairs(smile: IntArray, strike: FloatArray) -> tuple[IntArray, IntArr
     return pair, order[new_pair]
 
 
-def off_smile(smile: IntArray, strike: FloatArray, vol: FloatArray, fitted: FloatArray,
+def off_smile(smile: IntArray, strike: FloatArray, x: FloatArray, vol: FloatArray, fitted: FloatArray,
               quadratic: NDArray[np.bool_], distance: float) -> Findings:
-    """Marks more than ``distance`` (decimal vol) from their smile's fit and from both neighbours' distance."""
+    """Marks more than ``distance`` (decimal vol) from their smile's fit and from their neighbours' line."""
     residual = vol - fitted
     pair, first_mark = _strike_pairs(smile, strike)
     n_pairs = first_mark.size
     mean = np.bincount(pair, residual, n_pairs) / np.maximum(np.bincount(pair, minlength=n_pairs), 1)
+    px = x[first_mark]
     pair_smile = smile[first_mark]
     start = np.searchsorted(pair_smile, pair_smile, side="left")
     end = np.searchsorted(pair_smile, pair_smile, side="right") - 1
     j = np.arange(n_pairs)
     first, last = j == start, j == end
-    # Neighbours: the next lower and next higher strike; at either end of a smile, the next two inward.
-    r1 = np.clip(np.where(first, j + 1, j - 1), 0, max(n_pairs - 1, 0))
-    r2 = np.clip(np.where(first, j + 2, np.where(last, j - 2, j + 1)), 0, max(n_pairs - 1, 0))
-    apart = np.minimum(np.abs(residual - mean[r1][pair]), np.abs(residual - mean[r2][pair])) > distance
+    top = max(n_pairs - 1, 0)
+    # Inside a smile: the residual expected from the line through the next lower and next higher strike's.
+    lo, hi = np.clip(j - 1, 0, top), np.clip(j + 1, 0, top)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        share = np.where(px[hi] > px[lo], (px - px[lo]) / (px[hi] - px[lo]), 0.5)
+    line = mean[lo] + share * (mean[hi] - mean[lo])
+    apart = np.abs(residual - line[pair]) > distance
+    # At either end: apart from both of the next two strikes inward.
+    r1 = np.clip(np.where(first, j + 1, j - 1), 0, top)
+    r2 = np.clip(np.where(first, j + 2, j - 2), 0, top)
+    end_apart = np.minimum(np.abs(residual - mean[r1][pair]), np.abs(residual - mean[r2][pair])) > distance
+    at_end = (first | last)[pair]
+    apart = np.where(at_end, end_apart, apart)
     hit = np.flatnonzero(quadratic & (np.abs(residual) > distance) & apart)
     return Findings(hit, vol[hit], fitted[hit])
 

@@ -187,8 +187,8 @@ def check_smiles(smiles: NightSmiles, m1: InstrumentMarket, vol1: FloatArray, of
     g = run.smile[pts]
     ids = _Ids(m1.ids, pts)
     # Off smile on the vols the smiles were fitted to (the variance clock's, when the job weights time).
-    found = off_smile(g, m1.strike[pts], run.fit.fitted + run.fit.residual, run.fit.fitted, run.fit.quadratic[g],
-                      off_smile_vol)
+    found = off_smile(g, m1.strike[pts], run.x[pts], run.fit.fitted + run.fit.residual, run.fit.fitted,
+                      run.fit.quadratic[g], off_smile_vol)
     log.add(marks_file, ids[found.index], "off smile",
             [f"implied vol {v:.4f} is {abs(v - f) * 100:.2f} vol points from its fitted smile ({f:.4f}) on {s}"
              for v, f, s in zip(found.observed, found.bound, _names(smiles, g[found.index]), strict=True)], WARNING)

@@ -22,20 +22,24 @@ def test_off_smile_flags_only_marks_beyond_the_distance_on_quadratic_smiles():
     vol = np.array([0.20, 0.20, 0.25, 0.21, 0.20, 0.30, 0.20])
     fitted = np.full(7, 0.20)
     quadratic = np.array([True] * 5 + [False] * 2)
-    found = off_smile(smile, strike, vol, fitted, quadratic, 0.02)
+    found = off_smile(smile, strike, np.log(strike / 100.0) / 0.2, vol, fitted, quadratic, 0.02)
     assert found.index.tolist() == [2]
     assert found.observed[0] == 0.25 and found.bound[0] == 0.20
 
 
 def test_a_wing_the_quadratic_misses_is_not_off_smile_but_a_spike_in_it_is():
-    """A wing 3 points above the fit is not off smile (its neighbours agree); a spike 3 points above the wing is."""
+    """A wing or a tilt the fit misses is not off smile (neighbours agree); a spike 3 points above the wing is."""
     smile = np.zeros(7, dtype=np.intp)
     strike = np.array([80.0, 90.0, 100.0, 110.0, 120.0, 130.0, 140.0])
     fitted = np.full(7, 0.20)
     vol = np.array([0.20, 0.20, 0.20, 0.23, 0.23, 0.23, 0.23])
-    assert off_smile(smile, strike, vol, fitted, np.ones(7, bool), 0.02).index.size == 0
+    x = np.log(strike / 100.0) / 0.2
+    assert off_smile(smile, strike, x, vol, fitted, np.ones(7, bool), 0.02).index.size == 0
     vol[5] = 0.26
-    assert off_smile(smile, strike, vol, fitted, np.ones(7, bool), 0.02).index.tolist() == [5]
+    assert off_smile(smile, strike, x, vol, fitted, np.ones(7, bool), 0.02).index.tolist() == [5]
+    tilted = fitted + 0.03 * x                  # distances on a line in x, up to 5 points: a misfit, no bad mark
+    assert np.abs(tilted - fitted).max() > 0.04
+    assert off_smile(smile, strike, x, tilted, fitted, np.ones(7, bool), 0.02).index.size == 0
 
 
 def test_a_flat_or_skewed_smile_has_no_butterfly_arbitrage():
