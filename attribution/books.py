@@ -13,6 +13,7 @@ import datetime as dt
 import numpy as np
 import pandas as pd
 
+from attribution.activity import POSITION_BREAK
 from attribution.config import JobConfig
 from attribution.contract import NULL_KEY
 from attribution.controls import BREACH, WATCH, book_states, position_states
@@ -32,7 +33,8 @@ def position_books(raw0: RawNight, raw1: RawNight, exceptions: pd.DataFrame) -> 
     keys = exceptions["key"].astype(str)
     keyless = keys.str.startswith(NULL_KEY).to_numpy() & on_positions
     book = np.full(len(exceptions), None, dtype=object)
-    with_key = on_positions & ~keyless
+    position_break = (exceptions["rule"] == POSITION_BREAK).to_numpy()  # keyed by trade_id: shown with its book
+    with_key = (on_positions & ~keyless) | position_break
     wanted = keys[with_key].unique()  # only the few trades the ledger names, not every position
     by_trade = pd.concat([r.tables["positions.parquet"].loc[lambda f: f["trade_id"].isin(wanted), ["trade_id", "book"]]
                           for r in (raw1, raw0)])

@@ -37,6 +37,7 @@ class LimitSettings:
     relative_floor: float = 100_000.0
     position_abs: float = 10_000.0
     watch_fraction: float = 0.8
+    official_break: float = 100.0  # |official P&L - pnl_total| above this is a finding (official_pnl.parquet)
 
 
 @dataclass(frozen=True, slots=True)

@@ -36,6 +36,10 @@ class CleanNight:
     dividends: pd.DataFrame        # underlying, ex_date (datetime64[D]), amount; empty without the file
     broken_schedules: frozenset[str]  # underlyings with a rejected row in dividends.parquet
     corporate_actions: pd.DataFrame   # underlying, ex_date (datetime64[D]), ratio; empty without the file
+    future_marks: pd.DataFrame     # settlement price of futures, indexed by instrument_id (empty without the file)
+    activity: pd.DataFrame | None  # trade_activity rows (None without the file: the two-snapshot fallback)
+    cash_flows: pd.DataFrame       # cash_flows rows (empty without the file)
+    official: pd.Series            # official P&L per book (empty without the file)
 
 
 Detail = str | Callable[[np.ndarray], object]
@@ -127,21 +131,110 @@ def _positions(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> tuple
     return rules.clean().reset_index(drop=True), rejected
 
 
+KINDS = ("option", "underlying", "future", "forward")
+# Which kinds need each term (data contract, "Instrument kinds"); the other kinds must leave it null.
+TERM_KINDS: dict[str, tuple[str, ...]] = {
+    "option_type": ("option",),
+    "exercise": ("option",),
+    "strike": ("option", "forward"),
+    "expiry": ("option", "future", "forward"),
+}
+
+
 def _instruments(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
     file = "instruments.parquet"
     frame = raw.tables[file]
     rules = _Rules(log, raw.path(file), frame, "instrument_id")
-    rules.required("instrument_id", "underlying", "option_type", "exercise", "expiry", "currency")
+    kind = frame["kind"].where(frame["kind"].notna(), "option")  # null or absent: an option (version 1)
+    for column in ("instrument_id", "underlying", "option_type", "exercise", "expiry", "currency"):
+        applies = kind.isin(TERM_KINDS.get(column, KINDS)).to_numpy()
+        rules.reject(applies & _blank(frame[column]), f"{column} is null", f"{column} is required (null or blank)")
     rules.unique("instrument_id")
-    rules.reject(~frame["option_type"].isin(["call", "put"]), "option_type must be call or put",
+    rules.reject(~kind.isin(KINDS), "kind must be option, underlying, future or forward", shown(frame, "kind"))
+    for column, kinds in TERM_KINDS.items():
+        given = ~frame[column].isna().to_numpy()
+        for name in (k for k in KINDS if k not in kinds):
+            rules.reject(given & (kind == name).to_numpy(), f"{column} must be null for kind {name}",
+                         lambda m, column=column, name=name: shown(frame, column)(m) + f"; kind {name} has no {column}")
+    option = (kind == "option").to_numpy()
+    rules.reject(option & ~frame["option_type"].isin(["call", "put"]).to_numpy(), "option_type must be call or put",
                  shown(frame, "option_type"))
-    rules.reject(~frame["exercise"].isin(["european", "american"]), "exercise must be european or american",
-                 shown(frame, "exercise"))
-    rules.finite("strike", "multiplier")
-    rules.positive("strike", "multiplier")
+    rules.reject(option & ~frame["exercise"].isin(["european", "american"]).to_numpy(),
+                 "exercise must be european or american", shown(frame, "exercise"))
+    struck = kind.isin(TERM_KINDS["strike"]).to_numpy()
+    strike = frame["strike"].to_numpy(dtype=float)
+    rules.reject(struck & ~np.isfinite(strike), "strike is not a finite number", shown(frame, "strike"))
+    rules.finite("multiplier")
+    rules.reject(struck & (strike <= 0), "strike must be > 0", shown(frame, "strike"))
+    rules.positive("multiplier")
     currency = frame["currency"].astype(str)
     rules.reject(~currency.str.fullmatch(r"[A-Z]{3}"), "currency must be an ISO 4217 code", shown(frame, "currency"))
+    return rules.clean().assign(kind=kind[rules.ok]).set_index("instrument_id")
+
+
+def _future_marks(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
+    file = "future_marks.parquet"
+    frame = raw.tables.get(file)
+    if frame is None:
+        return pd.DataFrame({"price": pd.Series(dtype=float)}, index=pd.Index([], name="instrument_id", dtype=object))
+    rules = _Rules(log, raw.path(file), frame, "instrument_id")
+    rules.required("instrument_id")
+    rules.unique("instrument_id")
+    rules.finite("price")
+    rules.positive("price")
     return rules.clean().set_index("instrument_id")
+
+
+ACTIVITY_KINDS = ("new", "increase", "decrease", "close", "exercise", "assignment", "correction", "cancel")
+UNPRICED_ACTIVITY = ("correction", "cancel")  # booking fixes: restate the quantity, make no P&L
+CASH_KINDS = ("fee", "commission", "dividend", "financing", "settlement", "other")
+
+
+def activity_rows(raw: RawNight, log: ExceptionLog) -> pd.DataFrame | None:
+    file = "trade_activity.parquet"
+    frame = raw.tables.get(file)
+    if frame is None:
+        return None
+    rules = _Rules(log, raw.path(file), frame, "activity_id")
+    rules.required("activity_id", "trade_id", "kind")
+    rules.unique("activity_id")
+    rules.reject(~frame["kind"].isin(ACTIVITY_KINDS), "activity kind unknown",
+                 lambda m: shown(frame, "kind")(m) + "; one of " + ", ".join(ACTIVITY_KINDS))
+    rules.finite("quantity")
+    price = frame["price"].to_numpy(dtype=float)
+    rules.reject(np.isinf(price), "price is not a finite number", shown(frame, "price"))
+    rules.reject(frame["kind"].isin(UNPRICED_ACTIVITY).to_numpy() & ~np.isnan(price),
+                 "price must be null for a correction or cancel", shown(frame, "price"))
+    return rules.clean().reset_index(drop=True)
+
+
+def _cash_flows(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
+    file = "cash_flows.parquet"
+    frame = raw.tables.get(file)
+    if frame is None:
+        return pd.DataFrame({c: pd.Series(dtype=object if c != "amount" else float)
+                             for c in ("flow_id", "book", "trade_id", "currency", "amount", "kind")})
+    rules = _Rules(log, raw.path(file), frame, "flow_id")
+    rules.required("flow_id", "book", "currency", "kind")
+    rules.unique("flow_id")
+    rules.finite("amount")
+    rules.reject(~frame["kind"].isin(CASH_KINDS), "cash flow kind unknown",
+                 lambda m: shown(frame, "kind")(m) + "; one of " + ", ".join(CASH_KINDS))
+    currency = frame["currency"].astype(str)
+    rules.reject(~currency.str.fullmatch(r"[A-Z]{3}"), "currency must be an ISO 4217 code", shown(frame, "currency"))
+    return rules.clean().reset_index(drop=True)
+
+
+def _official_pnl(raw: RawNight, log: ExceptionLog) -> pd.Series:
+    file = "official_pnl.parquet"
+    frame = raw.tables.get(file)
+    if frame is None:
+        return pd.Series(dtype=float)
+    rules = _Rules(log, raw.path(file), frame, "book")
+    rules.required("book")
+    rules.unique("book")
+    rules.finite("pnl")
+    return rules.clean().set_index("book")["pnl"].astype(float)
 
 
 def _marks(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.DataFrame:
@@ -288,10 +381,16 @@ def _typed_dates(frame: pd.DataFrame) -> pd.DataFrame:
     return out
 
 
-def clean_night(raw: RawNight, log: ExceptionLog, checks: CheckSettings, reporting_currency: str) -> CleanNight:
-    """Apply every single-file row rule of the contract to one date's files."""
+def clean_night(raw: RawNight, log: ExceptionLog, checks: CheckSettings, reporting_currency: str,
+                run_date: bool = True) -> CleanNight:
+    """Apply every single-file row rule of the contract to one date's files.
+
+    The files of the run date's events (trade_activity, cash_flows, official_pnl) are checked only
+    when ``run_date``: the prior date's were its own night's.
+    """
     positions, rejected = _positions(raw, log, checks)
     dividends, broken_schedules = _dividends(raw, log)
+    events = raw if run_date else RawNight(raw.as_of, raw.folder, {}, {})
     return CleanNight(
         raw=raw,
         positions=positions,
@@ -305,4 +404,8 @@ def clean_night(raw: RawNight, log: ExceptionLog, checks: CheckSettings, reporti
         dividends=dividends,
         broken_schedules=broken_schedules,
         corporate_actions=_corporate_actions(raw, log),
+        future_marks=_future_marks(raw, log),
+        activity=activity_rows(events, log),
+        cash_flows=_cash_flows(events, log),
+        official=_official_pnl(events, log),
     )

@@ -51,12 +51,15 @@ import pyarrow.parquet as pq
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
+from attribution.activity import CASH, unknown_trades
 from attribution.books import NO_BOOK
 from attribution.config import JobConfig
+from attribution.contract import activity_rows
 from attribution.engine import PreparedNight, Progress, Stopwatch, prepare_night, resolve_prior
 from attribution.errors import JobFailure
+from attribution.exceptions_log import ExceptionLog
 from attribution.lifecycle import NEW, NEW_UNPRICED, match_keys
-from attribution.loading import blank_books, folder_for, read_night
+from attribution.loading import RawNight, blank_books, folder_for, read_file, read_night
 
 log = logging.getLogger("attribution")
 
@@ -185,7 +188,8 @@ def _concat(frames: list[pd.DataFrame]) -> pd.DataFrame:
 
 
 def local_order(positions: pd.DataFrame, keys: tuple[PositionKeys, PositionKeys]) -> pd.DataFrame:
-    """Rows in the local engine's order: prior-date trades by prior-file row, then new trades by run-file row.
+    """Rows in the local engine's order: prior-date trades by prior-file row, then new trades by run-file row,
+    then the books' cash rows by book.
 
     An archived trade_id is unique in its file (every copy of a repeated one is rejected), so its row
     there is well defined.
@@ -193,7 +197,9 @@ def local_order(positions: pd.DataFrame, keys: tuple[PositionKeys, PositionKeys]
     trade = positions["trade_id"].to_numpy(dtype=object)
     is_new = positions["status"].isin([NEW, NEW_UNPRICED]).to_numpy()
     row = np.where(is_new, match_keys(trade, keys[1].trade_id)[0], match_keys(trade, keys[0].trade_id)[0])
-    return positions.iloc[np.lexsort((row, is_new))].reset_index(drop=True)
+    is_cash = (positions["status"] == CASH).to_numpy()  # the books' cash rows come last, by book
+    row = np.where(is_cash, pd.Series(positions["book"]).rank(method="dense").fillna(0).to_numpy(), row)
+    return positions.iloc[np.lexsort((row, is_new, is_cash))].reset_index(drop=True)
 
 
 def merge_exceptions(parts: list[pd.DataFrame]) -> pd.DataFrame:
@@ -219,6 +225,48 @@ def merge_parts(parts: list[PreparedNight], keys: tuple[PositionKeys, PositionKe
                          unaccounted, stages, parts[0].dividend_schedule)  # every part reads every dividend
 
 
+def with_event_books(groups: tuple[BookGroup, ...], config: JobConfig, as_of: dt.date,
+                     keys: tuple[PositionKeys, PositionKeys]) -> tuple[BookGroup, ...]:
+    """Books named only by the run date's cash_flows or official_pnl (no position on either date) go
+    to the first group, so that one task makes their cash row and official break, as locally."""
+    folder = folder_for(config.data_root, as_of)
+    named: set[str] = set()
+    for file in ("cash_flows.parquet", "official_pnl.parquet"):
+        if (folder / file).exists():
+            try:
+                books = pq.read_table(folder / file, columns=["book"]).column("book").cast(pa.string())
+            except (OSError, KeyError, pa.ArrowException):
+                continue  # the task's own read reports the file exactly as a local run does
+            named |= {b for b in books.to_pylist() if b is not None}
+    held = {b for k in keys for b in k.book.tolist() if b is not None}
+    extra = frozenset(named - held)
+    if not extra or not groups:
+        return groups
+    first = groups[0]
+    return (BookGroup(first.books | extra, first.keep_null_books, first.positions), *groups[1:])
+
+
+def _unknown_activity(night: PreparedNight, config: JobConfig, as_of: dt.date,
+                      keys: tuple[PositionKeys, PositionKeys]) -> PreparedNight:
+    """Warn activity rows of trades in neither date's positions: only the driver sees every trade."""
+    folder = folder_for(config.data_root, as_of)
+    frame, _ = read_file(folder, "trade_activity.parquet")
+    if frame is None:
+        return night
+    ledger = ExceptionLog(as_of)
+    clean = activity_rows(RawNight(as_of, folder, {"trade_activity.parquet": frame}, {}), ExceptionLog(as_of))
+    known = pd.Index(np.concatenate([k.trade_id for k in keys]))
+    unknown_trades(clean, known, str(folder / "trade_activity.parquet"), "activity_id",
+                   "activity of an unknown trade", ledger)
+    extra = ledger.frame()
+    if extra.empty:
+        return night
+    extra = extra.assign(book=None)[night.exceptions.columns]
+    exceptions = pd.concat([night.exceptions, extra], ignore_index=True) if len(night.exceptions) else extra
+    return PreparedNight(night.as_of, night.prior_as_of, night.positions, night.books, exceptions, night.hashes,
+                         night.positions_in, night.rejected_positions, night.unaccounted, night.stages)
+
+
 def _threads(client: Any) -> int:
     try:
         client.wait_for_workers(1, timeout=WORKER_WAIT_SECONDS)
@@ -231,13 +279,14 @@ def _on_cluster(client: Any, config: JobConfig, as_of: dt.date, prior: dt.date |
                 watch: Stopwatch) -> PreparedNight:
     prior_as_of = resolve_prior(config, as_of, prior)
     keys = position_keys(config, prior_as_of, as_of)
-    groups = book_groups(keys, TASKS_PER_THREAD * _threads(client))
+    groups = with_event_books(book_groups(keys, TASKS_PER_THREAD * _threads(client)), config, as_of, keys)
     log.info("%s: %d book group(s) of %s positions", as_of, len(groups), [g.positions for g in groups])
     futures = [client.submit(prepare_night, config, as_of, prior_as_of, None, g.books, g.keep_null_books,
                              pure=False) for g in groups]
     parts = client.gather(futures)
     watch.lap("cluster")
     night = merge_parts(parts, keys, ())
+    night = _unknown_activity(night, config, as_of, keys)
     watch.lap("merge")
     return night
 

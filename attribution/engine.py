@@ -20,18 +20,31 @@ import numpy as np
 import pandas as pd
 
 from attribution import __version__
+from attribution.activity import (
+    CASH,
+    OFFICIAL_BREAK,
+    LegActivity,
+    cash_rows,
+    leg_activity,
+    leg_quantities,
+    official_breaks,
+    official_unknown,
+    reconcile,
+    unknown_trades,
+    with_statuses,
+)
 from attribution.archive import archive_lock, connect, write_night
 from attribution.books import book_frame, conservation, position_books, position_limit_states, rejected_positions
 from attribution.config import ConfigError, JobConfig
-from attribution.contract import clean_night
+from attribution.contract import CleanNight, clean_night
 from attribution.controls import BREACH
 from attribution.corporate_actions import restate_prior
 from attribution.dividends import going_ex, schedule_frame
 from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
 from attribution.exceptions_log import WARNING, ExceptionLog
-from attribution.lifecycle import match_legs
+from attribution.lifecycle import Legs, match_legs
 from attribution.loading import prior_date, read_night
-from attribution.market import build_market, flag_stale_marks, instrument_terms
+from attribution.market import InstrumentMarket, build_market, flag_stale_marks, instrument_terms
 from attribution.night import corporate_flags, dividend_income, position_rows, stale_flags
 from attribution.smile_night import check_smiles, night_smiles
 from attribution.timebasis import TimeBasis
@@ -114,6 +127,40 @@ def resolve_prior(config: JobConfig, as_of: dt.date, prior: dt.date | None) -> d
     return prior
 
 
+def _trade_activity(legs: Legs, clean0: CleanNight, clean1: CleanNight, market0: InstrumentMarket,
+                    market1: InstrumentMarket, log: ExceptionLog, whole: bool) -> tuple[Legs, LegActivity | None]:
+    """The run date's activity per leg, the statuses it sets and the quantity reconciliation (README,
+    "Trade activity"); ``whole``: the night holds every position (activity of no trade is warned)."""
+    if clean1.activity is None:
+        return legs, None
+    path = clean1.raw.path("trade_activity.parquet")
+    if whole:
+        known = pd.Index(pd.concat([c.raw.tables["positions.parquet"]["trade_id"] for c in (clean0, clean1)]))
+        unknown_trades(clean1.activity, known, path, "activity_id", "activity of an unknown trade", log)
+    qty0, qty1 = leg_quantities(legs, clean0, clean1)
+    act = leg_activity(clean1.activity, legs, market0, market1)
+    legs = with_statuses(legs, act, qty1)
+    reconcile(legs, qty0, qty1, act, path, log)
+    return legs, act
+
+
+def _official(frame: pd.DataFrame, exceptions: pd.DataFrame, clean1: CleanNight, config: JobConfig,
+              part: frozenset[str] | None) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Book rows with the official P&L and its break; break warnings added to the ledger (keyed by book)."""
+    if clean1.official.empty:
+        return frame, exceptions
+    log = ExceptionLog(clean1.raw.as_of)
+    path = clean1.raw.path("official_pnl.parquet")
+    limits = [config.limits_for(b).official_break for b in frame["book"]]
+    frame, _ = official_breaks(frame, clean1.official, limits, path, log)
+    official_unknown(clean1.official, frame, part, path, log)
+    extra = log.frame()
+    if extra.empty:
+        return frame, exceptions
+    extra = extra.assign(book=np.where(extra["rule"] == OFFICIAL_BREAK, extra["key"], None))[exceptions.columns]
+    return frame, pd.concat([exceptions, extra], ignore_index=True) if len(exceptions) else extra
+
+
 def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
                   progress: Progress | None = None, books: frozenset[str] | None = None,
                   keep_null_books: bool = True) -> PreparedNight:
@@ -130,7 +177,7 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     watch.lap("read")
     log = ExceptionLog(as_of)
     basis = TimeBasis(config.time_basis, config.holidays)
-    clean0 = clean_night(raw0, log, config.checks, config.reporting_currency)
+    clean0 = clean_night(raw0, log, config.checks, config.reporting_currency, run_date=False)
     clean1 = clean_night(raw1, log, config.checks, config.reporting_currency)
     clean0, restated = restate_prior(clean0, clean1, log)  # a split tonight: the prior date in new units
     watch.lap("validate")
@@ -141,6 +188,7 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     stale = flag_stale_marks(market0, market1, config.checks.stale_spot_move,
                              raw1.path("option_marks.parquet"), log)
     legs = match_legs(clean0, clean1, market0, market1, log)
+    legs, activity = _trade_activity(legs, clean0, clean1, market0, market1, log, books is None)
     clock = variance_clock(basis, config.vol_time, prior_as_of, as_of, market0.expiry, market0.tau_years,
                            market1.expiry, market1.tau_years)
     vol0, vol1 = (market0.vol, market1.vol) if clock is None else (
@@ -149,18 +197,21 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     check_smiles(smiles, market1, market1.vol, config.smile.off_smile_vol, raw1.path("option_marks.parquet"), log)
     watch.lap("market")
     positions = position_rows(legs, clean0, clean1, market0, market1, basis, config.revaluation, smiles,
-                              config.smile.dynamics, clock)
+                              config.smile.dynamics, clock, activity)
     positions = stale_flags(positions, market1.ids[stale].to_numpy())
     went_ex = going_ex(clean0.dividends, clean1.dividends, prior_as_of, as_of)
     positions = corporate_flags(dividend_income(positions, went_ex), restated, went_ex)
     pairs = pd.DataFrame({"underlying": market1.underlying, "currency": market1.currency}).drop_duplicates()
     schedule = schedule_frame(as_of, prior_as_of, clean1.dividends, clean0.dividends, pairs, clean1.curves, basis)
+    positions = cash_rows(positions, clean1, config.reporting_currency, log, books)
     watch.lap("explain")
     positions["limit_state"] = position_limit_states(positions, config)
     ledger = position_books(raw0, raw1, log.frame())
     rejected = rejected_positions(ledger)
     exceptions = ledger.drop(columns="position")
-    books = book_frame(positions, exceptions, rejected, config, as_of, prior_as_of, clean1.desks)
+    frame = book_frame(positions, exceptions, rejected, config, as_of, prior_as_of, clean1.desks)
+    frame, exceptions = _official(frame, exceptions, clean1, config, books)
+    books = frame
     positions_in, missing = conservation(raw0, raw1, positions["trade_id"], rejected)
     watch.lap("controls")
     hashes = {raw.path(f): h for raw in (raw0, raw1) for f, h in raw.hashes.items()}
@@ -175,7 +226,7 @@ def _runs_frame(night: PreparedNight, config: JobConfig, run_id: str, started: d
         "started_at": started, "finished_at": dt.datetime.now(), "status": "complete",
         "tool_version": __version__, "input_hashes": json.dumps(night.hashes, sort_keys=True),
         "job_settings": json.dumps(config.as_record(), sort_keys=True),
-        "positions_in": night.positions_in, "positions_archived": len(night.positions),
+        "positions_in": night.positions_in, "positions_archived": int((night.positions["status"] != CASH).sum()),
         "positions_rejected": night.rejected_positions,
         "warnings": int((night.exceptions["severity"] == WARNING).sum()),
         "book_breaches": int((night.books["limit_state"] == BREACH).sum()),
@@ -237,7 +288,8 @@ def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
     watch = Stopwatch(progress)
     book_breaches = int((night.books["limit_state"] == BREACH).sum())
     position_breaches = int((night.positions["limit_state"] == BREACH).sum())
-    findings = night.rejected_positions > 0 or book_breaches > 0 or position_breaches > 0
+    official_breaks_found = int((night.exceptions["rule"] == OFFICIAL_BREAK).sum())
+    findings = night.rejected_positions > 0 or book_breaches > 0 or position_breaches > 0 or official_breaks_found > 0
     exit_code = EXIT_FINDINGS if findings else EXIT_OK
     frames = {"position_pnl": night.positions, "book_pnl": night.books, "input_exceptions": night.exceptions,
               "runs": _runs_frame(night, config, str(uuid.uuid4()), started, exit_code, time.perf_counter() - t0)}
@@ -253,7 +305,8 @@ def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
         watch.lap("report")
     pos = night.positions
     return NightOutcome(
-        as_of=as_of, prior_as_of=night.prior_as_of, positions_in=night.positions_in, archived=len(pos),
+        as_of=as_of, prior_as_of=night.prior_as_of, positions_in=night.positions_in,
+        archived=int((pos["status"] != CASH).sum()),
         rejected=night.rejected_positions, warnings=int((night.exceptions["severity"] == WARNING).sum()),
         books=len(night.books), total_pnl=float(pos["pnl_total"].sum()),
         overnight_actual=float(pos["pnl_actual"].sum()), explained=float(pos["pnl_explained"].sum()),

@@ -78,24 +78,27 @@ class Explain:
 
 
 def model_value(strike: FloatArray, cp: FloatArray, state: MarketState, american: NDArray[np.bool_] | None = None,
-                scheme: Scheme = STANDARD) -> FloatArray:
-    """Model price per unit of underlying at ``state`` (American rows by the American method)."""
-    return value(strike, cp, state, american, scheme=scheme)
+                scheme: Scheme = STANDARD, *, kind: NDArray[np.int8] | None = None) -> FloatArray:
+    """Model price per unit of underlying at ``state`` (American rows by the American method, delta-one
+    kinds by theirs: :mod:`attribution.valuation`)."""
+    return value(strike, cp, state, american, kind=kind, scheme=scheme)
 
 
 def explain_overnight(strike: FloatArray, cp: FloatArray, units: FloatArray, state0: MarketState,
                       state1: MarketState, price0: FloatArray, price1: FloatArray, dt_years: FloatArray,
                       american: NDArray[np.bool_] | None = None, *, scheme: Scheme = STANDARD,
                       group: NDArray[np.intp] | None = None,
-                      prior: tuple[Greeks, NDArray[np.bool_]] | None = None) -> Explain:
+                      prior: tuple[Greeks, NDArray[np.bool_]] | None = None,
+                      kind: NDArray[np.int8] | None = None) -> Explain:
     """Taylor split and full-revaluation split of each position's overnight P&L.
 
     ``group``: rows with equal values share both states (e.g. one instrument), so American prices and
     greeks are computed once per group. ``prior``: the greeks and exercise flags at ``state0`` when the
-    caller has them already (as :func:`attribution.valuation.value_and_greeks` returns them).
+    caller has them already (as :func:`attribution.valuation.value_and_greeks` returns them). ``kind``:
+    instrument kind codes (None: every row an option); a delta-one kind's inapplicable terms are 0.
     """
-    g, exercised0 = prior or value_and_greeks(strike, cp, state0, american, scheme=scheme, group=group)
-    value1, exercised1 = value_and_exercised(strike, cp, state1, american, scheme=scheme, group=group)
+    g, exercised0 = prior or value_and_greeks(strike, cp, state0, american, kind=kind, scheme=scheme, group=group)
+    value1, exercised1 = value_and_exercised(strike, cp, state1, american, kind=kind, scheme=scheme, group=group)
     d_spot = state1.spot - state0.spot
     d_pv = state1.div_pv - state0.div_pv
     d_priced = state1.escrowed_spot - state0.escrowed_spot  # the move of the spot the model prices on
@@ -115,7 +118,7 @@ def explain_overnight(strike: FloatArray, cp: FloatArray, units: FloatArray, sta
     model = units * (value1 - g.price)
     crossed = (exercised0 != exercised1) & (state1.tau_years > 0)
     if crossed.any():
-        shares = revaluation_shares(strike, cp, state0, state1, crossed, scheme=scheme, group=group)
+        shares = revaluation_shares(strike, cp, state0, state1, crossed, kind=kind, scheme=scheme, group=group)
         for term, share in ((delta, shares.spot), (vega, shares.vol), (theta, shares.time), (rates, shares.rates),
                             (dividend, shares.dividend)):
             term[crossed] = units[crossed] * share[crossed]

@@ -30,7 +30,8 @@ from attribution.exceptions_log import ExceptionLog
 from attribution.market import InstrumentMarket, take
 
 CARRIED, CLOSED, NEW, NEW_UNPRICED, EXPIRED, SETTLED = "carried", "closed", "new", "new_unpriced", "expired", "settled"
-STATUSES = (CARRIED, CLOSED, NEW, NEW_UNPRICED, EXPIRED, SETTLED)
+EXERCISED = "exercised"  # exercised or assigned whole on the run date (trade_activity.parquet)
+STATUSES = (CARRIED, CLOSED, NEW, NEW_UNPRICED, EXPIRED, SETTLED, EXERCISED)
 EXPIRIES = (EXPIRED, SETTLED)
 
 
@@ -87,11 +88,12 @@ def _terms_changed(market0: InstrumentMarket, market1: InstrumentMarket, instrum
     both = market0.listed & take(market1.listed, j, False)
     detail = np.full(len(j), "", dtype=object)
     jj = np.where(both, j, 0)
-    for name in ("underlying", "option_type", "strike", "expiry", "multiplier", "currency"):  # six fields, not rows
+    for name in ("kind", "underlying", "option_type", "american", "strike", "expiry", "multiplier",
+                 "currency"):  # eight fields, not rows
         if not both.any():
             break
         before, after = getattr(market0, name), getattr(market1, name)
-        differs = both & (before != after[jj])
+        differs = both & (before != after[jj]) & ~(pd.isna(before) & pd.isna(after[jj]))  # a null term is no change
         if differs.any():
             text = pd.Series(before[differs]).astype(str) + " -> " + pd.Series(after[jj][differs]).astype(str)
             detail[differs] = detail[differs] + f"{name} " + text.to_numpy(dtype=object) + "; "

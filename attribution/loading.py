@@ -39,18 +39,33 @@ FILE_COLUMNS: dict[str, tuple[tuple[str, str], ...]] = {
     "books.parquet": (("book", STRING), ("desk", STRING)),
     "dividends.parquet": (("underlying", STRING), ("ex_date", DATE), ("amount", FLOAT)),
     "corporate_actions.parquet": (("underlying", STRING), ("ex_date", DATE), ("ratio", FLOAT)),
+    "future_marks.parquet": (("instrument_id", STRING), ("price", FLOAT)),
+    "trade_activity.parquet": (("activity_id", STRING), ("trade_id", STRING), ("kind", STRING),
+                               ("quantity", FLOAT), ("price", FLOAT)),
+    "cash_flows.parquet": (("flow_id", STRING), ("book", STRING), ("trade_id", STRING), ("currency", STRING),
+                           ("amount", FLOAT), ("kind", STRING)),
+    "official_pnl.parquet": (("book", STRING), ("pnl", FLOAT)),
 }
-OPTIONAL_FILES = frozenset({"fx_rates.parquet", "books.parquet", "dividends.parquet", "corporate_actions.parquet"})
+OPTIONAL_FILES = frozenset({"fx_rates.parquet", "books.parquet", "dividends.parquet", "corporate_actions.parquet",
+                            "future_marks.parquet", "trade_activity.parquet", "cash_flows.parquet",
+                            "official_pnl.parquet"})
 # Columns a file may carry or leave out (version 2 of the contract): read and type-checked when
 # present, all null when absent, so later steps always see them.
 OPTIONAL_COLUMNS: dict[str, tuple[tuple[str, str], ...]] = {
     "positions.parquet": (("strategy", STRING),),
+    "instruments.parquet": (("kind", STRING),),
 }
 
 # The contract's Arrow schema of each file, keyed by kind ("positions", ...), for writers of input data.
 _ARROW_TYPES = {STRING: pa.string(), FLOAT: pa.float64(), DATE: pa.date32()}
 CONTRACT_SCHEMAS: dict[str, pa.Schema] = {
     file.removesuffix(".parquet"): pa.schema([(name, _ARROW_TYPES[kind]) for name, kind in columns])
+    for file, columns in FILE_COLUMNS.items()
+}
+# The same with the optional columns of version 2 at the end (for writers of whole-book data).
+CONTRACT_SCHEMAS_V2: dict[str, pa.Schema] = {
+    file.removesuffix(".parquet"): pa.schema([(name, _ARROW_TYPES[kind])
+                                              for name, kind in columns + OPTIONAL_COLUMNS.get(file, ())])
     for file, columns in FILE_COLUMNS.items()
 }
 

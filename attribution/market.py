@@ -26,6 +26,7 @@ from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.implied_vol import implied_vol
 from attribution.pricing import no_arbitrage_bounds, price_unchecked
 from attribution.timebasis import TimeBasis
+from attribution.valuation import FORWARD, FUTURE, OPTION, UNDERLYING, MarketState, kind_codes, value
 
 
 @dataclass(frozen=True, slots=True)
@@ -38,10 +39,16 @@ class InstrumentMarket:
     the instrument (a position of this date needs one); where it is False and ``terms_rejected``
     is False the terms were taken from the other date's file, which is how a closed or expired
     trade is settled in an option this date no longer lists.
+
+    ``kind`` holds the codes of :mod:`attribution.valuation`. ``price`` is the mark of
+    each kind: the option mark, the spot of an ``underlying``, the settlement price of a ``future``,
+    the model value of a ``forward`` (which has no mark). A delta-one kind has ``vol`` 0 (it has no
+    volatility), an ``underlying`` ``tau_years`` 0, and NaN stands where a term does not apply.
     """
 
     as_of: dt.date
     ids: pd.Index
+    kind: NDArray[np.int8]
     underlying: NDArray[np.object_]
     currency: NDArray[np.object_]
     option_type: NDArray[np.object_]
@@ -124,18 +131,20 @@ def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, check
     underlying = terms["underlying"].to_numpy(dtype=object)
     currency = terms["currency"].to_numpy(dtype=object)
     option_type = terms["option_type"].to_numpy(dtype=object)
+    kind = kind_codes(terms["kind"].to_numpy(dtype=object))
     cp = np.where(option_type == "call", 1.0, -1.0)
-    american = terms["exercise"].to_numpy(dtype=object) == "american"
+    american = (terms["exercise"].to_numpy(dtype=object) == "american") & (kind == OPTION)
     scheme = AMERICAN_SCHEMES[american_precision]
     strike = terms["strike"].to_numpy(dtype=float)
     expiry = terms["expiry"].to_numpy(dtype="datetime64[D]")
     tau = basis.year_fraction(np.datetime64(as_of, "D"), expiry) if n else np.zeros(0)
+    tau[kind == UNDERLYING] = 0.0  # no expiry: its value does not depend on time
     reason = np.full(n, "", dtype=object)
 
     listed = np.asarray(ids.isin(own_ids))
     terms_rejected = ~listed & np.asarray(ids.isin(night.raw.tables["instruments.parquet"]["instrument_id"]))
     _first_reason(reason, terms_rejected, f"its row in instruments.parquet of {as_of} breaks a rule (see that row)")
-    _first_reason(reason, tau < 0, f"the option expired before {as_of}")
+    _first_reason(reason, tau < 0, f"the option expired before {as_of}")  # wording kept for every kind
 
     u_idx = night.underlyings.index.get_indexer(underlying)
     spot_known = u_idx >= 0
@@ -150,17 +159,20 @@ def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, check
                   + f" has no usable mark on {as_of}")
 
     rate, has_curve = zero_rates(night.curves, currency, tau)
+    has_curve |= kind == UNDERLYING  # a share or a currency unit needs no discounting
+    rate[kind == UNDERLYING] = np.nan_to_num(rate[kind == UNDERLYING])
     missing_ccy = sorted(set(currency[~has_curve].tolist()))
     log.add(night.raw.path("rate_curves.parquet"), missing_ccy, "no curve for currency",
             "an instrument in this currency is listed but the file has no usable curve for it")
     _first_reason(reason, ~has_curve, "no rate curve for currency " +
                   pd.Series(currency, dtype=object).astype(str).to_numpy() + f" on {as_of}")
 
-    m_idx = night.marks.index.get_indexer(ids)
-    marked = m_idx >= 0
+    option = kind == OPTION
+    m_idx = np.where(option, night.marks.index.get_indexer(ids), -1)
     price = take(night.marks["price"].to_numpy(float), m_idx, np.nan)
     marked_vol = take(night.marks["implied_vol"].to_numpy(float), m_idx, np.nan)
-    _first_reason(reason, ~marked, f"no usable option mark on {as_of}")
+    _first_reason(reason, option & (m_idx < 0), f"no usable option mark on {as_of}")
+    price = _delta_one_prices(night, ids, kind, reason, price, spot, strike, tau, rate, div_yield, log)
 
     put_rate, put_yield = np.where(cp > 0, div_yield, rate), np.where(cp > 0, rate, div_yield)  # put-call symmetry
     two = american & (put_yield < put_rate) & (put_rate < 0)
@@ -169,9 +181,10 @@ def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, check
     _first_reason(reason, two, TWO_BOUNDARY_RULE)
     div_pv = _dividend_pv(night, underlying, currency, expiry, spot, reason, basis, log)
     vol, vol_solved, vol_mismatch = _vols(night, ids, reason, price, marked_vol, spot - div_pv, strike, tau, rate,
-                                          div_yield, cp, checks, log, american, scheme)
+                                          div_yield, cp, checks, log, american, scheme, option)
+    vol[~option] = 0.0  # a delta-one kind has no volatility
     usable = reason == ""
-    return InstrumentMarket(as_of, ids, underlying, currency, option_type, cp, strike,
+    return InstrumentMarket(as_of, ids, kind, underlying, currency, option_type, cp, strike,
                             terms["multiplier"].to_numpy(dtype=float), expiry, tau, spot, div_yield, rate, price,
                             vol, marked_vol, vol_solved, vol_mismatch, spot_known, usable, reason, listed,
                             terms_rejected, american, scheme, div_pv)
@@ -200,16 +213,43 @@ def _dividend_pv(night: CleanNight, underlying: NDArray[np.object_], currency: N
     return div_pv
 
 
+def _delta_one_prices(night: CleanNight, ids: pd.Index, kind: NDArray[np.int8], reason: NDArray[np.object_],
+                      price: FloatArray, spot: FloatArray, strike: FloatArray, tau: FloatArray, rate: FloatArray,
+                      div_yield: FloatArray, log: ExceptionLog) -> FloatArray:
+    """The mark of each delta-one kind: spot, future settlement price, forward model value.
+
+    A future needs a row in future_marks.parquet; a row there naming no future is rejected.
+    """
+    price = price.copy()
+    marks = night.future_marks
+    is_future = kind == FUTURE
+    f_idx = np.where(is_future, marks.index.get_indexer(ids), -1)
+    price[is_future] = take(marks["price"].to_numpy(float), f_idx, np.nan)[is_future]
+    _first_reason(reason, is_future & (f_idx < 0), f"no usable future mark on {night.raw.as_of}")
+    not_future = ~marks.index.isin(ids[is_future])
+    if not_future.any():
+        log.add(night.raw.path("future_marks.parquet"), marks.index[not_future].to_numpy(), "mark of no future",
+                "instruments.parquet of this date lists no future with this instrument_id")
+    underlying = kind == UNDERLYING
+    price[underlying] = spot[underlying]
+    forward = np.flatnonzero((kind == FORWARD) & (reason == ""))
+    if forward.size:
+        state = MarketState(spot[forward], np.zeros(forward.size), tau[forward], rate[forward], div_yield[forward])
+        price[forward] = value(strike[forward], np.ones(forward.size), state, kind=kind[forward])
+    return price
+
+
 def _vols(night: CleanNight, ids: pd.Index, reason: NDArray[np.object_], price: FloatArray, marked_vol: FloatArray,
           spot: FloatArray, strike: FloatArray, tau: FloatArray, rate: FloatArray, div_yield: FloatArray,
           cp: FloatArray, checks: CheckSettings, log: ExceptionLog, american: NDArray[np.bool_], scheme: Scheme,
-          ) -> tuple[FloatArray, NDArray[np.bool_], NDArray[np.bool_]]:
-    """Check marks against the no-arbitrage bounds, solve missing vols, flag vols that disagree with price.
+          option: NDArray[np.bool_]) -> tuple[FloatArray, NDArray[np.bool_], NDArray[np.bool_]]:
+    """Check option marks against the no-arbitrage bounds, solve missing vols, flag vols that disagree with price.
 
     American marks: bounds ``[intrinsic, S (call) or K (put)]``; vols solved and checked with the American model.
+    Delta-one kinds (``option`` False) have no vol and are not checked here.
     """
     marks_file = night.raw.path("option_marks.parquet")
-    candidates = reason == ""
+    candidates = (reason == "") & option
     vol = marked_vol.copy()
     lower, upper = no_arbitrage_bounds(spot, strike, tau, rate, div_yield, cp, american)
     slack = 1e-9 * np.maximum(1.0, np.abs(price))
@@ -219,10 +259,10 @@ def _vols(night: CleanNight, ids: pd.Index, reason: NDArray[np.object_], price: 
     log.add(marks_file, ids[outside].to_numpy(), "price outside no-arbitrage bounds", detail.to_numpy())
     _first_reason(reason, outside, "option price outside its no-arbitrage bounds")
 
-    expiring = (reason == "") & (tau == 0)
+    expiring = (reason == "") & (tau == 0) & option
     vol[expiring & np.isnan(vol)] = 0.0  # no time left: the value is intrinsic whatever the vol
     _warn_expiry_marks(ids, expiring, price, spot, strike, cp, checks, marks_file, log)
-    solve = (reason == "") & np.isnan(vol)
+    solve = (reason == "") & np.isnan(vol) & option
     vol_solved = np.zeros(len(ids), dtype=bool)
     if solve.any():
         i = np.flatnonzero(solve)
@@ -242,7 +282,7 @@ def _vols(night: CleanNight, ids: pd.Index, reason: NDArray[np.object_], price: 
         reason[i[failed]] = "implied vol cannot be solved: " + result.reason[failed]
         vol_solved[i[~failed]] = True
 
-    check = (reason == "") & ~vol_solved & (tau > 0)
+    check = (reason == "") & ~vol_solved & (tau > 0) & option
     vol_mismatch = np.zeros(len(ids), dtype=bool)
     if check.any():
         i = np.flatnonzero(check)
@@ -278,7 +318,7 @@ def flag_stale_marks(prior: InstrumentMarket, run: InstrumentMarket, move: float
                      log: ExceptionLog) -> NDArray[np.bool_]:
     """Run-date marks unchanged from the prior date while the underlying moved: warned, per instrument."""
     j = prior.locate(run.ids.to_numpy())
-    both = (j >= 0) & run.usable & (run.tau_years > 0)
+    both = (j >= 0) & run.usable & (run.tau_years > 0) & (run.kind == OPTION)
     jj = np.where(both, j, 0)
     same_price = run.price == prior.price[jj]
     same_vol = (run.marked_vol == prior.marked_vol[jj]) | (np.isnan(run.marked_vol) & np.isnan(prior.marked_vol[jj]))

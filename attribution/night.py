@@ -11,11 +11,12 @@ import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 
+from attribution.activity import LegActivity
 from attribution.arrays import FloatArray
 from attribution.contract import CleanNight
 from attribution.dividends import income_per_unit
 from attribution.explain import Explain, MarketState, explain_overnight
-from attribution.lifecycle import CARRIED, CLOSED, EXPIRIES, NEW, NEW_UNPRICED, Legs, trade_date_flags
+from attribution.lifecycle import CARRIED, CLOSED, EXERCISED, EXPIRIES, NEW, NEW_UNPRICED, Legs, trade_date_flags
 from attribution.market import InstrumentMarket, take
 from attribution.pricing import Greeks
 from attribution.revaluation import FACTOR_NAMES
@@ -29,7 +30,7 @@ from attribution.schema import (
 )
 from attribution.smile_night import NightSmiles, vol_columns
 from attribution.timebasis import DAYS_PER_YEAR_BUSINESS, DAYS_PER_YEAR_CALENDAR, TimeBasis
-from attribution.valuation import revaluation_shares, value_and_greeks
+from attribution.valuation import KIND_NAMES, OPTION, revaluation_shares, settlement_value, value_and_greeks
 from attribution.vol_time import VarianceClock, clock_terms, decay_per_year
 
 
@@ -68,25 +69,52 @@ def _vol_and_time(ex: Explain, units: FloatArray, s0: MarketState, s1: MarketSta
     return out
 
 
+def _names(codes: NDArray[np.int8], names: dict[int, str]) -> NDArray[np.object_]:
+    """Names of codes (None for a code without one: the exercise of a delta-one kind)."""
+    table = np.array([names.get(c) for c in range(-1, max(names) + 1)], dtype=object)
+    return table[codes.astype(np.intp) + 1]
+
+
+def _activity_lines(cols: dict[str, object], activity: LegActivity, status: NDArray[np.object_], scale: FloatArray,
+                    qty0: FloatArray, qty1: FloatArray) -> tuple[NDArray[np.bool_], NDArray[np.bool_]]:
+    """Lifecycle lines from the run date's activity: a priced ``new`` activity prices the new trade (over
+    positions.trade_price), every change is valued at its execution price, a partial exercise at intrinsic
+    value. ``scale`` is multiplier x FX. Returns the ``amended`` and ``amended_at_mark`` flags."""
+    is_new = np.isin(status, [NEW, NEW_UNPRICED])
+    cols["pnl_new_trade"] = np.where(is_new & activity.priced_new, scale * activity.fill_value, cols["pnl_new_trade"])
+    changed = np.isin(status, [CARRIED, CLOSED, EXERCISED])
+    exercised = status == EXERCISED
+    value = activity.fill_value + np.where(exercised, 0.0, activity.exercise_value)
+    cols["pnl_amendment"] = np.where(changed, scale * value, 0.0)
+    amended = changed & (((qty1 != qty0) & ~exercised) | (value != 0))
+    return amended, changed & activity.at_mark
+
+
 def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: InstrumentMarket,
                   market1: InstrumentMarket, basis: TimeBasis, revaluation: bool, smiles: NightSmiles | None = None,
-                  smile_dynamics: str = "sticky strike", clock: VarianceClock | None = None) -> pd.DataFrame:
+                  smile_dynamics: str = "sticky strike", clock: VarianceClock | None = None,
+                  activity: LegActivity | None = None) -> pd.DataFrame:
     """The night's ``position_pnl`` rows (without ``limit_state``), one per accepted trade.
 
     With ``smiles`` (:func:`attribution.smile_night.night_smiles`), the vol terms of positions held
     overnight are split into the smile's parts under ``smile_dynamics``; without, the parts stay 0.
     With a variance ``clock`` (:mod:`attribution.vol_time`) the vol and time terms are restated on it.
+    With ``activity`` (:func:`attribution.activity.leg_activity`), changes are priced at their execution
+    prices, corrections restate the prior quantity and whole exercises are explained to intrinsic value;
+    without, a quantity change is priced at the run-date row's trade_price (version 1).
     """
     n = len(legs)
     as_of, prior_as_of = run.raw.as_of, prior.raw.as_of
     status = legs.status
     has_prior = legs.row0 >= 0
-    overnight = np.isin(status, [CARRIED, CLOSED])
+    overnight = np.isin(status, [CARRIED, CLOSED, EXERCISED])
     is_new = np.isin(status, [NEW, NEW_UNPRICED])
     expired = np.isin(status, EXPIRIES)  # expired tonight, or settled on the prior date
     i0 = np.maximum(legs.inst0, 0)
     i1 = legs.inst1
     qty0 = np.where(has_prior, take(prior.positions["quantity"].to_numpy(float), legs.row0, 0.0), 0.0)
+    if activity is not None:  # corrections and cancels restate the prior quantity, without P&L
+        qty0 = np.where(has_prior, qty0 + activity.restated, 0.0)
     held1 = (legs.row1 >= 0) & ~expired
     qty1 = np.where(held1, take(run.positions["quantity"].to_numpy(float), legs.row1, 0.0), 0.0)
     trade_price1 = take(run.positions["trade_price"].to_numpy(float), legs.row1, np.nan)
@@ -94,6 +122,8 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     strike, cp = market1.strike[i1], market1.cp[i1]
     american, scheme = market1.american[i1], market1.american_scheme
     crossed = np.zeros(n, dtype=bool)
+    kind = market1.kind[i1]
+    option = kind == OPTION
     units0 = qty0 * mult * legs.fx_rate
     units1 = qty1 * mult * legs.fx_rate
     dt_years = float(basis.year_fraction(prior_as_of, as_of)[0])
@@ -105,11 +135,14 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
 
     price0 = np.where(has_prior, market0.price[i0], np.nan)
     price1 = np.where(expired, np.nan, market1.price[i1])
+    exercised = status == EXERCISED
+    if exercised.any():  # explained like a close, to the intrinsic value at the run-date spot
+        price1 = np.where(exercised, settlement_value(kind, market1.spot[i1], strike, cp), price1)
 
     # Greeks at the prior state of everything held on the prior date, once per instrument (American: 7 boundaries).
     p = np.flatnonzero(has_prior)
-    g0, exercised0 = value_and_greeks(strike[p], cp[p], _state(market0, i0[p]), american[p], scheme=scheme,
-                                      group=i0[p])
+    g0, exercised0 = value_and_greeks(strike[p], cp[p], _state(market0, i0[p]), american[p], kind=kind[p],
+                                      scheme=scheme, group=i0[p])
     in_p = np.full(n, -1, dtype=np.intp)
     in_p[p] = np.arange(p.size)
 
@@ -120,7 +153,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         kp = in_p[k]
         prior_greeks = (Greeks(*(getattr(g0, name)[kp] for name in Greeks.__slots__)), exercised0[kp])
         ex = explain_overnight(strike[k], cp[k], units0[k], s0, s1, price0[k], price1[k], np.full(k.size, dt_years),
-                               american[k], scheme=scheme, group=pair, prior=prior_greeks)
+                               american[k], scheme=scheme, group=pair, prior=prior_greeks, kind=kind[k])
         crossed[k] = ex.crossed_boundary
         for name in ("actual", *TAYLOR_TERMS, "explained", "residual", "model", "higher_order", "mark_gap"):
             cols[f"pnl_{name}"][k] = getattr(ex, name)
@@ -128,7 +161,8 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
                                           clock).items():
             cols[name][k] = values
         if revaluation:
-            shares = revaluation_shares(strike[k], cp[k], s0, s1, american[k], scheme=scheme, group=pair)
+            shares = revaluation_shares(strike[k], cp[k], s0, s1, american[k], kind=kind[k], scheme=scheme,
+                                        group=pair)
             for factor in FACTOR_NAMES:
                 cols[f"reval_{factor}"][k] = units0[k] * getattr(shares, factor)
 
@@ -148,18 +182,22 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         next_day = basis.next_business_day(as_of)
         step_years = float(basis.year_fraction(as_of, next_day)[0])
         s1 = _state(market1, i1[h])
-        g1, _ = value_and_greeks(strike[h], cp[h], s1, american[h], scheme=scheme, group=i1[h], full=False)
+        g1, _ = value_and_greeks(strike[h], cp[h], s1, american[h], kind=kind[h], scheme=scheme, group=i1[h],
+                                 full=False)
         cols["theta_next_business_day"][h] = units1[h] * g1.theta_per_year * step_years
 
     # Lifecycle lines.
     cols["pnl_new_trade"] = np.where(is_new, units1 * (market1.price[i1] - trade_price1), 0.0)
     settle_spot = np.where(market1.expiry[i1] <= np.datetime64(prior_as_of, "D"), market0.spot[i0], market1.spot[i1])
-    intrinsic = np.maximum(cp * (settle_spot - strike), 0.0)
+    intrinsic = settlement_value(kind, settle_spot, strike, cp)
     cols["pnl_expiry"] = np.where(expired, units0 * (intrinsic - np.nan_to_num(price0)), 0.0)
     amended = (status == CARRIED) & (qty1 != qty0)
     fill_price = np.where(np.isnan(trade_price1), market1.price[i1], trade_price1)
     cols["pnl_amendment"] = np.where(amended, (qty1 - qty0) * mult * legs.fx_rate * (market1.price[i1] - fill_price),
                                      0.0)
+    at_mark = amended & np.isnan(trade_price1)
+    if activity is not None:
+        amended, at_mark = _activity_lines(cols, activity, status, mult * legs.fx_rate, qty0, qty1)
     cols["pnl_total"] = (cols["pnl_actual"] + np.nan_to_num(cols["pnl_new_trade"]) + cols["pnl_expiry"]
                          + cols["pnl_amendment"] + cols["pnl_fx_translation"] + cols["pnl_cash"])
 
@@ -169,7 +207,8 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     flags = _flags([
         (amended, "amended"),
         (crossed, "crossed_exercise_boundary"),
-        (amended & np.isnan(trade_price1), "amended_at_mark"),
+        (at_mark, "amended_at_mark"),
+        (np.zeros(n, dtype=bool) if activity is None else activity.restated != 0, "restated"),
         (status == NEW_UNPRICED, "unpriced"),
         (late, "booked_late"),
         (moved_book, "moved_book"),
@@ -186,8 +225,8 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         "quantity": np.where(is_new, qty1, qty0), "quantity_run_date": qty1, "multiplier": mult,
         "fx_rate": legs.fx_rate,
         "spot_prior": np.where(has_prior, market0.spot[i0], np.nan), "spot_run": market1.spot[i1],
-        "vol_prior": np.where(has_prior, market0.vol[i0], np.nan),
-        "vol_run": np.where(expired, np.nan, market1.vol[i1]),
+        "vol_prior": np.where(has_prior & option, market0.vol[i0], np.nan),
+        "vol_run": np.where(expired | ~option, np.nan, market1.vol[i1]),
         "tau_prior_years": np.where(has_prior, market0.tau_years[i0], np.nan),
         "tau_run_years": market1.tau_years[i1],
         "rate_prior": np.where(has_prior, market0.rate[i0], np.nan), "rate_run": market1.rate[i1],
@@ -197,7 +236,8 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         "div_pv_run": np.where(expired, np.nan, market1.dividend_pv[i1]),
         **cols,
         "limit_state": "within",
-        "kind": "option", "exercise": np.where(american, "american", "european"),
+        "kind": _names(kind, KIND_NAMES),
+        "exercise": np.where(option, np.where(american, "american", "european"), None).astype(object),
         "strategy": _strategy(legs, prior, run),
     })
     return frame[[name for name, _ in POSITION_PNL]]

@@ -78,6 +78,7 @@ BOOK_PNL: tuple[tuple[str, str], ...] = (
     *((c, "DOUBLE") for c in V2_AMOUNT_COLUMNS),
     ("official_pnl", "DOUBLE"),          # the desk's reported P&L (official_pnl.parquet), NULL without a row
     ("official_break", "DOUBLE"),        # official_pnl - pnl_total, NULL without a row
+    ("exercised", "BIGINT"),             # positions exercised or assigned whole tonight
 )
 
 INPUT_EXCEPTIONS: tuple[tuple[str, str], ...] = (

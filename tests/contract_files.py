@@ -28,12 +28,24 @@ COLUMNS: dict[str, tuple[tuple[str, str], ...]] = {
     "books": (("book", "string"), ("desk", "string")),
     "dividends": (("underlying", "string"), ("ex_date", "date32"), ("amount", "float64")),
     "corporate_actions": (("underlying", "string"), ("ex_date", "date32"), ("ratio", "float64")),
+    "future_marks": (("instrument_id", "string"), ("price", "float64")),
+    "trade_activity": (("activity_id", "string"), ("trade_id", "string"), ("kind", "string"),
+                       ("quantity", "float64"), ("price", "float64")),
+    "cash_flows": (("flow_id", "string"), ("book", "string"), ("trade_id", "string"), ("currency", "string"),
+                   ("amount", "float64"), ("kind", "string")),
+    "official_pnl": (("book", "string"), ("pnl", "float64")),
+}
+VERSION_1_FILES = ("positions", "instruments", "option_marks", "underlying_marks", "rate_curves", "fx_rates")
+# Optional columns of version 2: written only when a row gives them (a version-1 file leaves them out).
+OPTIONAL_COLUMNS: dict[str, tuple[tuple[str, str], ...]] = {
+    "instruments": (("kind", "string"),),
 }
 
 
 def table(kind: str, rows: Sequence[Mapping[str, object]]) -> pa.Table:
     """Rows as an Arrow table with the contract's schema for ``kind`` (e.g. "positions")."""
-    schema = pa.schema([(name, ARROW[t]) for name, t in COLUMNS[kind]])
+    optional = [(name, t) for name, t in OPTIONAL_COLUMNS.get(kind, ()) if any(name in r for r in rows)]
+    schema = pa.schema([(name, ARROW[t]) for name, t in (*COLUMNS[kind], *optional)])
     return pa.Table.from_pylist([dict(r) for r in rows], schema=schema)
 
 
@@ -57,7 +69,7 @@ def put_rows(root: Path, as_of: dt.date, kind: str, rows: Sequence[Mapping[str, 
     pq.write_table(table(kind, rows), root / f"as_of={as_of.isoformat()}" / f"{kind}.parquet")
 
 
-def edit_row(root: Path, as_of: dt.date, kind: str, key: str, **values: object) -> None:
+def edit_row(root: Path, as_of: dt.date, kind: str, key: str, /, **values: object) -> None:
     """Set ``values`` on the one row of ``kind`` whose first column is ``key``."""
     rows = read_rows(root, as_of, kind)
     first = next(iter(rows[0]))

@@ -41,6 +41,7 @@ from attribution.lifecycle import STATUSES
 from attribution.loading import folder_for
 from tests.conservation import assert_conserved
 from tests.contract_files import edit_row, put_rows, read_rows
+from tests.hedged_desk import write_hedged_desk, write_whole_book
 from tests.mini_desk import PRIOR, RUN, write_mini_desk
 
 NAN, INF = math.nan, math.inf
@@ -63,7 +64,7 @@ class Desk:
     def put(self, day: dt.date, kind: str, rows: list[dict[str, object]]) -> None:
         put_rows(self.root, day, kind, rows)
 
-    def edit(self, day: dt.date, kind: str, key: str, **values: object) -> None:
+    def edit(self, day: dt.date, kind: str, key: str, /, **values: object) -> None:
         """Set ``values`` on the row whose first column is ``key``."""
         edit_row(self.root, day, kind, key, **values)
 
@@ -72,7 +73,7 @@ class Desk:
         first = next(iter(rows[0]))
         self.put(day, kind, [r for r in rows if r[first] != key])
 
-    def append(self, day: dt.date, kind: str, **values: object) -> None:
+    def append(self, day: dt.date, kind: str, /, **values: object) -> None:
         self.put(day, kind, [*self.rows(day, kind), values])
 
     def column(self, day: dt.date, kind: str, name: str, values: pa.Array | None) -> None:
@@ -155,6 +156,26 @@ def _duplicate_row(day: dt.date, kind: str, key: str) -> Callable[[Desk], None]:
         rows = d.rows(day, kind)
         first = next(iter(rows[0]))
         d.put(day, kind, rows + [r for r in rows if r[first] == key])
+    return change
+
+
+def _hedged(*changes: Callable[[Desk], None]) -> Callable[[Desk], None]:
+    """The desk with its delta hedges (tests/hedged_desk.py), then ``changes``."""
+    def change(d: Desk) -> None:
+        write_hedged_desk(d.root)
+        for each in changes:
+            each(d)
+    return change
+
+
+def _whole(*changes: Callable[[Desk], None]) -> Callable[[Desk], None]:
+    """The hedged desk with the run date's activity and cash flows (tests/hedged_desk.py; no official P&L),
+    then ``changes``."""
+    def change(d: Desk) -> None:
+        write_whole_book(d.root)
+        d.path(RUN, "official_pnl").unlink()
+        for each in changes:
+            each(d)
     return change
 
 
@@ -271,6 +292,58 @@ CASES = [
     Case("no FX rate", lambda d: d.drop(RUN, "fx_rates", "EUR"),
          Explained((_rej(R, "fx_rates", "EUR", "no FX rate for currency"), _rej(R, "positions", "T3", "no FX rate")),
                    frozenset({"T3"}))),
+    # ---- instrument kinds (data contract version 2)
+    Case("hedges of every kind explained", _hedged(), Explained(statuses={"H1": "carried", "H2": "carried",
+                                                                          "H3": "carried"})),
+    Case("unknown kind", _hedged(lambda d: d.edit(RUN, "instruments", "ZEN-FUT-M27", kind="swap")),
+         Explained((_rej(R, "instruments", "ZEN-FUT-M27", "kind must be option, underlying, future or forward"),
+                    _rej(R, "positions", "H2", NO_VOL)), frozenset({"H2"}))),
+    Case("option type on a future", _hedged(_both_dates("instruments", "ZEN-FUT-M27", option_type="call")),
+         Explained((_rej(P, "instruments", "ZEN-FUT-M27", "option_type must be null for kind future"),),
+                   frozenset({"H2"}))),
+    Case("expiry on an underlying", _hedged(_both_dates("instruments", "ZEN-SHR", expiry=dt.date(2027, 1, 1))),
+         Explained((_rej(P, "instruments", "ZEN-SHR", "expiry must be null for kind underlying"),),
+                   frozenset({"H1"}))),
+    Case("forward without a strike", _hedged(_both_dates("instruments", "QRX-FWD-J27", strike=None)),
+         Explained((_rej(P, "instruments", "QRX-FWD-J27", "strike is not a finite number"),), frozenset({"H3"}))),
+    Case("future without an expiry", _hedged(_both_dates("instruments", "ZEN-FUT-M27", expiry=None)),
+         Explained((_rej(P, "instruments", "ZEN-FUT-M27", "expiry is null"),), frozenset({"H2"}))),
+    Case("future without a mark", _hedged(lambda d: d.put(RUN, "future_marks", [])),
+         Explained((_rej(R, "positions", "H2", NO_VOL),), frozenset({"H2"}))),
+    Case("future mark not positive", _hedged(lambda d: d.edit(PRIOR, "future_marks", "ZEN-FUT-M27", price=0.0)),
+         Explained((_rej(P, "future_marks", "ZEN-FUT-M27", "price must be > 0"),
+                    _rej(P, "positions", "H2", "position cannot be priced on the prior date")), frozenset({"H2"}))),
+    Case("duplicate future mark", _hedged(_duplicate_row(RUN, "future_marks", "ZEN-FUT-M27")),
+         Explained((_rej(R, "future_marks", "ZEN-FUT-M27", "duplicate instrument_id"),), frozenset({"H2"}))),
+    Case("future mark of an option", _hedged(lambda d: d.append(RUN, "future_marks", instrument_id="ZEN-C100-J27",
+                                                                price=10.0)),
+         Explained((_rej(R, "future_marks", "ZEN-C100-J27", "mark of no future"),))),
+    # ---- trade activity, cash flows, official P&L (data contract version 2)
+    Case("whole book explained", _whole(), Explained(statuses={"T5": "closed", "T8": "new", "H1": "carried"})),
+    Case("activity kind unknown", _whole(lambda d: d.append(RUN, "trade_activity", activity_id="A9", trade_id="T1",
+                                                            kind="swap", quantity=0.0, price=None)),
+         Explained((_rej(R, "trade_activity", "A9", "activity kind unknown"),))),
+    Case("price on a correction", _whole(lambda d: d.append(RUN, "trade_activity", activity_id="A9", trade_id="T1",
+                                                            kind="correction", quantity=0.0, price=1.0)),
+         Explained((_rej(R, "trade_activity", "A9", "price must be null for a correction or cancel"),))),
+    Case("duplicate activity_id", _whole(_duplicate_row(RUN, "trade_activity", "A1")),
+         Explained((_rej(R, "trade_activity", "A1", "duplicate activity_id"),
+                    _warn(R, "trade_activity", "T6", "position break")))),
+    Case("activity of an unknown trade", _whole(lambda d: d.append(RUN, "trade_activity", activity_id="A9",
+                                                                   trade_id="ZZ", kind="increase", quantity=1.0,
+                                                                   price=1.0)),
+         Explained((_warn(R, "trade_activity", "A9", "activity of an unknown trade"),))),
+    Case("position break", _whole(lambda d: d.edit(RUN, "trade_activity", "A5", quantity=-10.0)),
+         Explained((_warn(R, "trade_activity", "H1", "position break"),))),
+    Case("cash flow kind unknown", _whole(lambda d: d.edit(RUN, "cash_flows", "C2", kind="bonus")),
+         Explained((_rej(R, "cash_flows", "C2", "cash flow kind unknown"),))),
+    Case("cash flow without an FX rate", _whole(lambda d: d.edit(RUN, "cash_flows", "C3", currency="CHF")),
+         Explained((_rej(R, "cash_flows", "C3", "no FX rate"),))),
+    Case("cash flow of another book's trade", _whole(lambda d: d.edit(RUN, "cash_flows", "C1", trade_id="T3")),
+         Explained((_warn(R, "cash_flows", "C1", "cash flow of no trade of its book"),))),
+    Case("duplicate official book", _whole(lambda d: d.put(RUN, "official_pnl", [{"book": "Index vol", "pnl": 1.0},
+                                                                               {"book": "Index vol", "pnl": 2.0}])),
+         Explained((_rej(R, "official_pnl", "Index vol", "duplicate book"),))),
     # ---- suspect but explained
     Case("stale mark", _stale,
          Explained((_warn(R, "option_marks", "ZEN-P120-M27", "stale mark"),), statuses={"T2": "carried"})),
@@ -352,6 +425,7 @@ def assert_counts_add_up(tables: dict[str, pd.DataFrame]) -> None:
     """The run record and the book rows agree with position_pnl: in = archived + rejected, statuses sum up."""
     [run] = tables["runs"].to_dict("records")
     books, positions = tables["book_pnl"], tables["position_pnl"]
+    positions = positions[positions["status"] != "cash"]  # a book's cash row is no position
     assert run["positions_in"] == run["positions_archived"] + run["positions_rejected"]
     assert run["positions_archived"] == len(positions)
     assert int(books["positions"].sum()) == len(positions)

@@ -28,7 +28,8 @@ from attribution.engine import prepare_night
 from attribution.loading import InputFileError, folder_for, read_file, read_night
 from attribution.runner import run_night
 from attribution.synthetic import write_synthetic_night
-from tests.contract_files import table
+from tests.contract_files import read_rows, table, write_folder
+from tests.hedged_desk import write_whole_book
 from tests.mini_desk import PRIOR, RUN, write_mini_desk
 
 distributed = pytest.importorskip("distributed", reason='the Dask engine needs pip install -e ".[dask]"')
@@ -98,7 +99,19 @@ def desks(tmp_path_factory: pytest.TempPathFactory) -> dict[str, tuple[Path, dt.
     root = tmp_path_factory.mktemp("desks")
     synthetic = write_synthetic_night(root / "synthetic", positions=5000, books=12, instruments=400, underlyings=20)
     return {"mini": (write_mini_desk(root / "mini"), RUN), "synthetic": (synthetic.data_root, synthetic.run),
-            "planted": (write_planted_desk(root / "planted"), RUN)}
+            "planted": (write_planted_desk(root / "planted"), RUN), "whole": (_whole_book(root / "whole"), RUN)}
+
+
+def _whole_book(root: Path) -> Path:
+    """The hedged desk with activity, cash flows and official P&L, plus an activity row of no trade, a cash
+    flow of a book without positions and a trade moved between books (tests/hedged_desk.py)."""
+    write_whole_book(root)
+    rows = read_rows(root, RUN, "trade_activity") + [
+        {"activity_id": "A9", "trade_id": "NOPE", "kind": "increase", "quantity": 1.0, "price": 2.0}]
+    flows = read_rows(root, RUN, "cash_flows") + [
+        {"flow_id": "C9", "book": "Ghost book", "trade_id": None, "currency": "USD", "amount": 7.0, "kind": "other"}]
+    write_folder(root, RUN, {"trade_activity": rows, "cash_flows": flows})
+    return root
 
 
 def _archive_tables(archive: Path) -> dict[str, pd.DataFrame]:
@@ -126,7 +139,7 @@ def _sorted_ledger(frame: pd.DataFrame) -> pd.DataFrame:
     return frame.sort_values(SORT_KEYS["input_exceptions"]).reset_index(drop=True)
 
 
-@pytest.mark.parametrize("desk", ["mini", "synthetic", "planted"])
+@pytest.mark.parametrize("desk", ["mini", "synthetic", "planted", "whole"])
 def test_cluster_archive_equals_local(desk, desks, client, tmp_path):
     """position_pnl, book_pnl, input_exceptions and book_quality rows, and the exit code, are the local engine's."""
     data, as_of = desks[desk]
@@ -141,7 +154,7 @@ def test_cluster_archive_equals_local(desk, desks, client, tmp_path):
         _assert_same(local[name], cluster[name])
 
 
-@pytest.mark.parametrize("desk", ["mini", "synthetic", "planted"])
+@pytest.mark.parametrize("desk", ["mini", "synthetic", "planted", "whole"])
 def test_prepared_night_equals_local_in_row_order(desk, desks, client):
     """Positions in the local engine's row order, books by book, the same ledger rows, counts and hashes."""
     data, as_of = desks[desk]

@@ -35,7 +35,8 @@ ql = pytest.importorskip("QuantLib")
 START = dt.date(2025, 12, 8)   # 14 business days: a monthly expiry (12-19) and two holidays (12-25, 12-26)
 DAYS = 14
 TARGET = 600
-FILES = tuple(SCHEMAS)
+FILES = ("positions", "instruments", "option_marks", "underlying_marks", "rate_curves", "fx_rates")
+EVENTS = ("future_marks", "trade_activity", "cash_flows")  # version 2: hedges and the run date's events
 
 
 @dataclass(frozen=True)
@@ -47,9 +48,16 @@ class Built:
 
 
 def _read(root: Path, day: dt.date) -> dict[str, pd.DataFrame]:
+    """Every file of one night; ``instruments`` and ``positions`` hold the options, ``hedge_*`` the hedges."""
     folder = root / f"as_of={day}"
-    return {name: pq.read_table(folder / f"{name}.parquet").to_pandas() for name in FILES
-            if (folder / f"{name}.parquet").exists()}  # optional files only where the demo writes them
+    files = {name: pq.read_table(folder / f"{name}.parquet").to_pandas() for name in FILES + EVENTS
+             if (folder / f"{name}.parquet").exists()}
+    ins, pos = files["instruments"], files["positions"]
+    option = ins["kind"] == "option"
+    files["hedge_instruments"], files["instruments"] = ins[~option], ins[option].drop(columns="kind")
+    on_option = pos["instrument_id"].isin(files["instruments"]["instrument_id"])
+    files["hedge_positions"], files["positions"] = pos[~on_option], pos[on_option]
+    return files
 
 
 @pytest.fixture(scope="module")
@@ -129,25 +137,31 @@ def test_default_desk_has_the_scenario_books_and_underlyings() -> None:
 
 
 def test_every_file_has_the_contract_columns_and_arrow_types(built: Built, tmp_path: Path) -> None:
-    """Each as_of folder holds the six files with the contract's column names, order and Arrow types."""
+    """Each as_of folder holds the six files of version 1, future_marks and (after the first night) the
+    trade activity and cash flows, with the contract's column names, order and Arrow types."""
     expected = {
         "positions": [pa.string(), pa.string(), pa.string(), pa.float64(), pa.date32(), pa.float64()],
         "instruments": [pa.string(), pa.string(), pa.string(), pa.string(), pa.float64(), pa.date32(),
-                        pa.float64(), pa.string()],
+                        pa.float64(), pa.string(), pa.string()],
         "option_marks": [pa.string(), pa.float64(), pa.float64()],
         "underlying_marks": [pa.string(), pa.float64(), pa.float64()],
         "rate_curves": [pa.string(), pa.float64(), pa.float64()],
         "fx_rates": [pa.string(), pa.float64()],
         "dividends": [pa.string(), pa.date32(), pa.float64()],
         "corporate_actions": [pa.string(), pa.date32(), pa.float64()],
+        "future_marks": [pa.string(), pa.float64()],
+        "trade_activity": [pa.string(), pa.string(), pa.string(), pa.float64(), pa.float64()],
+        "cash_flows": [pa.string(), pa.string(), pa.string(), pa.string(), pa.float64(), pa.string()],
     }
     root = built.summary.data_root
     for day in built.summary.dates:
         folder = root / f"as_of={day}"
-        assert sorted(p.name for p in folder.iterdir()) == sorted(f"{n}.parquet" for n in expected)
-        for name, types in expected.items():
+        written = expected if day != built.summary.dates[0] else {
+            k: v for k, v in expected.items() if k not in ("trade_activity", "cash_flows")}
+        assert sorted(p.name for p in folder.iterdir()) == sorted(f"{n}.parquet" for n in written)
+        for name, types in written.items():
             schema = pq.read_schema(folder / f"{name}.parquet")
-            assert schema.names == SCHEMAS[name].names
+            assert schema.names == SCHEMAS[name].names + (["kind"] if name == "instruments" else [])
             assert schema.types == types, (day, name)
 
 
@@ -394,6 +408,40 @@ def test_trading_activity_new_closed_expired_amended_and_listed(built: Built) ->
     assert all(v > 0 for v in seen.values()), seen
     assert (seen["expired"], seen["closed"], seen["amended"]) == (s.trades_expired, s.trades_closed, s.trades_amended)
     assert (seen["priced"] + seen["unpriced"], seen["unpriced"]) == (s.trades_new, s.trades_new_unpriced)
+
+
+def test_hedges_keep_books_delta_neutral_and_activity_reconciles(built: Built) -> None:
+    """Each book's hedges offset its options' delta per underlying (to a unit or a contract); prior quantity +
+    activity = run-date quantity for every trade; hedge rebalances pay a commission (plain arithmetic)."""
+    days = built.summary.dates
+    for day in days:
+        f = built.nights[day]
+        held = f["positions"].merge(_state(f, day), on="instrument_id")
+        delta = bsm_greeks(held["spot"], held["strike"], held["tau"], held["implied_vol"].fillna(0.2), held["rate"],
+                           held["dividend_yield"], held["option_type"] == "call").delta
+        options = (held["quantity"] * held["multiplier"] * delta).groupby([held["book"], held["underlying"]]).sum()
+        hedges = f["hedge_positions"].merge(f["hedge_instruments"], on="instrument_id")
+        assert set(hedges["kind"]) == {"underlying", "future"}
+        units = (hedges["quantity"] * hedges["multiplier"]).groupby([hedges["book"], hedges["underlying"]]).sum()
+        gross = (held["quantity"].abs() * held["multiplier"]).groupby([held["book"], held["underlying"]]).sum()
+        net = (options + units.reindex(options.index).fillna(0.0)).abs()
+        # null vols are priced at 20 % here, and a future's delta is e^((r-q) tau) per unit: a loose bound
+        assert (net <= 0.25 * gross + 1.0).mean() > 0.8, net.sort_values().tail()
+    for prior, day in zip(days, days[1:], strict=False):
+        p0 = pd.concat([built.nights[prior]["positions"], built.nights[prior]["hedge_positions"]]).set_index("trade_id")
+        p1 = pd.concat([built.nights[day]["positions"], built.nights[day]["hedge_positions"]]).set_index("trade_id")
+        act = built.nights[day]["trade_activity"]
+        moved = act.groupby("trade_id")["quantity"].sum()
+        expiry = pd.concat([built.nights[prior]["instruments"], built.nights[prior]["hedge_instruments"]]).set_index(
+            "instrument_id")["expiry"]
+        live0 = p0[~(pd.to_datetime(expiry[p0["instrument_id"]]) < pd.Timestamp(day)).to_numpy()]
+        trades = live0.index.union(p1.index)
+        q0 = live0["quantity"].reindex(trades).fillna(0.0)
+        q1 = p1["quantity"].reindex(trades).fillna(0.0)
+        np.testing.assert_allclose(q0 + moved.reindex(trades).fillna(0.0), q1, atol=1e-9)
+        hedge_moves = act[act["trade_id"].isin(built.nights[day]["hedge_positions"]["trade_id"])]
+        fees = built.nights[day]["cash_flows"]
+        assert len(fees) == len(hedge_moves) and (fees["amount"] < 0).all() and set(fees["kind"]) == {"commission"}
 
 
 def test_short_vol_book_is_short_and_delta_neutral_book_offsets_its_delta(built: Built) -> None:

@@ -19,6 +19,7 @@ import pytest
 from attribution.loading import (
     FILE_COLUMNS,
     OPTIONAL_COLUMNS,
+    OPTIONAL_FILES,
     InputFileError,
     available_dates,
     folder_for,
@@ -125,8 +126,11 @@ def test_wrong_column_type_is_fatal(desk: Path, kind: str, column: str, values: 
     assert f"{kind}.parquet" in message and f"'{column}'" in message and wanted in message
 
 
-@pytest.mark.parametrize(("kind", "column"), [(k, c) for k, cols in FILE_COLUMNS.items()
-                                              for c, _ in cols[:2]] + [("positions.parquet", "trade_price")])
+MINI_DESK_FILES = [k for k in FILE_COLUMNS if k not in OPTIONAL_FILES - {"fx_rates.parquet"}]  # what it writes
+
+
+@pytest.mark.parametrize(("kind", "column"), [(k, c) for k in MINI_DESK_FILES for c, _ in FILE_COLUMNS[k][:2]]
+                         + [("positions.parquet", "trade_price")])
 def test_missing_column_is_fatal(desk: Path, kind: str, column: str) -> None:
     """A required column that is absent stops the run naming the file and the column."""
     name = kind.removesuffix(".parquet")
@@ -260,3 +264,13 @@ def test_books_file_is_optional(desk: Path) -> None:
     pq.write_table(table("books", [{"book": "B1", "desk": "Index vol"}]), _file(desk, RUN, "books"))
     frame = read_night(desk, RUN).tables["books.parquet"]
     assert frame.to_dict("records") == [{"book": "B1", "desk": "Index vol"}]
+@pytest.mark.parametrize("kind", ["future_marks", "trade_activity", "cash_flows", "official_pnl"])
+def test_version_two_file_missing_a_column_is_fatal(desk: Path, kind: str) -> None:
+    """An optional version-2 file that is present must have the contract's columns: the run stops naming both."""
+    from tests.contract_files import COLUMNS
+    first = COLUMNS[kind][0][0]
+    columns = {name: pa.array([], type=pa.string() if t == "string" else pa.float64()) for name, t in COLUMNS[kind]
+               if name != first}
+    pq.write_table(pa.table(columns), desk / f"as_of={RUN.isoformat()}" / f"{kind}.parquet")
+    with pytest.raises(InputFileError, match=f"{kind}.parquet: required column '{first}' is missing"):
+        read_night(desk, RUN)

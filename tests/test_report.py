@@ -471,3 +471,39 @@ def test_book_page_caps_its_exception_list_and_counts_them_all(tmp_path: Path) -
     assert rows[0][0] == "rejected" and rows[0][1] == "positions.parquet"
     assert sum(int(r[2]) for r in page.tables["book-exception-rules"][1:]) == matched
     assert f"the other {matched - report.EXCEPTIONS_SHOWN}" in page.text("book-exceptions-more")
+
+
+def test_book_page_shows_hedges_beside_options_and_the_official_break(tmp_path) -> None:
+    """The hedged desk's page: per underlying the options', hedges' and book's delta and P&L equal SQL sums over
+    position_pnl; the options/hedges/cash waterfall ends on the book total; the index shows the official break."""
+    from attribution.cli import main
+    from tests.hedged_desk import write_whole_book
+    from tests.mini_desk import RUN
+
+    write_whole_book(tmp_path / "data")
+    main(["run", "--as-of", RUN.isoformat(), "--data", str(tmp_path / "data"), "--archive",
+          str(tmp_path / "a.duckdb"), "--reports", str(tmp_path / "reports")])
+    folder = tmp_path / "reports" / RUN.isoformat()
+    page = next(folder.glob("book-Index-vol-*.html")).read_text(encoding="utf-8")
+    table = page[page.index('id="hedging-table"'):]
+    table = table[: table.index("</table>")]
+    rows = {m.group(1): [float(v) if v else math.nan for v in re.findall(r'data-value="([^"]*)"', m.group(2))]
+            for m in re.finditer(r'<tr><td class="t">([^<]+)</td>(.*?)</tr>', table)}
+    with duckdb.connect(str(tmp_path / "a.duckdb"), read_only=True) as con:
+        sums = con.execute("""
+            SELECT sum(delta_units) FILTER (WHERE kind = 'option'), sum(delta_units) FILTER (WHERE kind <> 'option'),
+                   sum(pnl_total - pnl_cash) FILTER (WHERE kind = 'option'),
+                   sum(pnl_total - pnl_cash) FILTER (WHERE kind <> 'option'), sum(pnl_cash)
+            FROM position_pnl WHERE book = 'Index vol' AND underlying = 'ZEN'""").fetchone()
+        total = con.execute("SELECT pnl_total, official_break FROM book_pnl WHERE book = 'Index vol'").fetchone()
+    zen = rows["ZEN"]
+    assert zen[0] == pytest.approx(sums[0], rel=1e-12) and zen[1] == pytest.approx(sums[1], rel=1e-12)
+    assert zen[2] == pytest.approx(sums[0] + sums[1], rel=1e-12)
+    assert zen[6:9] == pytest.approx(list(sums[2:5]), rel=1e-12)
+    assert rows["(cash)"][8] == -250.0  # the book's financing charge on its cash row
+    waterfall = page[page.index('id="hedging"'):page.index('id="hedging-table"')]
+    assert shown_number(f"{total[0]:,.0f}") == pytest.approx(round(total[0]))
+    assert f"{total[0]:,.0f}".replace("-", "\u2212") in waterfall or f"{total[0]:,.0f}" in waterfall
+    index = (folder / "index.html").read_text(encoding="utf-8")
+    assert f"{total[1]:,.0f}".replace("-", "\u2212") in index or f"{total[1]:,.0f}" in index
+    assert 'id="fig-official_break"' in page

@@ -51,6 +51,7 @@ from attribution.demo.dividends import Schedule, present_values
 from attribution.demo.dividends import apply as apply_dividends
 from attribution.demo.dividends import plan as plan_dividends
 from attribution.demo.faults import mark_faults, noisy_marks
+from attribution.demo.hedges import HedgeBook, hedge_book
 from attribution.demo.market import (
     IntArray,
     ListedInstruments,
@@ -63,7 +64,7 @@ from attribution.demo.market import (
     zero_rate,
 )
 from attribution.demo.nights import Night, PlantedFault, Pool, Trades
-from attribution.loading import CONTRACT_SCHEMAS
+from attribution.loading import CONTRACT_SCHEMAS, CONTRACT_SCHEMAS_V2
 from attribution.pricing import bsm_greeks, bsm_price
 
 DEFAULT_START = dt.date(2025, 11, 3)
@@ -144,6 +145,7 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments
         lower[a] = np.maximum(lower[a], sign[a] * (spot[a] - strike[a]))
         upper[a] = np.where(is_call[a], spot[a], strike[a])
     price = np.where(tau > 0, np.maximum(price, lower + desk.min_time_value_share * spot), price)
+    delta = bsm_greeks(spot, strike, tau, vol, rate, div, is_call).delta
     # An American mark far from the money hardly moves with vol (or sits in its exercise region) and does not
     # identify one (README, American exercise): the desk gives its vol; only marks within a standard deviation
     # of the money leave it to the job.
@@ -151,7 +153,8 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments
     null_vol = store.null_vol[live] & ~(american & (exercised | ~near))
     night = Night(live=live, price=price, vol=np.where(null_vol, np.nan, vol),
                    keep=np.ones(live.size, bool), tau=tau, lower=lower, upper=upper,
-                   rows=np.zeros(0, np.int64), quantity=np.zeros(0), spot=spot, rate=rate, div=div)
+                   rows=np.zeros(0, np.int64), quantity=np.zeros(0), spot=spot, rate=rate, div=div,
+                   clean_price=price.copy(), delta=delta)
     open_ = tau * DAYS_PER_YEAR >= desk.trading.min_days_to_expiry_new
     z = np.log(strike / spot) / (vol * np.sqrt(np.maximum(tau, 1e-9)))
     series = series_key(und, store.expiry[live]) * 2 + is_call
@@ -306,7 +309,7 @@ def _terms(instruments: pa.Table, split: FloatArray) -> list[pa.ChunkedArray]:
 
 def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: Trades,
            nights: list[Night], ids: NDArray[np.str_], trade_ids: NDArray[np.str_], schedule: Schedule,
-           before_split: int) -> None:
+           before_split: int, hedges: HedgeBook) -> None:
     names = np.array([u.name for u in desk.underlyings])
     codes = np.array([c.code for c in desk.currencies])
     ccy = np.array([list(codes).index(u.currency) for u in desk.underlyings])
@@ -317,7 +320,9 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
         pa.array(np.array([u.exercise for u in desk.underlyings])[store.und], pa.string()),
         pa.array(store.strike, pa.float64()),
         pa.array(store.expiry, pa.date32()), pa.array(desk.param("multiplier")[store.und], pa.float64()),
-        pa.array(codes[ccy[store.und]], pa.string())], schema=SCHEMAS["instruments"])
+        pa.array(codes[ccy[store.und]], pa.string()), pa.array(np.full(store.und.size, "option"), pa.string())],
+        schema=CONTRACT_SCHEMAS_V2["instruments"])
+    hedge_instruments = pa.Table.from_pydict(hedges.instruments, schema=CONTRACT_SCHEMAS_V2["instruments"])
     booked = pa.Table.from_arrays([
         pa.array(trade_ids, pa.string()), pa.array(np.array([b.name for b in desk.books])[trades.book], pa.string()),
         instrument_id.take(pa.array(trades.instrument)), pa.array(trades.trade_date, pa.date32()),
@@ -329,11 +334,24 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
         folder = root / f"as_of={market.dates[d]}"
         folder.mkdir(exist_ok=True)
         held = booked.take(pa.array(night.rows))
+        options = pa.Table.from_arrays([held["trade_id"], held["book"], held["instrument_id"], pa.array(night.quantity),
+                                        held["trade_date"], held["trade_price"]], schema=SCHEMAS["positions"])
+        split = _split(schedule, store, before_split, market.dates[d])[night.live]
+        options_listed = pa.Table.from_arrays(_terms(instruments.take(pa.array(night.live)), split),
+                                              schema=instruments.schema)
+        at = hedge_instruments.schema.get_field_index("multiplier")
+        hedge_listed = hedge_instruments.set_column(at, "multiplier", pa.array(hedges.multipliers[d], pa.float64()))
+        listed = pa.concat_tables([options_listed, hedge_listed])
+        events = {"positions": pa.concat_tables([options, pa.Table.from_pydict(hedges.positions[d],
+                                                                                schema=SCHEMAS["positions"])]),
+                  "instruments": listed,
+                  "future_marks": pa.Table.from_pydict(hedges.future_marks[d], schema=SCHEMAS["future_marks"])}
+        for name, parts in (("trade_activity", hedges.activity[d]), ("cash_flows", hedges.cash_flows[d])):
+            if parts is not None:
+                events[name] = pa.Table.from_pydict(parts, schema=SCHEMAS[name])
+        for name, table in events.items():
+            pq.write_table(table, folder / f"{name}.parquet")
         tables = {
-            "positions": [held["trade_id"], held["book"], held["instrument_id"], pa.array(night.quantity),
-                          held["trade_date"], held["trade_price"]],
-            "instruments": _terms(instruments.take(pa.array(night.live)),
-                                  _split(schedule, store, before_split, market.dates[d])[night.live]),
             "option_marks": [instrument_id.take(pa.array(night.live[night.keep])), pa.array(night.price[night.keep]),
                              pa.array(night.vol[night.keep], mask=np.isnan(night.vol[night.keep]))],
             "underlying_marks": [pa.array(names, pa.string()), pa.array(market.spot[d]),
@@ -360,8 +378,8 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
     dates = desk_business_days(desk, start, business_days)
     root = Path(root)
     _prepare_root(root, dates)
-    market_rng, list_rng, trade_rng, fault_rng = (np.random.default_rng(s) for s in np.random.SeedSequence(seed)
-                                                  .spawn(4))
+    market_rng, list_rng, trade_rng, fault_rng, hedge_rng = (np.random.default_rng(s) for s in
+                                                             np.random.SeedSequence(seed).spawn(5))
     market = simulate_market(desk, dates, market_rng)
     schedule = plan_dividends(desk, market, dates[-1] + np.timedelta64(500, "D"))
     market = apply_dividends(desk, market, schedule)
@@ -394,7 +412,11 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
             faults += mark_faults(desk, market, store, trades, nights, ids, b)
         elif book.marks == "noisy":
             faults += noisy_marks(desk, market, store, nights, b, fault_rng)
-    _write(root, desk, market, store, trades, nights, ids, trade_ids, schedule, before_split)
+    splits = [_split(schedule, store, before_split, day) for day in dates]
+    names_und = np.arange(len(desk.underlyings))
+    hedge_splits = [schedule.split_factor(names_und, np.ones(names_und.size, bool), day) for day in dates]
+    hedges = hedge_book(desk, market, store, trades, nights, trade_ids, hedge_rng, splits, hedge_splits)
+    _write(root, desk, market, store, trades, nights, ids, trade_ids, schedule, before_split, hedges)
     counts = np.array([night.rows.size for night in nights])
     first, last_expiry = dates[0].item(), store.expiry.max().item()
     return DemoSummary(

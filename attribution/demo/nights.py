@@ -55,6 +55,8 @@ class Night:
     spot: FloatArray         # the rest of each live instrument's state, to reprice a planted mark
     rate: FloatArray
     div: FloatArray
+    clean_price: FloatArray  # the model mark before any planted fault
+    delta: FloatArray        # BSM delta at the clean vol (for the book's hedges)
 
 
 @dataclass(frozen=True, slots=True)

@@ -37,6 +37,7 @@ class BookSummary:
     zone: State
     exceptions: int
     position_breaches: int
+    official_break: float | None = None  # official P&L - total (official_pnl.parquet); None without a row
 
 
 @dataclass(frozen=True, slots=True)
@@ -130,6 +131,8 @@ class BookPage:
     #                                                (next amount, its present value, present value of all)
     ex_dates: tuple[FigureRow, ...] = ()           # underlying; (currency, positions); (amount, delta, dividend
     #                                                term, cash dividends, residual, total)
+    hedging: tuple[FigureRow, ...] = ()        # per underlying: options, hedges, book (queries.HEDGING_VALUES)
+    hedge_waterfall: charts.Waterfall | None = None  # options, hedges and cash to the total
 
 
 

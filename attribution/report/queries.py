@@ -56,6 +56,7 @@ class NightFrames:
     vol_parts: pd.DataFrame
     dividend_schedule: pd.DataFrame = field(default_factory=pd.DataFrame)  # per book and underlying held tonight
     ex_dates: pd.DataFrame = field(default_factory=pd.DataFrame)           # per book and underlying gone ex tonight
+    hedging: pd.DataFrame = field(default_factory=pd.DataFrame)  # per book and underlying: options, hedges
 
 
 def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: int) -> NightFrames:
@@ -123,6 +124,7 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
         run=_frame(con, f"""SELECT {_columns(RUNS)} FROM runs WHERE as_of = ?
                             ORDER BY finished_at DESC NULLS LAST, started_at DESC LIMIT 1""", [as_of]),
         vol_parts=_vol_parts(con, as_of),
+        hedging=_frame(con, HEDGING_SQL, [as_of]),
         **(_dividends(con, as_of) if "dividend_schedule" in tables else {}),
     )
 
@@ -165,3 +167,27 @@ def _vol_parts(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> pd.DataFrame:
         FROM position_pnl
         WHERE as_of = ? AND tau_prior_years IS NOT NULL AND vol_prior IS NOT NULL AND vol_run IS NOT NULL
         GROUP BY ALL ORDER BY book, bucket""", [*limits, as_of])
+
+
+# Per book and underlying: the options' and the hedges' (delta-one kinds') delta and P&L, side by side, the
+# largest net delta first. A row archived before instrument kinds existed (kind NULL) is an option; a book's
+# cash row has no underlying and comes last.
+HEDGING_SQL = """
+    WITH p AS (SELECT book, underlying, coalesce(kind, 'option') = 'option' AS is_option, delta_units, delta_cash,
+                      pnl_total - coalesce(pnl_cash, 0) AS pnl, coalesce(pnl_cash, 0) AS cash
+               FROM position_pnl WHERE as_of = ?)
+    SELECT book, coalesce(underlying, '(cash)') AS underlying,
+           sum(delta_units) FILTER (WHERE is_option) AS options_delta_units,
+           sum(delta_units) FILTER (WHERE NOT is_option) AS hedges_delta_units,
+           sum(delta_units) AS book_delta_units,
+           sum(delta_cash) FILTER (WHERE is_option) AS options_delta_cash,
+           sum(delta_cash) FILTER (WHERE NOT is_option) AS hedges_delta_cash,
+           sum(delta_cash) AS book_delta_cash,
+           sum(pnl) FILTER (WHERE is_option) AS options_pnl,
+           sum(pnl) FILTER (WHERE NOT is_option) AS hedges_pnl,
+           sum(cash) AS cash_pnl
+    FROM p GROUP BY book, underlying
+    ORDER BY book, underlying IS NULL, abs(sum(delta_cash)) DESC NULLS LAST, underlying"""
+HEDGING_VALUES: tuple[str, ...] = ("options_delta_units", "hedges_delta_units", "book_delta_units",
+                                   "options_delta_cash", "hedges_delta_cash", "book_delta_cash",
+                                   "options_pnl", "hedges_pnl", "cash_pnl")

@@ -24,6 +24,7 @@ from attribution.report.pages import (
 )
 from attribution.report.queries import (
     EXPOSURE_COLUMNS,
+    HEDGING_VALUES,
     POSITION_TEXT,
     POSITION_VALUES,
     TERM_COLUMNS,
@@ -146,8 +147,33 @@ def _waterfall(f: Mapping[str, float | None], unpriced: int, currency: str) -> c
     steps += [("pnl_new_trade", "New trades", f["pnl_new_trade"], f"{unpriced} unpriced, left out" if unpriced else ""),
               ("pnl_expiry", "Expiries", f["pnl_expiry"], ""),
               ("pnl_amendment", "Amendments", f["pnl_amendment"], ""),
+              ("pnl_fx_translation", "FX translation", f["pnl_fx_translation"], ""),
+              ("pnl_cash", "Cash flows", f["pnl_cash"], ""),
               ("pnl_residual", "Residual", f["pnl_residual"], "")]
     return charts.waterfall(steps, ("pnl_total", f"Total P&L ({currency})", f["pnl_total"]), width=620.0)
+
+
+HEDGING_ROWS_SHOWN = 30  # underlyings listed in a book's hedging table (largest net delta first)
+
+
+def _hedging(frame: pd.DataFrame,
+             currency: str) -> tuple[dict[str, tuple[FigureRow, ...]], dict[str, charts.Waterfall]]:
+    """Per book: its hedging rows (options, hedges, book per underlying) and the options / hedges / cash
+    waterfall to the book's total (every row summed, whatever is listed)."""
+    if not len(frame):
+        return {}, {}
+    rows = _by_book(frame, [FigureRow(label, (), values) for label, values in
+                            zip(_texts(frame, "underlying"), _floats(frame, HEDGING_VALUES), strict=True)])
+    sums = frame.groupby("book", sort=True)[["options_pnl", "hedges_pnl", "cash_pnl"]].sum(min_count=0)
+    charts_by_book = {}
+    for book, r in sums.iterrows():
+        steps = [("options_pnl", "Options", float(r["options_pnl"]), ""),
+                 ("hedges_pnl", "Hedges", float(r["hedges_pnl"]), "underlying, futures, forwards"),
+                 ("cash_pnl", "Cash flows", float(r["cash_pnl"]), "")]
+        total = float(r["options_pnl"] + r["hedges_pnl"] + r["cash_pnl"])
+        charts_by_book[str(book)] = charts.waterfall(steps, ("pnl_total", f"Total P&L ({currency})", total),
+                                                     width=620.0)
+    return {b: r[:HEDGING_ROWS_SHOWN] for b, r in rows.items()}, charts_by_book
 
 
 History = tuple[charts.LineChart, charts.LineChart]
@@ -232,6 +258,7 @@ def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
                             ("next_amount", "next_pv", "schedule_pv"))
     ex_dates = _figure_rows(frames.ex_dates, "underlying", ("currency", "positions"),
                             ("amount", "pnl_delta", "pnl_dividend", "cash_dividends", "pnl_residual", "pnl_total"))
+    hedging, hedge_waterfalls = _hedging(frames.hedging, config.reporting_currency)
     numeric = [c for c, kind in BOOK_PNL if kind == "DOUBLE"]
     pages = []
     for record in frames.books.to_dict("records"):
@@ -247,7 +274,8 @@ def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
             residual_share=_share(figures["pnl_residual"], figures["pnl_actual"]),
             limit=_state(_LIMIT_WORDS, limit_code, "not recorded"),
             zone=q.zone if q else State("", "none", "not yet computed"),
-            exceptions=len(exceptions.get(name, ())), position_breaches=counts["position_breaches"])
+            exceptions=len(exceptions.get(name, ())), position_breaches=counts["position_breaches"],
+            official_break=figures["official_break"])
         methods, method_total = _methods(figures)
         lines, cumulative = history.get(name, (None, None))
         pages.append(BookPage(
@@ -260,7 +288,8 @@ def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
             history_lines=lines, history_residual=cumulative, quality=q, exceptions=exceptions.get(name, ()),
             exception_rules=_rule_counts(exceptions.get(name, ())),
             vol_parts=vol_parts.get(name, ((), None))[0], vol_parts_total=vol_parts.get(name, ((), None))[1],
-            dividend_schedule=schedule.get(name, ()), ex_dates=ex_dates.get(name, ())))
+            dividend_schedule=schedule.get(name, ()), ex_dates=ex_dates.get(name, ()),
+            hedging=hedging.get(name, ()), hedge_waterfall=hedge_waterfalls.get(name)))
     pages.sort(key=_attention)
     return pages
 
