@@ -182,7 +182,7 @@ def test_book_page_loads_clean_with_its_figures(browser: Any, visit: Any, night:
     assert page.text_content("#fig-pnl_total").strip() == charts.format_amount(sums[0])
     assert page.text_content("#fig-pnl_residual").strip() == charts.format_amount(sums[1])
     assert page.text_content("#wf-pnl_total").strip() == charts.format_amount(sums[0])
-    assert page.locator("svg.chart").count() == 4           # two waterfalls (terms; options, hedges, cash), two histories
+    assert page.locator("svg.chart").count() == 4  # two waterfalls (terms; options, hedges, cash), two histories
     assert page.locator("#position-table tbody tr").count() == report.TOP_POSITIONS \
         or page.locator("#position-table tbody tr").count() == 12
     png = page.screenshot(full_page=True, path=str(tmp_path / "book.png"))
