@@ -258,7 +258,7 @@ def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
                             ("next_amount", "next_pv", "schedule_pv"))
     ex_dates = _figure_rows(frames.ex_dates, "underlying", ("currency", "positions"),
                             ("amount", "pnl_delta", "pnl_dividend", "cash_dividends", "pnl_residual", "pnl_total"))
-    hedging, hedge_waterfalls = _hedging(frames.hedging, config.reporting_currency)
+    hedging, hedge_waterfalls = _hedging(frames.hedging, settings.reporting_currency)
     numeric = [c for c, kind in BOOK_PNL if kind == "DOUBLE"]
     pages = []
     for record in frames.books.to_dict("records"):
