@@ -197,16 +197,18 @@ def _delta_one_shares(kind: NDArray[np.int8], strike: FloatArray, pairs: list[tu
 def _european_shares(strike: FloatArray, cp: FloatArray, state0: MarketState, state1: MarketState,
                      rows: NDArray[np.intp] | None) -> RevaluationShares:
     """European shares of the option ``rows`` (None: every row), in arrays over every row (0 elsewhere)."""
-    fields = ("spot", "vol", "tau_years", "rate", "div_yield")
+    pv0, pv1 = np.asarray(state0.div_pv, dtype=float), np.asarray(state1.div_pv, dtype=float)
     if rows is None:
-        return shapley_shares(strike, cp, *(getattr(state0, f) for f in fields), *(getattr(state1, f) for f in fields),
-                              state0.div_pv, state1.div_pv)
+        return shapley_shares(strike, cp, state0.spot, state0.vol, state0.tau_years, state0.rate, state0.div_yield,
+                              state1.spot, state1.vol, state1.tau_years, state1.rate, state1.div_yield, pv0, pv1)
     out = [np.zeros(strike.size) for _ in FACTOR_NAMES]
     if rows.size:
-        part = shapley_shares(strike[rows], cp[rows], *(getattr(state0, f)[rows] for f in fields),
-                              *(getattr(state1, f)[rows] for f in fields), state0.div_pv[rows], state1.div_pv[rows])
+        r = rows
+        part = shapley_shares(strike[r], cp[r], state0.spot[r], state0.vol[r], state0.tau_years[r], state0.rate[r],
+                              state0.div_yield[r], state1.spot[r], state1.vol[r], state1.tau_years[r], state1.rate[r],
+                              state1.div_yield[r], pv0[r], pv1[r])
         for f, name in enumerate(FACTOR_NAMES):
-            out[f][rows] = getattr(part, name)
+            out[f][r] = getattr(part, name)
     return RevaluationShares(*out)
 
 
@@ -225,7 +227,8 @@ def revaluation_shares(strike: FloatArray, cp: FloatArray, state0: MarketState, 
     else:  # the European kernel refuses a delta-one row's terms (no strike, no vol): options alone go there
         shares = _european_shares(strike, cp, state0, state1, np.setdiff1d(np.arange(strike.size), d1))
         pairs = [(getattr(state0, f), getattr(state1, f)) for f in ("spot", "vol", "tau_years", "rate", "div_yield")]
-        one = _delta_one_shares(np.asarray(kind), strike, pairs, (state0.div_pv, state1.div_pv), d1)
+        pv = (np.asarray(state0.div_pv, dtype=float), np.asarray(state1.div_pv, dtype=float))
+        one = _delta_one_shares(np.asarray(kind), strike, pairs, pv, d1)
         out = [getattr(shares, name) for name in FACTOR_NAMES]
         for f in range(len(FACTOR_NAMES)):
             out[f][d1] = one[f]
