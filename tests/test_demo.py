@@ -36,7 +36,7 @@ START = dt.date(2025, 12, 8)   # 14 business days: a monthly expiry (12-19) and 
 DAYS = 14
 TARGET = 600
 FILES = ("positions", "instruments", "option_marks", "underlying_marks", "rate_curves", "fx_rates")
-EVENTS = ("future_marks", "trade_activity", "cash_flows")  # version 2: hedges and the run date's events
+EVENTS = ("dividends", "corporate_actions", "future_marks", "trade_activity", "cash_flows")  # version 2 files
 
 
 @dataclass(frozen=True)
