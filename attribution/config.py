@@ -27,9 +27,10 @@ class ConfigError(ValueError):
 class LimitSettings:
     """Residual limits of one book, amounts in the reporting currency.
 
-    A book breaches when |residual| > ``residual_abs``, or when |actual| >= ``relative_floor`` and
-    |residual| > ``residual_rel`` x |actual|. It is on watch when either test passes
-    ``watch_fraction`` of its limit. A position breaches when |residual| > ``position_abs``.
+    A book breaches when |residual| > its limit: ``residual_abs``, widened to
+    max(``residual_abs``, ``residual_rel`` x |actual|) once |actual| >= ``relative_floor`` (a limit
+    that never tightens as |actual| grows). It is on watch from ``watch_fraction`` of its limit.
+    A position breaches when |residual| > ``position_abs``.
     """
 
     residual_abs: float = 25_000.0

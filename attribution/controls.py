@@ -1,9 +1,11 @@
 """Residual limits: a state per position and per book (``within``, ``watch``, ``breach``).
 
-A book breaches when |residual| exceeds its absolute limit, or when its overnight actual P&L
-is at least the relative floor and |residual| exceeds the relative share of |actual|. It is on
-``watch`` when either test reaches ``watch_fraction`` of its limit. A position breaches when
-|residual| exceeds the per-position limit (``watch`` likewise). Pure numpy.
+A book's limit is its absolute limit, widened to the relative share of |overnight actual P&L|
+once |actual| is at least the relative floor: limit = max(residual_abs, residual_rel x |actual|).
+The limit never tightens as |actual| grows, so a book cannot go from ``within`` to ``breach``
+and back as its P&L grows with the same residual. A book breaches when |residual| exceeds that
+limit, and is on ``watch`` from ``watch_fraction`` of it. A position breaches when |residual|
+exceeds the per-position limit (``watch`` likewise). Pure numpy.
 """
 
 from __future__ import annotations
@@ -23,13 +25,17 @@ def _state(usage: NDArray[np.float64], watch_fraction: ArrayLike) -> NDArray[np.
 
 def limit_usage(residual: ArrayLike, actual: ArrayLike, abs_limit: ArrayLike, rel_limit: ArrayLike,
                 rel_floor: ArrayLike) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-    """Worst share of a limit used by |residual|, and the tightest limit that applies (currency)."""
+    """Share of the limit used by |residual|, and the limit applied (currency).
+
+    limit = residual_abs, widened to max(residual_abs, residual_rel x |actual|) once |actual| >=
+    rel_floor: non-decreasing in |actual|.
+    """
     res = np.abs(np.asarray(residual, dtype=float))
     act = np.abs(np.asarray(actual, dtype=float))
     abs_limit = np.asarray(abs_limit, dtype=float)
     rel_applies = act >= np.asarray(rel_floor, dtype=float)
     rel_amount = np.asarray(rel_limit, dtype=float) * act
-    applied = np.where(rel_applies, np.minimum(abs_limit, rel_amount), abs_limit)
+    applied = np.where(rel_applies, np.maximum(abs_limit, rel_amount), abs_limit)
     with np.errstate(divide="ignore", invalid="ignore"):
         usage = np.where(applied > 0, res / applied, np.where(res > 0, np.inf, 0.0))
     return usage, applied
