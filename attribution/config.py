@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
+import math
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -122,6 +123,16 @@ class JobConfig:
         return plain(self)
 
 
+SECTIONS = ("job", "time", "limits", "checks", "smile", "vol_time")
+JOB_KEYS: dict[str, type] = {  # [job] key -> the TOML type it must have
+    "data_root": str, "archive": str, "reports": str, "reporting_currency": str, "engine": str,
+    "scheduler": str, "revaluation": bool, "write_reports": bool, "history_nights": int, "american_precision": str,
+}
+TIME_KEYS: dict[str, type] = {"basis": str, "holidays": list}
+_TYPE_WORDS = {str: "a string", bool: "true or false", int: "a whole number", float: "a number",
+               list: "a list"}
+
+
 def _section(raw: dict[str, Any], name: str, source: str) -> dict[str, Any]:
     value = raw.get(name, {})
     if not isinstance(value, dict):
@@ -129,15 +140,29 @@ def _section(raw: dict[str, Any], name: str, source: str) -> dict[str, Any]:
     return value
 
 
-def _settings(cls: type, values: dict[str, Any], where: str) -> Any:
-    known = {f.name for f in dataclasses.fields(cls)}
-    unknown = sorted(set(values) - known)
+def _typed(values: dict[str, Any], types: dict[str, type], where: str) -> dict[str, Any]:
+    """Refuse unknown keys and values of the wrong TOML type (a bool is not a number)."""
+    unknown = sorted(set(values) - set(types))
     if unknown:
-        raise ConfigError(f"{where}: unknown key(s) {', '.join(unknown)}; allowed: {', '.join(sorted(known))}")
+        raise ConfigError(f"{where}: unknown key(s) {', '.join(unknown)}; allowed: {', '.join(sorted(types))}")
     for key, value in values.items():
-        if not isinstance(value, int | float) or isinstance(value, bool) or value < 0:
-            raise ConfigError(f"{where}: {key} must be a number >= 0, got {value!r}")
-    return cls(**{k: float(v) for k, v in values.items()})
+        wanted = types[key]
+        ok = isinstance(value, wanted) and not (wanted is not bool and isinstance(value, bool))
+        if wanted is float:
+            ok = isinstance(value, int | float) and not isinstance(value, bool)
+        if not ok:
+            raise ConfigError(f"{where}: {key} must be {_TYPE_WORDS[wanted]}, got {value!r}")
+    return values
+
+
+def _settings(cls: type, values: dict[str, Any], where: str) -> Any:
+    """A settings dataclass from a table: every key known, a finite number >= 0 of the field's type."""
+    types = {f.name: int if f.type in ("int", int) else float for f in dataclasses.fields(cls)}
+    _typed(values, types, where)
+    for key, value in values.items():
+        if not math.isfinite(value) or value < 0:
+            raise ConfigError(f"{where}: {key} must be a finite number >= 0, got {value!r}")
+    return cls(**{k: types[k](v) for k, v in values.items()})
 
 
 def _smile_settings(values: dict[str, Any], where: str) -> SmileSettings:
@@ -187,26 +212,39 @@ def _vol_time_settings(values: dict[str, Any], where: str) -> VolTimeSettings:
 
 
 def load_job(path: Path) -> JobConfig:
-    """Read a TOML job file (see jobs/nightly.toml for every key, documented)."""
+    """Read a TOML job file (see jobs/nightly.toml for every key, documented).
+
+    Every key is checked: unknown sections and keys, values of the wrong type, NaN and infinity
+    are refused with a :class:`ConfigError` naming the file and the key.
+    """
     source = str(path)
     try:
         raw = tomllib.loads(path.read_text(encoding="utf-8"))
     except FileNotFoundError as exc:
         raise ConfigError(f"{source}: job file not found") from exc
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{source}: job file cannot be read ({exc})") from exc
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{source}: not valid TOML: {exc}") from exc
+    unknown = sorted(set(raw) - set(SECTIONS))
+    if unknown:
+        raise ConfigError(f"{source}: unknown section(s) or top-level key(s) {', '.join(unknown)}; "
+                          f"allowed: {', '.join(f'[{s}]' for s in SECTIONS)}")
     base = path.resolve().parent
-    job = _section(raw, "job", source)
-    time = _section(raw, "time", source)
+    job = _typed(_section(raw, "job", source), JOB_KEYS, f"{source} [job]")
+    time = _typed(_section(raw, "time", source), TIME_KEYS, f"{source} [time]")
     limits_raw = dict(_section(raw, "limits", source))
     books_raw = limits_raw.pop("books", {})
+    if not isinstance(books_raw, dict) or not all(isinstance(v, dict) for v in books_raw.values()):
+        raise ConfigError(f"{source} [limits.books]: each book must be a table such as [limits.books.\"my-book\"]")
     checks = _section(raw, "checks", source)
     smile = _smile_settings(_section(raw, "smile", source), f"{source} [smile]")
     vol_time = _vol_time_settings(_section(raw, "vol_time", source), f"{source} [vol_time]")
+    defaults = JobConfig()
 
     def resolve(key: str, default: Path) -> Path:
         value = job.get(key)
-        return default if value is None else (base / str(value)).resolve()
+        return default if value is None else (base / value).resolve()
 
     default_limits = _settings(LimitSettings, limits_raw, f"{source} [limits]")
     book_limits = tuple(
@@ -216,24 +254,27 @@ def load_job(path: Path) -> JobConfig:
         for book, values in sorted(books_raw.items())
     )
     holidays = time.get("holidays", [])
-    if not all(isinstance(h, dt.date) for h in holidays):
+    if not all(isinstance(h, dt.date) and not isinstance(h, dt.datetime) for h in holidays):
         raise ConfigError(f"{source} [time] holidays: every entry must be a TOML date such as 2026-12-25")
+    history_nights = job.get("history_nights", defaults.history_nights)
+    if history_nights < 1:
+        raise ConfigError(f"{source} [job]: history_nights must be a whole number >= 1, got {history_nights!r}")
     config = JobConfig(
-        data_root=resolve("data_root", JobConfig.data_root),
-        archive_path=resolve("archive", JobConfig.archive_path),
-        reports_dir=resolve("reports", JobConfig.reports_dir),
-        reporting_currency=str(job.get("reporting_currency", "USD")),
-        time_basis=str(time.get("basis", "ACT/365F")),
+        data_root=resolve("data_root", defaults.data_root),
+        archive_path=resolve("archive", defaults.archive_path),
+        reports_dir=resolve("reports", defaults.reports_dir),
+        reporting_currency=job.get("reporting_currency", defaults.reporting_currency),
+        time_basis=time.get("basis", defaults.time_basis),
         holidays=tuple(sorted(holidays)),
         limits=default_limits,
         book_limits=book_limits,
         checks=_settings(CheckSettings, checks, f"{source} [checks]"),
-        engine=str(job.get("engine", "local")),
-        scheduler=job.get("scheduler"),
-        revaluation=bool(job.get("revaluation", True)),
-        american_precision=str(job.get("american_precision", "standard")),
-        write_reports=bool(job.get("write_reports", True)),
-        history_nights=int(job.get("history_nights", 60)),
+        engine=job.get("engine", defaults.engine),
+        scheduler=job.get("scheduler", defaults.scheduler),
+        revaluation=job.get("revaluation", defaults.revaluation),
+        american_precision=job.get("american_precision", defaults.american_precision),
+        write_reports=job.get("write_reports", defaults.write_reports),
+        history_nights=history_nights,
         smile=smile,
         vol_time=vol_time,
     )

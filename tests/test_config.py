@@ -3,11 +3,15 @@
 from __future__ import annotations
 
 import datetime as dt
+import json
 from pathlib import Path
 
 import pytest
 
+from attribution.cli import main
 from attribution.config import ConfigError, JobConfig, LimitSettings, load_job
+from attribution.errors import EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
+from tests.mini_desk import RUN, write_mini_desk
 
 JOBS = Path(__file__).resolve().parent.parent / "jobs"
 
@@ -37,7 +41,23 @@ def test_defaults_without_a_job_file():
     ("[time]\nbasis = 'ACT/360'\n", "time basis 'ACT/360'"),
     ("[job]\nengine = 'spark'\n", "engine 'spark'"),
     ("[job]\nreporting_currency = 'dollars'\n", "ISO 4217"),
-    ("[limits]\nresidual_abs = -5\n", "residual_abs must be a number >= 0"),
+    ("[limits]\nresidual_abs = -5\n", "residual_abs must be a finite number >= 0"),
+    ("[limits]\nresidual_abs = nan\n", "residual_abs must be a finite number >= 0"),
+    ("[limits]\nresidual_rel = inf\n", "residual_rel must be a finite number >= 0"),
+    ("[limits]\nresidual_abs = true\n", "residual_abs must be a number"),
+    ("[limits.books.x]\nposition_abs = -inf\n", "position_abs must be a finite number >= 0"),
+    ("[checks]\nmax_vol = nan\n", "max_vol must be a finite number >= 0"),
+    ("[job]\nhistory_nights = 'sixty'\n", "history_nights must be a whole number"),
+    ("[job]\nhistory_nights = 0\n", "history_nights must be a whole number >= 1"),
+    ("[job]\nwrite_reports = 'no'\n", "write_reports must be true or false"),
+    ("[job]\nrevaluation = 1\n", "revaluation must be true or false"),
+    ("[job]\ndata_roots = 'x'\n", "unknown key(s) data_roots"),
+    ("[job]\ndata_root = 5\n", "data_root must be a string"),
+    ("[job]\nscheduler = 8786\n", "scheduler must be a string"),
+    ("[time]\nbasis = 365\n", "basis must be a string"),
+    ("[time]\nholiday = [2026-12-25]\n", "unknown key(s) holiday"),
+    ("[jobs]\nengine = 'local'\n", "unknown section(s) or top-level key(s) jobs"),
+    ("history_nights = 60\n", "unknown section(s) or top-level key(s) history_nights"),
     ("[limits]\nresidual_abz = 5\n", "unknown key(s) residual_abz"),
     ("[time]\nholidays = ['2026-12-25']\n", "TOML date"),
     ("[job\n", "not valid TOML"),
@@ -64,3 +84,38 @@ def test_american_precision_is_a_job_option(tmp_path):
     path.write_text('[job]\namerican_precision = "precise"\n')
     assert load_job(path).american_precision == "precise"
     assert JobConfig().american_precision == "standard"
+
+
+def test_a_job_file_without_path_keys_takes_the_default_paths(tmp_path):
+    """Defaults come from an instance, not a slotted class's attributes: paths are Paths and the record is JSON."""
+    path = tmp_path / "job.toml"
+    path.write_text("[limits]\nresidual_abs = 30000\n")
+    config = load_job(path)
+    assert (config.data_root, config.archive_path, config.reports_dir) == (
+        Path("data"), Path("archive.duckdb"), Path("reports"))
+    assert json.loads(json.dumps(config.as_record()))["archive_path"] == "archive.duckdb"
+
+
+@pytest.mark.parametrize(("text", "key"), [
+    ("[job]\nhistory_nigths = 60\n", "history_nigths"),
+    ("[job]\nhistory_nights = 'sixty'\n", "history_nights"),
+    ("[job]\nwrite_reports = 'no'\n", "write_reports"),
+    ("[limits]\nresidual_abs = nan\n", "residual_abs"),
+])
+def test_the_command_line_refuses_a_bad_key_with_exit_2(tmp_path, capsys, text, key):
+    """``attribution run --job`` with a bad key exits 2 (usage) naming the file and the key, no traceback."""
+    path = tmp_path / "job.toml"
+    path.write_text(text)
+    assert main(["run", "--as-of", "2026-11-30", "--job", str(path)]) == EXIT_USAGE
+    err = capsys.readouterr().err
+    assert str(path) in err and key in err and "Traceback" not in err
+
+
+def test_a_run_with_a_job_file_without_path_keys_succeeds(tmp_path, monkeypatch, capsys):
+    """The run that crashed on the job file's defaults (not JSON serializable) archives the night."""
+    write_mini_desk(tmp_path / "data")
+    (tmp_path / "job.toml").write_text("[job]\nwrite_reports = false\n")
+    monkeypatch.chdir(tmp_path)
+    code = main(["run", "--as-of", RUN.isoformat(), "--job", "job.toml"])
+    assert code in (EXIT_OK, EXIT_FINDINGS), capsys.readouterr().err
+    assert (tmp_path / "archive.duckdb").exists()
