@@ -28,6 +28,10 @@ class ArchiveBusyError(JobFailure):
     """Another run holds the archive."""
 
 
+class ArchiveFormatError(JobFailure):
+    """The archive file holds a table of ours with columns this job did not write."""
+
+
 def lock_path(archive: Path) -> Path:
     """The lock file beside the archive file, links followed: every name of one archive shares one lock."""
     real = archive.resolve()
@@ -70,11 +74,35 @@ def connect(archive: Path, read_only: bool = False) -> duckdb.DuckDBPyConnection
         return duckdb.connect(str(archive), read_only=True)
     archive.parent.mkdir(parents=True, exist_ok=True)
     con = duckdb.connect(str(archive))
-    for table, columns in TABLES.items():
-        body = ", ".join(f'"{name}" {sql_type}' for name, sql_type in columns)
-        con.execute(f"CREATE TABLE IF NOT EXISTS {table} ({body})")
-        _add_missing_columns(con, table, columns)
+    try:
+        _refuse_foreign_tables(con, archive)
+        con.execute("BEGIN TRANSACTION")
+        for table, columns in TABLES.items():
+            body = ", ".join(f'"{name}" {sql_type}' for name, sql_type in columns)
+            con.execute(f"CREATE TABLE IF NOT EXISTS {table} ({body})")
+            _add_missing_columns(con, table, columns)
+        con.execute("COMMIT")
+    except BaseException:
+        con.close()
+        raise
     return con
+
+
+def _refuse_foreign_tables(con: duckdb.DuckDBPyConnection, archive: Path) -> None:
+    """Stop before any change when a table of ours exists with other columns (a file of another program).
+
+    An archive of this job holds, per table, the schema's first columns in order (an earlier version
+    has a prefix of them); anything else is not ours to alter.
+    """
+    for table, columns in TABLES.items():
+        present = [r[0] for r in con.execute(
+            "SELECT column_name FROM information_schema.columns WHERE table_name = ? AND table_schema = 'main' "
+            "ORDER BY ordinal_position", [table]).fetchall()]
+        expected = [name for name, _ in columns]
+        if present and present != expected[: len(present)]:
+            raise ArchiveFormatError(
+                f"{archive}: table {table} is not an archive table of this job (its columns begin "
+                f"{', '.join(present[:5])}); point --archive at another file")
 
 
 def _add_missing_columns(con: duckdb.DuckDBPyConnection, table: str, columns: tuple[tuple[str, str], ...]) -> None:

@@ -28,10 +28,14 @@ UNASSIGNED_DESK = "(unassigned)"  # the desk of a book that books.parquet does n
 
 def position_books(raw0: RawNight, raw1: RawNight, exceptions: pd.DataFrame) -> pd.DataFrame:
     """The ledger with a ``book`` column (the book of the position a row is about, else null) and
-    ``position``: one identity per input position (its trade_id; file and row for a keyless row)."""
+    ``position``: one identity per input position (its trade_id; file and row for a keyless row).
+
+    ``exceptions`` carries the ``keyless`` flag of :meth:`ExceptionLog.frame` (a real key may read like
+    a keyless row's key text, so the flag, not the text, says which rows have no key); the result does not."""
     on_positions = exceptions["file"].str.endswith("positions.parquet").to_numpy()
     keys = exceptions["key"].astype(str)
-    keyless = keys.str.startswith(NULL_KEY).to_numpy() & on_positions
+    keyless = exceptions["keyless"].to_numpy(dtype=bool) & on_positions
+    exceptions = exceptions.drop(columns="keyless")
     book = np.full(len(exceptions), None, dtype=object)
     position_break = (exceptions["rule"] == POSITION_BREAK).to_numpy()  # keyed by trade_id: shown with its book
     with_key = (on_positions & ~keyless) | position_break

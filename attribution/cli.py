@@ -13,6 +13,7 @@ import json
 import logging
 import math
 import sys
+import warnings
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -310,6 +311,20 @@ def main(argv: Sequence[str] | None = None) -> int:
         return EXIT_USAGE if exc.code not in (0, None) else EXIT_OK
     level = [logging.WARNING, logging.INFO, logging.DEBUG][min(args.verbose, 2)]
     logging.basicConfig(level=level, stream=sys.stderr, format="%(asctime)s %(levelname)s %(message)s")
+    with warnings.catch_warnings():
+        # Library warnings (numpy overflow, ...) name source lines, which tell a user nothing: the rows they
+        # concern are rejected by rule in the exception ledger. They go to the debug log (-vv) instead.
+        warnings.showwarning = _warning_to_log
+        return _dispatch(args)
+
+
+def _warning_to_log(message: Warning | str, category: type[Warning], filename: str, lineno: int,
+                    file: object = None, line: str | None = None) -> None:
+    log.debug("%s: %s (%s:%s)", category.__name__, message, filename, lineno)
+
+
+def _dispatch(args: argparse.Namespace) -> int:
+    """Run the command; every failure becomes one line on stderr and an exit code."""
     try:
         return COMMANDS[args.command](args)
     except BrokenPipeError:  # the reader went away (e.g. piped into head): not an error of the job

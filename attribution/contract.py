@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 
 from attribution.config import CheckSettings
-from attribution.exceptions_log import ExceptionLog
+from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.loading import RawNight
 
 
@@ -86,7 +86,8 @@ class _Rules:
         mask = np.asarray(bad, dtype=bool) & self.ok
         if mask.any():
             keys = _key(self.frame, self.key_column)[mask]
-            self.log.add(self.path, keys.to_numpy(), rule, detail(mask) if callable(detail) else detail)
+            self.log.add(self.path, keys.to_numpy(), rule, detail(mask) if callable(detail) else detail,
+                         keyless=self.frame[self.key_column].isna().to_numpy()[mask])
             self.reasons[mask] = rule
             self.ok &= ~mask
 
@@ -264,6 +265,8 @@ def _underlyings(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.
     rules.unique("underlying")
     rules.finite("spot", "dividend_yield")
     rules.positive("spot")
+    rules.reject(frame["spot"].to_numpy(dtype=float) < np.finfo(float).tiny, "spot is too small to price",
+                 lambda m: shown(frame, "spot")(m) + " is below the smallest normal float64 (a denormal number)")
     rules.reject(np.abs(frame["dividend_yield"].to_numpy(dtype=float)) > checks.max_abs_rate,
                  "dividend_yield is absurd", lambda m: shown(frame, "dividend_yield")(m)
                  + f" is beyond +-{checks.max_abs_rate:g}; yields are decimals (0.02 for 2 %)")
@@ -273,7 +276,8 @@ def _underlyings(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.
 def _curves(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.DataFrame:
     file = "rate_curves.parquet"
     frame = raw.tables[file].copy()
-    frame["point"] = frame["currency"].astype(str) + " @ " + frame["tenor_years"].astype(str) + "y"
+    # -0.0 + 0.0 is 0.0: tenors 0.0 and -0.0 are one point, so the duplicate rule sees them.
+    frame["point"] = frame["currency"].astype(str) + " @ " + (frame["tenor_years"] + 0.0).astype(str) + "y"
     rules = _Rules(log, raw.path(file), frame, "point")
     rules.required("currency")
     rules.finite("tenor_years", "zero_rate")
@@ -409,3 +413,27 @@ def clean_night(raw: RawNight, log: ExceptionLog, checks: CheckSettings, reporti
         cash_flows=_cash_flows(events, log),
         official=_official_pnl(events, log),
     )
+
+
+EARLIEST_TRADE_DATE = np.datetime64("1900-01-01", "D")  # before this a trade_date is a placeholder, not a booking
+
+
+def trade_date_warnings(night: CleanNight, log: ExceptionLog) -> None:
+    """Warn (the position is still explained) on run-date positions whose trade_date is null, after the
+    run date, or before 1900 (a placeholder such as year 1): the booked-late flag and the new-trade line
+    read it."""
+    positions = night.positions
+    trade_date = positions["trade_date"].to_numpy(dtype="datetime64[D]")
+    run_day = np.datetime64(night.raw.as_of, "D")
+    ids = positions["trade_id"].to_numpy(dtype=object)
+    file = night.raw.path("positions.parquet")
+    text = np.datetime_as_string(trade_date, unit="D").astype(object)
+    missing = np.isnat(trade_date)
+    log.add(file, ids[missing], "trade_date is null", "trade_date is missing; the booking date cannot be checked",
+            WARNING)
+    late = ~missing & (trade_date > run_day)
+    log.add(file, ids[late], "trade_date after the run date", "trade_date = " + text[late]
+            + f" is after the run date {night.raw.as_of}", WARNING)
+    old = ~missing & (trade_date < EARLIEST_TRADE_DATE)
+    log.add(file, ids[old], "trade_date is implausible", "trade_date = " + text[old] + " is before 1900-01-01",
+            WARNING)

@@ -36,7 +36,7 @@ from attribution.activity import (
 from attribution.archive import archive_lock, connect, write_night
 from attribution.books import book_frame, conservation, position_books, position_limit_states, rejected_positions
 from attribution.config import ConfigError, JobConfig
-from attribution.contract import CleanNight, clean_night
+from attribution.contract import CleanNight, clean_night, trade_date_warnings
 from attribution.controls import BREACH
 from attribution.corporate_actions import restate_prior
 from attribution.dividends import going_ex, schedule_frame
@@ -45,7 +45,7 @@ from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.lifecycle import Legs, match_legs
 from attribution.loading import prior_date, read_night
 from attribution.market import InstrumentMarket, build_market, flag_stale_marks, instrument_terms
-from attribution.night import corporate_flags, dividend_income, position_rows, stale_flags
+from attribution.night import corporate_flags, dividend_income, position_rows, reject_non_finite, stale_flags
 from attribution.smile_night import check_smiles, night_smiles
 from attribution.timebasis import TimeBasis
 from attribution.vol_time import variance_clock
@@ -180,6 +180,7 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     clean0 = clean_night(raw0, log, config.checks, config.reporting_currency, run_date=False)
     clean1 = clean_night(raw1, log, config.checks, config.reporting_currency)
     clean0, restated = restate_prior(clean0, clean1, log)  # a split tonight: the prior date in new units
+    trade_date_warnings(clean1, log)
     watch.lap("validate")
     market0 = build_market(clean0, instrument_terms(clean0, clean1), basis, config.checks, log,
                            config.american_precision)
@@ -196,8 +197,10 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     smiles = night_smiles(market0, market1, vol0, vol1)
     check_smiles(smiles, market1, market1.vol, config.smile.off_smile_vol, raw1.path("option_marks.parquet"), log)
     watch.lap("market")
-    positions = position_rows(legs, clean0, clean1, market0, market1, basis, config.revaluation, smiles,
-                              config.smile.dynamics, clock, activity)
+    with np.errstate(all="ignore"):  # overflows and underflows are caught row by row just below
+        positions = position_rows(legs, clean0, clean1, market0, market1, basis, config.revaluation, smiles,
+                                  config.smile.dynamics, clock, activity)
+    positions = reject_non_finite(positions, raw0.path("positions.parquet"), raw1.path("positions.parquet"), log)
     positions = stale_flags(positions, market1.ids[stale].to_numpy())
     went_ex = going_ex(clean0.dividends, clean1.dividends, prior_as_of, as_of)
     positions = corporate_flags(dividend_income(positions, went_ex), restated, went_ex)
@@ -206,7 +209,7 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     positions = cash_rows(positions, clean1, config.reporting_currency, log, books)
     watch.lap("explain")
     positions["limit_state"] = position_limit_states(positions, config)
-    ledger = position_books(raw0, raw1, log.frame())
+    ledger = position_books(raw0, raw1, log.frame(keyless=True))
     rejected = rejected_positions(ledger)
     exceptions = ledger.drop(columns="position")
     frame = book_frame(positions, exceptions, rejected, config, as_of, prior_as_of, clean1.desks)

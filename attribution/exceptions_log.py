@@ -24,8 +24,14 @@ class ExceptionLog:
     as_of: dt.date
     _parts: list[pd.DataFrame] = field(default_factory=list)
 
-    def add(self, file: str, keys: object, rule: str, detail: object, severity: str = REJECTED) -> None:
-        """One row per key; ``detail`` is one text for all or one per key."""
+    def add(self, file: str, keys: object, rule: str, detail: object, severity: str = REJECTED,
+            keyless: object = False) -> None:
+        """One row per key; ``detail`` is one text for all or one per key.
+
+        ``keyless`` (one flag for all or one per key) marks rows whose file row has no key: their
+        key text names the row's number in the file. The flag, not the text, says so, because a
+        real key may read like that text.
+        """
         key_array = np.asarray(keys, dtype=object).ravel()
         if key_array.size == 0:
             return
@@ -33,13 +39,14 @@ class ExceptionLog:
         self._parts.append(pd.DataFrame({
             "file": file, "key": pd.Series(key_array, dtype=object).fillna("(null)").astype(str).to_numpy(),
             "rule": rule, "detail": details.astype(str), "severity": severity,
+            "keyless": np.broadcast_to(np.asarray(keyless, dtype=bool), key_array.shape),
         }))
 
-    def frame(self) -> pd.DataFrame:
-        """All rows so far, with ``as_of``, in the order they were found."""
-        columns = ["as_of", "file", "key", "rule", "detail", "severity"]
+    def frame(self, keyless: bool = False) -> pd.DataFrame:
+        """All rows so far, with ``as_of``, in the order they were found (and the ``keyless`` flag if asked)."""
+        columns = ["as_of", "file", "key", "rule", "detail", "severity", *(["keyless"] if keyless else [])]
         if not self._parts:
-            return pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
+            return pd.DataFrame({c: pd.Series(dtype=bool if c == "keyless" else object) for c in columns})
         out = pd.concat(self._parts, ignore_index=True)
         out.insert(0, "as_of", pd.Timestamp(self.as_of))
         return out[columns]

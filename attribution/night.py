@@ -15,6 +15,7 @@ from attribution.activity import LegActivity
 from attribution.arrays import FloatArray
 from attribution.contract import CleanNight
 from attribution.dividends import income_per_unit
+from attribution.exceptions_log import ExceptionLog
 from attribution.explain import Explain, MarketState, explain_overnight
 from attribution.lifecycle import CARRIED, CLOSED, EXERCISED, EXPIRIES, NEW, NEW_UNPRICED, Legs, trade_date_flags
 from attribution.market import InstrumentMarket, take
@@ -292,3 +293,32 @@ def dividend_income(frame: pd.DataFrame, went_ex: pd.DataFrame) -> pd.DataFrame:
                     * frame["fx_rate"].to_numpy(float)[holder] * per_unit)
     return frame.assign(pnl_cash=frame["pnl_cash"].to_numpy(float) + cash,
                         pnl_total=frame["pnl_total"].to_numpy(float) + cash)
+
+
+def reject_non_finite(frame: pd.DataFrame, prior_file: str, run_file: str, log: ExceptionLog) -> pd.DataFrame:
+    """Rows with an amount that is not a finite number (an overflow from an absurd multiplier or FX
+    rate, an underflow from a denormal spot) leave the night with a ``rejected`` row keyed by the
+    trade_id, naming the columns and the inputs to check; nothing non-finite reaches the archive."""
+    amounts = [c for c in (*PNL_COLUMNS, *EXPOSURE_COLUMNS, *V2_AMOUNT_COLUMNS) if c in frame.columns]
+    values = frame[amounts].to_numpy(dtype=float)
+    bad_cell = ~np.isfinite(values)
+    unpriced = (frame["status"] == NEW_UNPRICED).to_numpy()  # no trade price: pnl_new_trade is NULL by design
+    bad_cell[:, amounts.index("pnl_new_trade")] &= ~(unpriced & np.isnan(values[:, amounts.index("pnl_new_trade")]))
+    reval = frame[list(REVAL_COLUMNS)].to_numpy(dtype=float)
+    bad_reval = np.isinf(reval) | (np.isnan(reval) & ~np.isnan(reval).all(axis=1, keepdims=True))
+    bad = bad_cell.any(axis=1) | bad_reval.any(axis=1)
+    if not bad.any():
+        return frame
+    names = np.array(amounts + list(REVAL_COLUMNS), dtype=object)
+    cells = np.concatenate([bad_cell, bad_reval], axis=1)[bad]
+    rows = frame.loc[bad]
+    detail = [f"{', '.join(names[c][:4])}{' ...' if c.sum() > 4 else ''} not finite; inputs: multiplier {m:.6g}, "
+              f"fx_rate {f:.6g}, spot {s0:.6g} -> {s1:.6g}, price {p0:.6g} -> {p1:.6g}"
+              for c, m, f, s0, s1, p0, p1 in zip(cells, rows["multiplier"], rows["fx_rate"], rows["spot_prior"],
+                                                 rows["spot_run"], rows["price_prior"], rows["price_run"], strict=True)]
+    on_prior = rows["status"].isin([CARRIED, CLOSED, *EXPIRIES]).to_numpy()
+    detail_arr = np.array(detail, dtype=object)
+    trades = rows["trade_id"].to_numpy(dtype=object)
+    for file, mine in ((prior_file, on_prior), (run_file, ~on_prior)):
+        log.add(file, trades[mine], "P&L is not a finite number", detail_arr[mine])
+    return frame.loc[~bad].reset_index(drop=True)

@@ -300,3 +300,21 @@ def test_schema_names_are_plain_identifiers():
     names = [t for t in TABLES] + [c for cols in TABLES.values() for c, _ in cols]
     assert all(re.fullmatch(r"[a-z][a-z0-9_]*", n) for n in names), [n for n in names
                                                                     if not re.fullmatch(r"[a-z][a-z0-9_]*", n)]
+
+
+def test_a_file_holding_a_foreign_position_pnl_table_is_left_as_it_was(tmp_path, capsys):
+    """An archive file whose position_pnl is another program's: the run fails (1) naming it, bytes unchanged."""
+    write_mini_desk(tmp_path / "data")
+    path = tmp_path / "other.duckdb"
+    with duckdb.connect(str(path)) as con:
+        con.execute("CREATE TABLE position_pnl (id INTEGER, label VARCHAR)")
+        con.execute("INSERT INTO position_pnl VALUES (1, 'kept')")
+    before = hashlib.sha256(path.read_bytes()).hexdigest()
+    code = main(["run", "--as-of", RUN.isoformat(), "--data", str(tmp_path / "data"), "--archive", str(path),
+                 "--no-reports"])
+    assert code == 1
+    assert "table position_pnl is not an archive table of this job" in capsys.readouterr().err
+    assert hashlib.sha256(path.read_bytes()).hexdigest() == before
+    with duckdb.connect(str(path), read_only=True) as con:
+        assert [r[0] for r in con.execute("SELECT table_name FROM information_schema.tables").fetchall()] == [
+            "position_pnl"]

@@ -36,10 +36,12 @@ def raw(as_of: dt.date, trade_ids: list[str | None], books: list[str | None]) ->
     return RawNight(as_of, Path(f"data/as_of={as_of}"), {"positions.parquet": positions}, {})
 
 
-def ledger(rows: list[tuple[str, str, str]]) -> pd.DataFrame:
-    """Exception rows (file, key, severity) as the exception log frames them."""
+def ledger(rows: list[tuple[str, str, str]], keyless: list[bool] | None = None) -> pd.DataFrame:
+    """Exception rows (file, key, severity) as the exception log frames them, with its keyless flag
+    (by default: the keys written as a keyless row's key)."""
+    flags = keyless if keyless is not None else [r[1].startswith(NULL_KEY) for r in rows]
     return pd.DataFrame({"as_of": RUN, "file": [r[0] for r in rows], "key": [r[1] for r in rows],
-                         "rule": "a rule", "detail": "", "severity": [r[2] for r in rows]})
+                         "rule": "a rule", "detail": "", "severity": [r[2] for r in rows], "keyless": flags})
 
 
 def positions(rows: list[dict[str, object]]) -> pd.DataFrame:
@@ -64,6 +66,15 @@ def test_position_books_names_the_book_of_each_row_about_a_position():
     assert out["book"].tolist()[:5] == ["beta", "alpha", NO_BOOK, "beta", "gamma"]
     assert out["position"].tolist()[:5] == ["T3", "T2", "T9", f"{POS0}#{NULL_KEY}2", f"{POS1}#{NULL_KEY}2"]
     assert out[["book", "position"]].iloc[5].isna().all()
+
+
+def test_a_trade_id_that_reads_like_a_keyless_key_is_a_trade():
+    """The keyless flag, not the key text, makes a row keyless: a trade named "(null) row 7" keeps its name."""
+    named = f"{NULL_KEY}7"
+    raw1 = raw(RUN, ["T1", named], ["alpha", "beta"])
+    out = position_books(RAW0, raw1, ledger([(POS1, named, REJECTED)], keyless=[False]))
+    assert out[["book", "position"]].values.tolist() == [["beta", named]]
+    assert "keyless" not in out.columns
 
 
 def test_rejected_positions_counts_each_rejected_position_once():

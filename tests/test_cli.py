@@ -243,3 +243,20 @@ def test_history_without_a_book_or_desk_is_a_usage_error(capsys):
     """``history`` needs --book or --desk (exit 2), unless it prints the schema."""
     assert main(["history"]) == EXIT_USAGE
     assert "--book" in capsys.readouterr().err
+
+
+def test_numeric_warnings_never_reach_the_terminal(tmp_path):
+    """An overflowing multiplier is rejected by rule; no RuntimeWarning or source path reaches stderr."""
+    import subprocess
+    import sys
+
+    from tests.contract_files import edit_row
+    from tests.mini_desk import PRIOR
+    write_mini_desk(tmp_path / "data")
+    for day in (PRIOR, RUN):
+        edit_row(tmp_path / "data", day, "instruments", "ZEN-C100-J27", multiplier=1e308)
+    done = subprocess.run([sys.executable, "-m", "attribution.cli", "run", "--as-of", RUN.isoformat(),
+                           "--data", str(tmp_path / "data"), "--archive", str(tmp_path / "a.duckdb"), "--no-reports"],
+                          capture_output=True, text=True, timeout=300)
+    assert done.returncode == 3, done.stderr
+    assert "Warning" not in done.stderr and ".py:" not in done.stderr, done.stderr
