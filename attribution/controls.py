@@ -36,7 +36,7 @@ def limit_usage(residual: ArrayLike, actual: ArrayLike, abs_limit: ArrayLike, re
     rel_applies = act >= np.asarray(rel_floor, dtype=float)
     rel_amount = np.asarray(rel_limit, dtype=float) * act
     applied = np.where(rel_applies, np.maximum(abs_limit, rel_amount), abs_limit)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # a tiny limit's usage is inf: a breach
         usage = np.where(applied > 0, res / applied, np.where(res > 0, np.inf, 0.0))
     return usage, applied
 
