@@ -195,7 +195,7 @@ def _archive_of(args: argparse.Namespace) -> Path:
 
 
 HISTORY_SHOWN = ("pnl_total", "pnl_actual", "pnl_delta", "pnl_gamma", "pnl_vega", "pnl_volga", "pnl_vanna",
-                 "pnl_theta", "pnl_rates", "pnl_dividend", "pnl_explained", "pnl_residual")
+                 "pnl_theta", "pnl_rates", "pnl_dividend", "pnl_explained", "pnl_residual", "pnl_fx_translation")
 TO_DATE_SHOWN = ("pnl_total", "pnl_actual", "pnl_delta", "pnl_gamma", "pnl_vega", "pnl_volga", "pnl_vanna",
                  "pnl_theta", "pnl_rates", "pnl_dividend", "pnl_explained", "pnl_residual", "pnl_higher_order",
                  "pnl_mark_gap", "pnl_new_trade", "pnl_expiry", "pnl_amendment", "pnl_fx_translation", "pnl_cash",

@@ -47,7 +47,8 @@ class Legs:
     row1: NDArray[np.intp]   # row in the run-date positions, -1 when gone
     inst0: NDArray[np.intp]  # instrument in the prior market, -1 for new trades
     inst1: NDArray[np.intp]  # instrument in the run-date market
-    fx_rate: NDArray[np.float64]
+    fx_rate: NDArray[np.float64]        # the run date's rate of the currency (reporting currency per unit)
+    fx_rate_prior: NDArray[np.float64]  # the prior date's rate; NaN for trades booked on the run date
 
     def __len__(self) -> int:
         return len(self.trade_id)
@@ -239,27 +240,45 @@ def _assemble(p0: pd.DataFrame, p1: pd.DataFrame, ids0: NDArray[np.object_], ids
         inst0=np.concatenate([i0[from_prior], np.full(len(new_rows), -1)]).astype(np.intp),
         inst1=np.concatenate([i1_of_p0[from_prior], i1_of_p1[new_rows]]).astype(np.intp),
         fx_rate=np.zeros(len(from_prior) + len(new_rows)),
+        fx_rate_prior=np.zeros(len(from_prior) + len(new_rows)),
     )
 
 
 def _apply_fx(legs: Legs, prior: CleanNight, run: CleanNight, market1: InstrumentMarket,
               log: ExceptionLog) -> Legs:
-    """Attach the run date's FX rate of each trade's currency; trades without one are rejected."""
+    """Attach each trade's FX rates of its currency on both dates; a trade without one is rejected.
+
+    The run date's rate converts the explain; the prior date's rate (for a trade held on the prior
+    date) is needed for the translation of its prior value, so a missing prior rate rejects the
+    trade like a missing run-date rate.
+    """
     currency = market1.currency[legs.inst1]
     fx_rate = run.fx.reindex(currency).to_numpy(dtype=float)
+    held0 = legs.row0 >= 0
+    fx_rate_prior = np.where(held0, prior.fx.reindex(currency).to_numpy(dtype=float), np.nan)
     missing = np.isnan(fx_rate)
-    if missing.any():
-        fx_file = run.raw.path("fx_rates.parquet")
-        codes = sorted(set(currency[missing].tolist()))
-        log.add(fx_file, codes, "no FX rate for currency",
-                "positions in this currency cannot be converted into the reporting currency")
-        on_run = missing & (legs.row1 >= 0)
-        _reject(log, run.raw.path("positions.parquet"), legs.trade_id, on_run, "no FX rate",
-                "no rate for " + currency.astype(str) + f" in {fx_file}")
-        _reject(log, prior.raw.path("positions.parquet"), legs.trade_id, missing & ~on_run, "no FX rate",
-                "no rate for " + currency.astype(str) + f" in {fx_file}")
-    legs = Legs(*(getattr(legs, f) for f in Legs.__dataclass_fields__ if f != "fx_rate"), fx_rate=fx_rate)
-    return select(legs, ~missing)
+    _reject_no_fx(log, prior, run, legs, currency, missing, run)
+    missing_prior = ~missing & held0 & np.isnan(fx_rate_prior)
+    _reject_no_fx(log, prior, run, legs, currency, missing_prior, prior)
+    legs = Legs(*(getattr(legs, f) for f in Legs.__dataclass_fields__ if f not in ("fx_rate", "fx_rate_prior")),
+                fx_rate=fx_rate, fx_rate_prior=fx_rate_prior)
+    return select(legs, ~(missing | missing_prior))
+
+
+def _reject_no_fx(log: ExceptionLog, prior: CleanNight, run: CleanNight, legs: Legs, currency: NDArray[np.object_],
+                  missing: NDArray[np.bool_], night: CleanNight) -> None:
+    """Reject the trades of ``missing`` for want of a rate in ``night``'s fx_rates (one row per currency too)."""
+    if not missing.any():
+        return
+    fx_file = night.raw.path("fx_rates.parquet")
+    codes = sorted(set(currency[missing].tolist()))
+    log.add(fx_file, codes, "no FX rate for currency",
+            "positions in this currency cannot be converted into the reporting currency")
+    on_run = missing & (legs.row1 >= 0)
+    _reject(log, run.raw.path("positions.parquet"), legs.trade_id, on_run, "no FX rate",
+            "no rate for " + currency.astype(str) + f" in {fx_file}")
+    _reject(log, prior.raw.path("positions.parquet"), legs.trade_id, missing & ~on_run, "no FX rate",
+            "no rate for " + currency.astype(str) + f" in {fx_file}")
 
 
 def select(legs: Legs, keep: NDArray[np.bool_]) -> Legs:

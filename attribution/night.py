@@ -199,6 +199,9 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     at_mark = amended & np.isnan(trade_price1)
     if activity is not None:
         amended, at_mark = _activity_lines(cols, activity, status, mult * legs.fx_rate, qty0, qty1)
+    # The prior value revalued at the run date's rate (the terms above are all at the run date's rate).
+    cols["pnl_fx_translation"] = np.where(has_prior, qty0 * mult * np.nan_to_num(price0)
+                                          * (legs.fx_rate - np.nan_to_num(legs.fx_rate_prior)), 0.0)
     cols["pnl_total"] = (cols["pnl_actual"] + np.nan_to_num(cols["pnl_new_trade"]) + cols["pnl_expiry"]
                          + cols["pnl_amendment"] + cols["pnl_fx_translation"] + cols["pnl_cash"])
 

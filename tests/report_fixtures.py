@@ -78,8 +78,14 @@ def _positions(books: tuple[str, ...], per_book: int, rng: np.random.Generator) 
     amended = (slot == len(STATUS_CYCLE)) & (per_book > len(STATUS_CYCLE))
     frame["pnl_amendment"] = np.where(amended, rng.normal(0.0, 300.0, n), 0.0)
     frame["flags"] = np.where(amended, "amended,vol_solved", np.where(status == "new_unpriced", "unpriced", ""))
+    euro = (frame["underlying"] == "EURXAU").to_numpy()  # priced in EUR: the rows with an FX translation
+    frame.loc[euro, "currency"], frame.loc[euro, "fx_rate"] = "EUR", 1.1
+    frame["price_run"] = np.where(status == "expired", np.nan, 4.0 + slot % 3)
+    frame["pnl_fx_translation"] = np.where(euro & (status != "new") & (status != "new_unpriced"),
+                                           rng.normal(0.0, 500.0, n), 0.0)
+    frame["pnl_cash"] = 0.0
     frame["pnl_total"] = (frame["pnl_actual"] + frame["pnl_new_trade"].fillna(0.0) + frame["pnl_expiry"]
-                          + frame["pnl_amendment"])
+                          + frame["pnl_amendment"] + frame["pnl_fx_translation"])
     others = {"vol": frame["pnl_vega"] + frame["pnl_volga"] + 0.5 * frame["pnl_vanna"],
               "time": frame["pnl_theta"], "rates": frame["pnl_rates"], "dividend": frame["pnl_dividend"]}
     for factor, values in others.items():
@@ -94,7 +100,8 @@ def _positions(books: tuple[str, ...], per_book: int, rng: np.random.Generator) 
 
 def _book_rows(con: duckdb.DuckDBPyConnection) -> None:
     """book_pnl of the night, summed from position_pnl in SQL, limit 25,000 or 10 % of |actual|."""
-    sums = ", ".join(f"sum({c}) AS {c}" for c in (*PNL_COLUMNS, *REVAL_COLUMNS, *EXPOSURE_COLUMNS))
+    sums = ", ".join(f"sum({c}) AS {c}" for c in (*PNL_COLUMNS, *REVAL_COLUMNS, *EXPOSURE_COLUMNS, "pnl_fx_translation",
+                                                  "pnl_cash"))
     counts = ", ".join(f"count(*) FILTER (WHERE status = '{s}') AS {s}"
                        for s in ("carried", "new", "new_unpriced", "closed", "expired"))
     con.execute(f"""

@@ -117,7 +117,8 @@ def test_lifecycle_lines(night):
     assert rows.loc["T4", "pnl_residual"] == 0.0
     np.testing.assert_allclose(rows.loc["T6", "pnl_amendment"], 2 * 100 * (mark(call100, RUN) - 14.0), rtol=1e-12)
     assert "amended" in rows.loc["T6", "flags"]
-    total = rows["pnl_actual"] + rows["pnl_new_trade"].fillna(0) + rows["pnl_expiry"] + rows["pnl_amendment"]
+    total = (rows["pnl_actual"] + rows["pnl_new_trade"].fillna(0) + rows["pnl_expiry"] + rows["pnl_amendment"]
+             + rows["pnl_fx_translation"] + rows["pnl_cash"])
     np.testing.assert_allclose(rows["pnl_total"], total, atol=1e-9)
 
 
@@ -128,6 +129,36 @@ def test_foreign_currency_amounts_use_the_run_date_fx(night):
     eur_pnl = 20 * inst.multiplier * (mark(inst, RUN) - mark(inst, PRIOR))
     np.testing.assert_allclose(rows.loc["T3", "pnl_actual"], eur_pnl * 1.10, rtol=1e-12)
     assert rows.loc["T3", "fx_rate"] == 1.10
+
+
+def test_fx_translation_of_the_prior_value_is_counted_in_the_total(night):
+    """EURUSD 1.08 -> 1.10: the prior value's translation N price0 (fx1 - fx0) is its own column, and the
+    total is the whole overnight P&L in USD, N (price1 fx1 - price0 fx0) (data contract v2; QuantLib marks)."""
+    _, rows, root = night
+    inst = BY_ID["QRX-C50-F27"]
+    n = 20 * inst.multiplier
+    p0, p1 = mark(inst, PRIOR), mark(inst, RUN)
+    np.testing.assert_allclose(rows.loc["T3", "pnl_fx_translation"], n * p0 * (FX[RUN]["EUR"] - FX[PRIOR]["EUR"]),
+                               rtol=1e-12)
+    np.testing.assert_allclose(rows.loc["T3", "pnl_total"], n * (p1 * FX[RUN]["EUR"] - p0 * FX[PRIOR]["EUR"]),
+                               rtol=1e-12)
+    usd = rows["currency"] == "USD"
+    assert (rows.loc[usd, "pnl_fx_translation"] == 0).all()
+    with duckdb.connect(str(root / "archive.duckdb"), read_only=True) as con:
+        book = con.execute("SELECT pnl_fx_translation, pnl_total FROM book_pnl WHERE book = 'Euro single names'"
+                           ).fetchone()
+    np.testing.assert_allclose(book, [rows.loc["T3", "pnl_fx_translation"], rows.loc["T3", "pnl_total"]],
+                               rtol=1e-12)
+
+
+def test_history_lists_the_fx_translation(night, capsys):
+    """``attribution history`` shows the book's FX translation per night beside its terms."""
+    _, rows, root = night
+    capsys.readouterr()
+    assert main(["history", "--book", "Euro single names", "--archive", str(root / "archive.duckdb")]) == 0
+    header, line = capsys.readouterr().out.splitlines()[:2]
+    column = header.split().index("pnl_fx_translation")
+    assert float(line.split()[column].replace(",", "")) == round(rows.loc["T3", "pnl_fx_translation"])
 
 
 def test_business_basis_gives_one_day_of_theta_over_the_weekend(tmp_path):

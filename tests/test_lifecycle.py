@@ -268,6 +268,16 @@ def test_missing_fx_rate_for_a_closed_trade_is_keyed_on_the_prior_file(desk: Pat
     assert _rejections(_night(desk)) == {"T3": [("2026-11-27", "no FX rate")]}
 
 
+def test_missing_prior_fx_rate_rejects_like_a_missing_run_date_rate(desk: Path) -> None:
+    """No EUR rate on the prior date: the held trade T3 is rejected (its prior value cannot be translated)."""
+    _drop(desk, PRIOR, "fx_rates", "EUR")
+    night = _night(desk)
+    assert night.exceptions[["file", "key", "rule"]].values.tolist() == [
+        [str(folder_for(desk, PRIOR) / "fx_rates.parquet"), "EUR", "no FX rate for currency"],
+        [str(folder_for(desk, RUN) / "positions.parquet"), "T3", "no FX rate"]]
+    assert "T3" not in set(night.positions["trade_id"])
+
+
 def test_changed_instrument_terms_reject_every_trade_in_it(desk: Path) -> None:
     """Strike 100 -> 105 between the files: a row for the instrument, and T1, T6 and the new T8 rejected."""
     edit_row(desk, RUN, "instruments", "ZEN-C100-J27", strike=105.0)

@@ -74,7 +74,7 @@ def test_waterfall_steps_equal_archive_and_reach_the_total(night) -> None:
     """Each waterfall step is the archive's term, and the steps add up to the night's total P&L."""
     con, index = night
     steps = (*(f"pnl_{t}" for t in ("delta", "gamma", "vega", "volga", "vanna", "theta", "rates", "dividend")),
-             "pnl_new_trade", "pnl_expiry", "pnl_amendment", "pnl_residual")
+             "pnl_new_trade", "pnl_expiry", "pnl_amendment", "pnl_fx_translation", "pnl_residual")
     for book in BOOKS:
         expected = _sums(con, book, (*steps, "pnl_total"))
         page = _page(index, book)
@@ -83,6 +83,24 @@ def test_waterfall_steps_equal_archive_and_reach_the_total(night) -> None:
         assert math.fsum(page.value(f"wf-{s}") for s in steps) == pytest.approx(expected["pnl_total"], rel=RTOL,
                                                                              abs=ATOL)
         assert page.value("wf-pnl_total") == pytest.approx(expected["pnl_total"], rel=RTOL, abs=ATOL)
+
+
+def test_fx_exposure_per_currency_equals_the_archive(night) -> None:
+    """Per currency: run-date value in the currency and converted, 1 % of it, and tonight's FX translation (SQL)."""
+    con, index = night
+    book = BOOKS[0]
+    rows = con.execute(
+        "SELECT currency, sum(coalesce(quantity_run_date * multiplier * price_run, 0)), "
+        "sum(coalesce(quantity_run_date * multiplier * price_run * fx_rate, 0)), sum(pnl_fx_translation) "
+        "FROM position_pnl WHERE as_of = ? AND book = ? GROUP BY currency ORDER BY currency", [AS_OF, book]).fetchall()
+    table = _page(index, book).tables["fx-exposure-table"][1:]
+    assert [r[0] for r in table] == [r[0] for r in rows] == ["EUR", "USD"]
+    for shown, (_, local, converted, translation) in zip(table, rows, strict=True):
+        assert shown_number(shown[2]) == pytest.approx(local, abs=0.5)
+        assert shown_number(shown[4]) == pytest.approx(converted, abs=0.5)
+        assert shown_number(shown[5]) == pytest.approx(converted / 100, abs=0.5)
+        assert shown_number(shown[6]) == pytest.approx(translation, abs=0.5)
+    assert shown_number(table[0][3]) == pytest.approx(1.1)
 
 
 def test_two_methods_side_by_side_add_up(night) -> None:

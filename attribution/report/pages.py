@@ -133,6 +133,7 @@ class BookPage:
     #                                                term, cash dividends, residual, total)
     hedging: tuple[FigureRow, ...] = ()        # per underlying: options, hedges, book (queries.HEDGING_VALUES)
     hedge_waterfall: charts.Waterfall | None = None  # options, hedges and cash to the total
+    currencies: tuple[FigureRow, ...] = ()  # FX exposure: run-date value per premium currency (CURRENCY_VALUES)
 
 
 

@@ -12,8 +12,10 @@ from attribution.schema import BOOK_PNL, BOOK_QUALITY, EXPOSURE_COLUMNS, RUNS, T
 
 TERM_COLUMNS: tuple[str, ...] = (
     "pnl_actual", *(f"pnl_{t}" for t in TAYLOR_TERMS), "pnl_explained", "pnl_residual",
-    "pnl_higher_order", "pnl_mark_gap", "pnl_new_trade", "pnl_expiry", "pnl_amendment", "pnl_total",
+    "pnl_higher_order", "pnl_mark_gap", "pnl_new_trade", "pnl_expiry", "pnl_amendment", "pnl_fx_translation",
+    "pnl_total",
 )
+CURRENCY_VALUES: tuple[str, ...] = ("value_local", "fx_rate", "value_reporting", "fx_move_1pct", "pnl_fx_translation")
 TOP_POSITIONS = 20
 TOP_UNDERLYINGS = 30  # underlyings listed per book (largest residual first); the rest share one line
 EXCEPTIONS_SHOWN = 50  # rows listed on a book page; the night's exceptions page lists them all
@@ -57,6 +59,7 @@ class NightFrames:
     dividend_schedule: pd.DataFrame = field(default_factory=pd.DataFrame)  # per book and underlying held tonight
     ex_dates: pd.DataFrame = field(default_factory=pd.DataFrame)           # per book and underlying gone ex tonight
     hedging: pd.DataFrame = field(default_factory=pd.DataFrame)  # per book and underlying: options, hedges
+    currencies: pd.DataFrame = field(default_factory=pd.DataFrame)  # FX exposure per book and currency
 
 
 def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: int) -> NightFrames:
@@ -125,6 +128,16 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
                             ORDER BY finished_at DESC NULLS LAST, started_at DESC LIMIT 1""", [as_of]),
         vol_parts=_vol_parts(con, as_of),
         hedging=_frame(con, HEDGING_SQL, [as_of]),
+        # FX exposure: the run-date value of what each book holds, per premium currency, in that currency and
+        # converted; a 1 % move of the rate changes the converted value by 1 % (the translation of the next night).
+        currencies=_frame(con, """
+            SELECT book, currency, count(*) FILTER (WHERE quantity_run_date <> 0) AS positions,
+                   sum(coalesce(quantity_run_date * multiplier * price_run, 0)) AS value_local,
+                   max(fx_rate) AS fx_rate,
+                   sum(coalesce(quantity_run_date * multiplier * price_run * fx_rate, 0)) AS value_reporting,
+                   sum(coalesce(quantity_run_date * multiplier * price_run * fx_rate, 0)) / 100 AS fx_move_1pct,
+                   sum(pnl_fx_translation) AS pnl_fx_translation
+            FROM position_pnl WHERE as_of = ? GROUP BY book, currency ORDER BY book, currency""", [as_of]),
         **(_dividends(con, as_of) if "dividend_schedule" in tables else {}),
     )
 

@@ -23,6 +23,7 @@ from attribution.report.pages import (
     file_name_for,
 )
 from attribution.report.queries import (
+    CURRENCY_VALUES,
     EXPOSURE_COLUMNS,
     HEDGING_VALUES,
     POSITION_TEXT,
@@ -147,7 +148,7 @@ def _waterfall(f: Mapping[str, float | None], unpriced: int, currency: str) -> c
     steps += [("pnl_new_trade", "New trades", f["pnl_new_trade"], f"{unpriced} unpriced, left out" if unpriced else ""),
               ("pnl_expiry", "Expiries", f["pnl_expiry"], ""),
               ("pnl_amendment", "Amendments", f["pnl_amendment"], ""),
-              ("pnl_fx_translation", "FX translation", f["pnl_fx_translation"], ""),
+              ("pnl_fx_translation", "FX translation", f["pnl_fx_translation"], "prior value at the new FX rate"),
               ("pnl_cash", "Cash flows", f["pnl_cash"], ""),
               ("pnl_residual", "Residual", f["pnl_residual"], "")]
     return charts.waterfall(steps, ("pnl_total", f"Total P&L ({currency})", f["pnl_total"]), width=620.0)
@@ -259,6 +260,7 @@ def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
     ex_dates = _figure_rows(frames.ex_dates, "underlying", ("currency", "positions"),
                             ("amount", "pnl_delta", "pnl_dividend", "cash_dividends", "pnl_residual", "pnl_total"))
     hedging, hedge_waterfalls = _hedging(frames.hedging, settings.reporting_currency)
+    currencies = _figure_rows(frames.currencies, "currency", ("positions",), CURRENCY_VALUES)
     numeric = [c for c, kind in BOOK_PNL if kind == "DOUBLE"]
     pages = []
     for record in frames.books.to_dict("records"):
@@ -289,7 +291,8 @@ def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
             exception_rules=_rule_counts(exceptions.get(name, ())),
             vol_parts=vol_parts.get(name, ((), None))[0], vol_parts_total=vol_parts.get(name, ((), None))[1],
             dividend_schedule=schedule.get(name, ()), ex_dates=ex_dates.get(name, ()),
-            hedging=hedging.get(name, ()), hedge_waterfall=hedge_waterfalls.get(name)))
+            hedging=hedging.get(name, ()), hedge_waterfall=hedge_waterfalls.get(name),
+            currencies=currencies.get(name, ())))
     pages.sort(key=_attention)
     return pages
 
