@@ -1,7 +1,8 @@
 """Command line: ``attribution run | backfill | check | demo | history | quality | export | bench``.
 
 Exit codes: 0 success; 1 failure (unusable input file, archive busy, unexpected error; the
-archive is left as it was); 2 usage error; 3 finished, with rejected rows or limit breaches.
+archive is left as it was); 2 usage error; 3 finished, with rejected rows or limit breaches, or over a
+missing business day.
 """
 
 from __future__ import annotations
@@ -55,7 +56,7 @@ def build_parser() -> argparse.ArgumentParser:
         description="End-of-day P&L attribution for options books: explain each book's night, "
                     "archive it, report it.",
         epilog="Exit codes: 0 success, 1 failure (archive unchanged), 2 usage error, "
-               "3 finished with rejected rows or limit breaches.")
+               "3 finished with rejected rows or limit breaches, or over a missing business day.")
     parser.add_argument("--version", action="version", version=f"attribution {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
@@ -170,7 +171,8 @@ def _cmd_check(args: argparse.Namespace) -> int:
             print(printable(f"{row.severity:<8} {row.file}  key={row.key}  rule: {row.rule}  ({row.detail})"))
         print(f"{night.positions_in:,} positions in: {len(night.positions):,} would be explained, "
               f"{night.rejected_positions:,} rejected; {(ledger['severity'] == 'warning').sum():,} warning(s)")
-    return EXIT_FINDINGS if night.rejected_positions else EXIT_OK
+    missing = night.exceptions["rule"] == "missing business day"
+    return EXIT_FINDINGS if night.rejected_positions or missing.any() else EXIT_OK
 
 
 def _clean(value: object) -> object:

@@ -62,6 +62,10 @@ def summary(outcome: NightOutcome, config: JobConfig) -> str:
         f"  quality     {zones}",
         f"  seconds     {outcome.seconds:.2f}",
     ]
+    if outcome.missing_days:
+        lines.insert(1, f"  WARNING     the prior date {outcome.prior_as_of} is not the previous business day: "
+                        f"no folder for {', '.join(outcome.missing_days)}; this night spans them (use --prior "
+                        "to make it deliberate)")
     if outcome.index_path:
         lines.append(f"  report      {outcome.index_path}")
     return "\n".join(lines)

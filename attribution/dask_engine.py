@@ -55,11 +55,12 @@ from attribution.activity import CASH, unknown_trades
 from attribution.books import NO_BOOK
 from attribution.config import JobConfig
 from attribution.contract import activity_rows
-from attribution.engine import PreparedNight, Progress, Stopwatch, prepare_night, resolve_prior
+from attribution.engine import PreparedNight, Progress, Stopwatch, prepare_night, resolve_prior, warn_missing_days
 from attribution.errors import JobFailure
 from attribution.exceptions_log import ExceptionLog
 from attribution.lifecycle import NEW, NEW_UNPRICED, match_keys
 from attribution.loading import RawNight, blank_books, folder_for, read_file, read_night
+from attribution.timebasis import TimeBasis
 
 log = logging.getLogger("attribution")
 
@@ -308,7 +309,13 @@ def prepare_night_dask(config: JobConfig, as_of: dt.date, prior: dt.date | None 
         with cluster_client(config) as own:
             watch.lap("connect")
             night = _on_cluster(own, config, as_of, prior, watch)
-    return PreparedNight(night.as_of, night.prior_as_of, night.positions, night.books, night.exceptions,
+    exceptions = night.exceptions
+    if prior is None:  # the workers get the prior date resolved here, so the driver checks for a gap (as locally)
+        gap = ExceptionLog(as_of)
+        warn_missing_days(config, TimeBasis(config.time_basis, config.holidays), night.prior_as_of, as_of, gap)
+        if gap.count("warning"):
+            exceptions = pd.concat([gap.frame().assign(book=None), exceptions], ignore_index=True)
+    return PreparedNight(night.as_of, night.prior_as_of, night.positions, night.books, exceptions,
                          night.hashes, night.positions_in, night.rejected_positions, night.unaccounted,
                          tuple(watch.stages), night.dividend_schedule)
 

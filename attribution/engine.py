@@ -43,7 +43,7 @@ from attribution.dividends import going_ex, schedule_frame
 from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
 from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.lifecycle import Legs, match_legs
-from attribution.loading import prior_date, read_night
+from attribution.loading import folder_for, prior_date, read_night
 from attribution.market import InstrumentMarket, build_market, flag_stale_marks, instrument_terms
 from attribution.night import corporate_flags, dividend_income, position_rows, reject_non_finite, stale_flags
 from attribution.smile_night import check_smiles, night_smiles
@@ -100,6 +100,7 @@ class NightOutcome:
     index_path: Path | None = None
     unpriced_new: int = 0
     zones: dict[str, int] = field(default_factory=dict)
+    missing_days: tuple[str, ...] = ()  # business days without a folder between the prior and run dates
 
 
 class Stopwatch:
@@ -116,6 +117,21 @@ class Stopwatch:
         self._t = now
         if self.progress:
             self.progress(name)
+
+
+MISSING_DAY = "missing business day"  # the ledger rule of a business day without a folder between the two dates
+
+
+def warn_missing_days(config: JobConfig, basis: TimeBasis, prior_as_of: dt.date, as_of: dt.date,
+                      log: ExceptionLog) -> None:
+    """A warning per business day of the job's calendar between the prior date found and the run date:
+    the night would otherwise silently span two or more business days (``--prior`` makes it deliberate)."""
+    missing = basis.business_days_between(prior_as_of, as_of)
+    for day in missing:
+        log.add(str(folder_for(config.data_root, day)), day.isoformat(), MISSING_DAY,
+                f"no folder for business day {day}: the night from {prior_as_of} to {as_of} spans "
+                f"{len(missing) + 1} business days; name the prior date with --prior if that is meant",
+                WARNING)
 
 
 def resolve_prior(config: JobConfig, as_of: dt.date, prior: dt.date | None) -> dt.date:
@@ -177,6 +193,8 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     watch.lap("read")
     log = ExceptionLog(as_of)
     basis = TimeBasis(config.time_basis, config.holidays)
+    if prior is None:
+        warn_missing_days(config, basis, prior_as_of, as_of, log)
     clean0 = clean_night(raw0, log, config.checks, config.reporting_currency, run_date=False)
     clean1 = clean_night(raw1, log, config.checks, config.reporting_currency)
     clean0, restated = restate_prior(clean0, clean1, log)  # a split tonight: the prior date in new units
@@ -292,7 +310,9 @@ def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
     book_breaches = int((night.books["limit_state"] == BREACH).sum())
     position_breaches = int((night.positions["limit_state"] == BREACH).sum())
     official_breaks_found = int((night.exceptions["rule"] == OFFICIAL_BREAK).sum())
-    findings = night.rejected_positions > 0 or book_breaches > 0 or position_breaches > 0 or official_breaks_found > 0
+    missing_days = tuple(night.exceptions.loc[night.exceptions["rule"] == MISSING_DAY, "key"].astype(str))
+    findings = (night.rejected_positions > 0 or book_breaches > 0 or position_breaches > 0 or official_breaks_found > 0
+                or bool(missing_days))
     exit_code = EXIT_FINDINGS if findings else EXIT_OK
     frames = {"position_pnl": night.positions, "book_pnl": night.books, "input_exceptions": night.exceptions,
               "runs": _runs_frame(night, config, str(uuid.uuid4()), started, exit_code, time.perf_counter() - t0)}
@@ -318,4 +338,5 @@ def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
         stages=night.stages + tuple(watch.stages), index_path=index_path,
         unpriced_new=int((pos["status"] == "new_unpriced").sum()),
         zones={str(k): int(v) for k, v in quality["zone"].value_counts().items()},
+        missing_days=missing_days,
     )

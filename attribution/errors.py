@@ -6,7 +6,7 @@ Kept free of heavy imports so that ``attribution --help`` and ``--version`` answ
 EXIT_OK = 0        # success: everything explained within limits
 EXIT_FAILED = 1    # failure: unusable input file, busy archive, unexpected error
 EXIT_USAGE = 2     # usage error: bad flag, date or job-file key
-EXIT_FINDINGS = 3  # finished and archived, with rejected positions or residual limit breaches
+EXIT_FINDINGS = 3  # finished and archived, with rejected positions, residual limit breaches or a missing business day
 
 
 class JobFailure(RuntimeError):

@@ -49,3 +49,8 @@ class TimeBasis:
     def is_business_day(self, day: dt.date) -> bool:
         """True on a weekday that is not a holiday."""
         return bool(np.is_busday(np.datetime64(day, "D"), holidays=self._holidays()))
+
+    def business_days_between(self, start: dt.date, end: dt.date) -> list[dt.date]:
+        """Business days strictly after ``start`` and strictly before ``end`` (weekends and holidays skipped)."""
+        days = np.arange(np.datetime64(start, "D") + 1, np.datetime64(end, "D"), dtype="datetime64[D]")
+        return [d.astype(dt.date) for d in days[np.is_busday(days, holidays=self._holidays())]]

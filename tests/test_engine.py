@@ -204,3 +204,27 @@ def test_summary_accounts_for_every_position(night, capsys, tmp_path):
     _run(tmp_path, "--no-reports")
     out = capsys.readouterr().out
     assert "8 in = 8 archived + 0 rejected" in out
+
+
+def test_a_missing_business_day_is_warned_and_exits_3(tmp_path, capsys):
+    """Prior folder Thursday, run Monday: Friday has no folder, so a ledger warning, a summary line and exit 3;
+    --prior makes the span deliberate (exit 0), and a Friday holiday of the job's calendar is no gap."""
+    write_mini_desk(tmp_path / "data")
+    thursday = PRIOR - dt.timedelta(days=1)
+    (tmp_path / "data" / f"as_of={PRIOR}").rename(tmp_path / "data" / f"as_of={thursday}")
+    capsys.readouterr()
+    code, rows = _run(tmp_path, "--no-reports")
+    assert code == 3
+    out = capsys.readouterr().out
+    assert f"the prior date {thursday} is not the previous business day: no folder for {PRIOR}" in out
+    with duckdb.connect(str(tmp_path / "archive.duckdb"), read_only=True) as con:
+        ledger = con.execute("SELECT file, key, rule, severity FROM input_exceptions "
+                             "WHERE file NOT LIKE '%.parquet'").fetchall()  # the marks are Friday's: vol warnings
+    assert ledger == [(str(tmp_path / "data" / f"as_of={PRIOR}"), PRIOR.isoformat(), "missing business day",
+                       "warning")]
+    assert (rows["prior_as_of"].dt.date == thursday).all()  # still explained, over the whole span
+    code, _ = _run(tmp_path, "--no-reports", "--prior", thursday.isoformat(), name="deliberate.duckdb")
+    assert code == 0
+    (tmp_path / "job.toml").write_text(f"[time]\nholidays = [{PRIOR}]\n")
+    code, _ = _run(tmp_path, "--no-reports", "--job", str(tmp_path / "job.toml"), name="holiday.duckdb")
+    assert code == 0
