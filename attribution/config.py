@@ -51,6 +51,7 @@ class CheckSettings:
     iv_price_tolerance: float = 0.005  # |model(marked vol) - price| / max(price, 0.01 * spot) above this warns
     max_abs_quantity: float = 1e9      # contracts; above this a quantity is taken as a booking error
     max_abs_rate: float = 1.0          # a zero rate or dividend yield beyond +-100 % is a unit error (4 for 0.04)
+    mark_roll_days: int = 3            # business days a missing option mark may be rolled forward from the last one
 
 
 @dataclass(frozen=True, slots=True)

@@ -44,6 +44,7 @@ from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
 from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.lifecycle import Legs, match_legs
 from attribution.loading import folder_for, prior_date, read_night
+from attribution.mark_roll import roll_marks
 from attribution.market import InstrumentMarket, build_market, flag_stale_marks, instrument_terms
 from attribution.night import corporate_flags, dividend_income, position_rows, reject_non_finite, stale_flags
 from attribution.smile_night import check_smiles, night_smiles
@@ -200,10 +201,11 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     clean0, restated = restate_prior(clean0, clean1, log)  # a split tonight: the prior date in new units
     trade_date_warnings(clean1, log)
     watch.lap("validate")
-    market0 = build_market(clean0, instrument_terms(clean0, clean1), basis, config.checks, log,
-                           config.american_precision)
-    market1 = build_market(clean1, instrument_terms(clean1, clean0), basis, config.checks, log,
-                           config.american_precision)
+    terms0, terms1 = instrument_terms(clean0, clean1), instrument_terms(clean1, clean0)
+    market0 = roll_marks(build_market(clean0, terms0, basis, config.checks, log, config.american_precision), terms0,
+                         config, basis, raw0.path("option_marks.parquet"), log)
+    market1 = roll_marks(build_market(clean1, terms1, basis, config.checks, log, config.american_precision), terms1,
+                         config, basis, raw1.path("option_marks.parquet"), log)
     stale = flag_stale_marks(market0, market1, config.checks.stale_spot_move,
                              raw1.path("option_marks.parquet"), log)
     legs = match_legs(clean0, clean1, market0, market1, log)

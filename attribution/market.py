@@ -73,6 +73,7 @@ class InstrumentMarket:
     american: NDArray[np.bool_]  # exercise = american: priced by attribution.american
     american_scheme: Scheme = STANDARD  # the job's American precision
     div_pv: FloatArray | None = None  # present value of the dividends in each window (attribution.dividends)
+    mark_rolled: NDArray[np.bool_] | None = None  # vol rolled from an earlier date's mark (attribution.mark_roll)
 
     @property
     def escrowed_spot(self) -> FloatArray:
@@ -83,6 +84,10 @@ class InstrumentMarket:
     def dividend_pv(self) -> FloatArray:
         """``div_pv``, zeros when none was given."""
         return np.zeros_like(self.spot) if self.div_pv is None else self.div_pv
+
+    def rolled(self) -> NDArray[np.bool_]:
+        """Per instrument: its mark was missing and was rolled forward from an earlier date."""
+        return np.zeros(len(self.ids), dtype=bool) if self.mark_rolled is None else self.mark_rolled
 
     def locate(self, instrument_ids: NDArray[np.object_]) -> NDArray[np.intp]:
         """Index of each id in this market, -1 where absent.

@@ -218,6 +218,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         (moved_book, "moved_book"),
         ((has_prior & market0.vol_solved[i0]) | (~expired & market1.vol_solved[i1]), "vol_solved"),
         ((has_prior & market0.vol_mismatch[i0]) | (~expired & market1.vol_mismatch[i1]), "vol_price_mismatch"),
+        ((has_prior & market0.rolled()[i0]) | (~expired & market1.rolled()[i1]), "mark_rolled"),
     ], n)
 
     frame = pd.DataFrame({

@@ -64,8 +64,8 @@ def _add_position(root: Path, day: dt.date, trade_id: str, instrument_id: str, q
     put_rows(root, day, "positions", rows)
 
 
-def _night(root: Path) -> PreparedNight:
-    night = prepare_night(JobConfig(data_root=root, write_reports=False), RUN)
+def _night(root: Path, checks: CheckSettings | None = None) -> PreparedNight:
+    night = prepare_night(JobConfig(data_root=root, write_reports=False, checks=checks or CheckSettings()), RUN)
     _assert_accounted(root, night)
     return night
 
@@ -227,9 +227,9 @@ def test_trade_whose_other_leg_breaks_a_row_rule_is_rejected_on_both_dates(desk:
 
 
 def test_trade_whose_run_leg_cannot_be_priced_is_not_archived_at_all(desk: Path) -> None:
-    """T2's option has no run-date mark: T2 is rejected (keyed T2) and archived on neither date."""
+    """T2's option has no run-date mark and no roll is allowed: T2 is rejected (keyed T2), archived on neither date."""
     _drop(desk, RUN, "option_marks", "ZEN-P120-M27")
-    night = _night(desk)
+    night = _night(desk, CheckSettings(mark_roll_days=0))
     assert _rejections(night) == {"T2": [("2026-11-30", "position cannot be priced on the run date")]}
     assert "T2" not in set(night.positions["trade_id"])
 
