@@ -129,10 +129,14 @@ def _insert(con: duckdb.DuckDBPyConnection, table: str, frame: pd.DataFrame) -> 
 
 
 def quality_series(con: duckdb.DuckDBPyConnection, up_to: dt.date) -> pd.DataFrame:
-    """HPL and RTPL per book and archived night up to a date (nights with a position held over)."""
+    """HPL and RTPL per book and archived night up to a date (nights with a position held over).
+
+    Positions expiring that night were held at the prior close and are explained down to their
+    intrinsic value, so they count (README, "Expiry day").
+    """
     return con.execute(
         "SELECT as_of, book, pnl_actual AS hpl, pnl_explained AS rtpl FROM book_pnl "
-        "WHERE as_of <= ? AND carried + closed > 0 ORDER BY book, as_of", [up_to]).df()
+        "WHERE as_of <= ? AND carried + closed + expired > 0 ORDER BY book, as_of", [up_to]).df()
 
 
 def write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, frames: dict[str, pd.DataFrame]) -> pd.DataFrame:

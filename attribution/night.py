@@ -17,7 +17,17 @@ from attribution.contract import CleanNight
 from attribution.dividends import income_per_unit
 from attribution.exceptions_log import ExceptionLog
 from attribution.explain import Explain, MarketState, explain_overnight
-from attribution.lifecycle import CARRIED, CLOSED, EXERCISED, EXPIRIES, NEW, NEW_UNPRICED, Legs, trade_date_flags
+from attribution.lifecycle import (
+    CARRIED,
+    CLOSED,
+    EXERCISED,
+    EXPIRED,
+    EXPIRIES,
+    NEW,
+    NEW_UNPRICED,
+    Legs,
+    trade_date_flags,
+)
 from attribution.market import InstrumentMarket, take
 from attribution.pricing import Greeks
 from attribution.revaluation import FACTOR_NAMES
@@ -50,7 +60,7 @@ def _flags(parts: list[tuple[NDArray[np.bool_], str]], n: int) -> NDArray[np.obj
     return out.to_numpy(dtype=object)
 
 
-def _vol_and_time(ex: Explain, units: FloatArray, s0: MarketState, s1: MarketState, dt_years: float,
+def _vol_and_time(ex: Explain, units: FloatArray, s0: MarketState, s1: MarketState, dt_years: float | FloatArray,
                   i0: NDArray[np.intp], i1: NDArray[np.intp], smiles: NightSmiles | None, dynamics: str,
                   clock: VarianceClock | None) -> dict[str, FloatArray]:
     """Theta's decay and carry, the vol terms' smile parts, and (with a variance clock) the restated terms."""
@@ -89,6 +99,32 @@ def _activity_lines(cols: dict[str, object], activity: LegActivity, status: NDAr
     cols["pnl_amendment"] = np.where(changed, scale * value, 0.0)
     amended = changed & (((qty1 != qty0) & ~exercised) | (value != 0))
     return amended, changed & activity.at_mark
+
+
+def _explain_expiring(cols: dict[str, object], e: NDArray[np.intp], market0: InstrumentMarket,
+                      market1: InstrumentMarket, i0: NDArray[np.intp], i1: NDArray[np.intp], strike: FloatArray,
+                      cp: FloatArray, units0: FloatArray, price0: FloatArray, dt_years: float,
+                      revaluation: bool) -> None:
+    """Rows ``e`` expire tonight (expiry after the prior date, on or before the run date): explained down to
+    the intrinsic value at the run-date spot with tau1 = 0, with the same terms and revaluation as a night
+    held. The vol is not observable at expiry, so it does not move (vega, volga and vanna are 0); time runs
+    only to the expiry (min(night, tau0))."""
+    if not e.size:
+        return
+    s0, m1 = _state(market0, i0[e]), _state(market1, i1[e])
+    s1 = MarketState(m1.spot, s0.vol, np.zeros(e.size), m1.rate, m1.div_yield)
+    settle = np.maximum(cp[e] * (m1.spot - strike[e]), 0.0)
+    dt_e = np.minimum(dt_years, s0.tau_years)
+    ex = explain_overnight(strike[e], cp[e], units0[e], s0, s1, price0[e], settle, dt_e)
+    for name in ("actual", *TAYLOR_TERMS, "explained", "residual", "model", "higher_order", "mark_gap"):
+        cols[f"pnl_{name}"][e] = getattr(ex, name)  # type: ignore[index]
+    for name, values in _vol_and_time(ex, units0[e], s0, s1, dt_e, i0[e], i1[e], None, "", None).items():
+        cols[name][e] = values  # type: ignore[index]
+    if revaluation:
+        shares = shapley_shares(strike[e], cp[e], s0.spot, s0.vol, s0.tau_years, s0.rate, s0.div_yield,
+                                s1.spot, s1.vol, s1.tau_years, s1.rate, s1.div_yield)
+        for factor in ("spot", "vol", "time", "rates", "dividend"):
+            cols[f"reval_{factor}"][e] = units0[e] * getattr(shares, factor)  # type: ignore[index]
 
 
 def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: InstrumentMarket,
@@ -167,6 +203,10 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
             for factor in FACTOR_NAMES:
                 cols[f"reval_{factor}"][k] = units0[k] * getattr(shares, factor)
 
+    expiring_option = (status == EXPIRED) & option
+    _explain_expiring(cols, np.flatnonzero(expiring_option), market0, market1, i0, i1, strike, cp, units0, price0,
+                      dt_years, revaluation)
+
     # Exposures at the prior state, for everything held on the prior date.
     if p.size:
         s0 = _state(market0, i0[p])
@@ -191,7 +231,10 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     cols["pnl_new_trade"] = np.where(is_new, units1 * (market1.price[i1] - trade_price1), 0.0)
     settle_spot = np.where(market1.expiry[i1] <= np.datetime64(prior_as_of, "D"), market0.spot[i0], market1.spot[i1])
     intrinsic = settlement_value(kind, settle_spot, strike, cp)
-    cols["pnl_expiry"] = np.where(expired, units0 * (intrinsic - np.nan_to_num(price0)), 0.0)
+    # An option expiring tonight is explained down to intrinsic above; only a settlement that differs from the
+    # close stays a lifecycle line (a trade still in the prior file on its expiry date, settled by that night's
+    # run), and a future or forward settles here as before.
+    cols["pnl_expiry"] = np.where(expired & ~expiring_option, units0 * (intrinsic - np.nan_to_num(price0)), 0.0)
     amended = (status == CARRIED) & (qty1 != qty0)
     fill_price = np.where(np.isnan(trade_price1), market1.price[i1], trade_price1)
     cols["pnl_amendment"] = np.where(amended, (qty1 - qty0) * mult * legs.fx_rate * (market1.price[i1] - fill_price),

@@ -113,8 +113,8 @@ def test_lifecycle_lines(night):
     np.testing.assert_allclose(rows.loc["T7", "pnl_new_trade"], 2 * 100 * (mark(put90, RUN) - 1.5), rtol=1e-12)
     assert np.isnan(rows.loc["T8", "pnl_new_trade"]) and "unpriced" in rows.loc["T8", "flags"]
     intrinsic = max(SPOT[RUN]["ZEN"] - 95.0, 0.0)
-    np.testing.assert_allclose(rows.loc["T4", "pnl_expiry"], 3 * 100 * (intrinsic - mark(call95, PRIOR)), rtol=1e-12)
-    assert rows.loc["T4", "pnl_residual"] == 0.0
+    np.testing.assert_allclose(rows.loc["T4", "pnl_actual"], 3 * 100 * (intrinsic - mark(call95, PRIOR)), rtol=1e-12)
+    assert rows.loc["T4", "pnl_expiry"] == 0.0  # explained down to intrinsic, no lifecycle line left
     np.testing.assert_allclose(rows.loc["T6", "pnl_amendment"], 2 * 100 * (mark(call100, RUN) - 14.0), rtol=1e-12)
     assert "amended" in rows.loc["T6", "flags"]
     total = (rows["pnl_actual"] + rows["pnl_new_trade"].fillna(0) + rows["pnl_expiry"] + rows["pnl_amendment"]
@@ -228,3 +228,40 @@ def test_a_missing_business_day_is_warned_and_exits_3(tmp_path, capsys):
     (tmp_path / "job.toml").write_text(f"[time]\nholidays = [{PRIOR}]\n")
     code, _ = _run(tmp_path, "--no-reports", "--job", str(tmp_path / "job.toml"), name="holiday.duckdb")
     assert code == 0
+
+
+def test_an_expiring_position_is_explained_down_to_intrinsic(night):
+    """T4 (call 95 expiring on the run date): actual = N (intrinsic at S1 - prior mark), delta, gamma and theta
+    from QuantLib's greeks at the prior state with the time left to expiry, no vol terms, and the revaluation
+    shares add up to the model move (tau1 = 0)."""
+    _, rows, _ = night
+    t4, inst = rows.loc["T4"], BY_ID["ZEN-C95-EXP"]
+    n = 3 * inst.multiplier
+    option = ql_option(inst, PRIOR)
+    ds = SPOT[RUN]["ZEN"] - SPOT[PRIOR]["ZEN"]
+    tau0 = (inst.expiry - PRIOR).days / 365
+    np.testing.assert_allclose(t4["pnl_delta"], n * option.delta() * ds, rtol=1e-9)
+    np.testing.assert_allclose(t4["pnl_gamma"], n * 0.5 * option.gamma() * ds * ds, rtol=1e-6, atol=1e-6)
+    np.testing.assert_allclose(t4["pnl_theta"], n * option.theta() * tau0, rtol=1e-6, atol=1e-6)  # QL theta per year
+    assert t4["pnl_vega"] == t4["pnl_volga"] == t4["pnl_vanna"] == 0.0
+    assert t4["tau_prior_years"] == pytest.approx(tau0)
+    reval = sum(t4[f"reval_{f}"] for f in ("spot", "vol", "time", "rates", "dividend"))
+    np.testing.assert_allclose(reval, t4["pnl_model"], rtol=1e-12, atol=1e-9)
+    np.testing.assert_allclose(t4["pnl_model"], n * (SPOT[RUN]["ZEN"] - 95.0 - option.NPV()), rtol=1e-9)
+
+
+def test_a_night_of_only_expiries_is_in_the_quality_series(tmp_path):
+    """A book whose only position expires tonight still gives the quality test its HPL and RTPL (MAR32: HPL
+    revalues the prior close's positions at the run date's market data, and an expiring option was held)."""
+    from attribution.archive import quality_series
+    from tests.contract_files import put_rows, read_rows
+
+    write_mini_desk(tmp_path / "data")
+    put_rows(tmp_path / "data", PRIOR, "positions",
+             [r for r in read_rows(tmp_path / "data", PRIOR, "positions") if r["trade_id"] == "T4"])
+    put_rows(tmp_path / "data", RUN, "positions", [])
+    _, rows = _run(tmp_path, "--no-reports")
+    with duckdb.connect(str(tmp_path / "archive.duckdb"), read_only=True) as con:
+        series = quality_series(con, RUN)
+    assert series["book"].tolist() == ["Index vol"]
+    np.testing.assert_allclose(series[["hpl", "rtpl"]].iloc[0], rows.loc["T4", ["pnl_actual", "pnl_explained"]])

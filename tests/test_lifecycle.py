@@ -1,8 +1,9 @@
 """Matching trades across the two dates, statuses and leg checks (attribution.lifecycle, with attribution.night).
 
 Inputs: the mini desk (tests/mini_desk.py; marks priced by QuantLib) with one change per test. Expected
-amounts use the README's lifecycle lines ("Statuses") on QuantLib's marks: pnl_expiry = N (intrinsic at
-the settlement spot - prior mark), pnl_new_trade = N (run mark - trade_price), pnl_amendment =
+amounts use the README's lifecycle lines ("Statuses") on QuantLib's marks: an expiring trade's pnl_actual
+= N (intrinsic at the run-date spot - prior mark), a settled one's pnl_expiry = N (intrinsic at the prior
+spot - prior mark), pnl_new_trade = N (run mark - trade_price), pnl_amendment =
 (q1 - q0) x multiplier (run mark - trade_price); tolerances rtol 1e-12 (the same arithmetic on the same
 numbers).
 """
@@ -123,12 +124,13 @@ def test_every_status_and_itsread_rows(desk: Path) -> None:
 
 
 def test_expired_on_the_run_date_settles_at_intrinsic(desk: Path) -> None:
-    """T4 (call 95, expiry on the run date) settles at max(S1 - K, 0) against its prior mark, outside the explain."""
+    """T4 (call 95, expiry on the run date) goes to max(S1 - K, 0) from its prior mark, inside the explain."""
     row = _by_trade(_night(desk)).loc["T4"]
     inst = BY_ID["ZEN-C95-EXP"]
     expected = 3 * inst.multiplier * (max(SPOT[RUN]["ZEN"] - 95.0, 0.0) - mark(inst, PRIOR))
-    np.testing.assert_allclose(row["pnl_expiry"], expected, rtol=1e-12)
-    assert row["pnl_actual"] == 0.0 and row["pnl_residual"] == 0.0
+    np.testing.assert_allclose(row["pnl_actual"], expected, rtol=1e-12)
+    assert row["pnl_expiry"] == 0.0
+    np.testing.assert_allclose(row["pnl_explained"] + row["pnl_residual"], expected, rtol=1e-12)
     np.testing.assert_allclose(row["pnl_total"], expected, rtol=1e-12)
 
 
@@ -140,7 +142,9 @@ def test_expired_between_the_dates_settles_at_the_run_date_spot(desk: Path) -> N
     row = _by_trade(_night(desk)).loc["T9"]
     assert row["status"] == "expired"
     expected = 2 * 100.0 * (max(SPOT[RUN]["ZEN"] - 97.0, 0.0) - mark(sat, PRIOR))
-    np.testing.assert_allclose(row["pnl_expiry"], expected, rtol=1e-12)
+    np.testing.assert_allclose(row["pnl_actual"], expected, rtol=1e-12)
+    np.testing.assert_allclose(row["tau_prior_years"], 1 / 365)  # theta runs to the Saturday expiry, not 3 days
+    assert row["pnl_expiry"] == 0.0
 
 
 def test_expired_on_the_prior_date_settles_at_the_prior_spot(desk: Path) -> None:
