@@ -118,6 +118,7 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
     frame["as_of"], frame["prior_as_of"] = pd.Timestamp(as_of), pd.Timestamp(prior_as_of)
     frame["desk"] = frame["book"].map(desks if desks is not None else {}).astype(object).fillna(UNASSIGNED_DESK)
     frame["official_pnl"] = frame["official_break"] = np.nan
+    frame["delta_units"] = np.nan  # units of different underlyings (and currencies) do not add up: per underlying only
     return frame[[name for name, _ in BOOK_PNL]]
 
 

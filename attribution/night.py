@@ -12,6 +12,7 @@ import pandas as pd
 from numpy.typing import NDArray
 
 from attribution.activity import LegActivity
+from attribution.american import Scheme
 from attribution.arrays import FloatArray
 from attribution.contract import CleanNight
 from attribution.dividends import income_per_unit
@@ -40,7 +41,7 @@ from attribution.schema import (
     V2_AMOUNT_COLUMNS,
 )
 from attribution.smile_night import NightSmiles, vol_columns
-from attribution.timebasis import DAYS_PER_YEAR_BUSINESS, DAYS_PER_YEAR_CALENDAR, TimeBasis
+from attribution.timebasis import DAYS_PER_YEAR_CALENDAR, TimeBasis
 from attribution.valuation import KIND_NAMES, OPTION, revaluation_shares, settlement_value, value_and_greeks
 from attribution.vol_time import VarianceClock, clock_terms, decay_per_year
 
@@ -104,7 +105,7 @@ def _activity_lines(cols: dict[str, object], activity: LegActivity, status: NDAr
 def _explain_expiring(cols: dict[str, object], e: NDArray[np.intp], market0: InstrumentMarket,
                       market1: InstrumentMarket, i0: NDArray[np.intp], i1: NDArray[np.intp], strike: FloatArray,
                       cp: FloatArray, units0: FloatArray, price0: FloatArray, dt_years: float,
-                      revaluation: bool) -> None:
+                      revaluation: bool, american: NDArray[np.bool_], scheme: Scheme) -> None:
     """Rows ``e`` expire tonight (expiry after the prior date, on or before the run date): explained down to
     the intrinsic value at the run-date spot with tau1 = 0, with the same terms and revaluation as a night
     held. The vol is not observable at expiry, so it does not move (vega, volga and vanna are 0); time runs
@@ -115,14 +116,13 @@ def _explain_expiring(cols: dict[str, object], e: NDArray[np.intp], market0: Ins
     s1 = MarketState(m1.spot, s0.vol, np.zeros(e.size), m1.rate, m1.div_yield)
     settle = np.maximum(cp[e] * (m1.spot - strike[e]), 0.0)
     dt_e = np.minimum(dt_years, s0.tau_years)
-    ex = explain_overnight(strike[e], cp[e], units0[e], s0, s1, price0[e], settle, dt_e)
+    ex = explain_overnight(strike[e], cp[e], units0[e], s0, s1, price0[e], settle, dt_e, american[e], scheme=scheme)
     for name in ("actual", *TAYLOR_TERMS, "explained", "residual", "model", "higher_order", "mark_gap"):
         cols[f"pnl_{name}"][e] = getattr(ex, name)  # type: ignore[index]
     for name, values in _vol_and_time(ex, units0[e], s0, s1, dt_e, i0[e], i1[e], None, "", None).items():
         cols[name][e] = values  # type: ignore[index]
     if revaluation:
-        shares = shapley_shares(strike[e], cp[e], s0.spot, s0.vol, s0.tau_years, s0.rate, s0.div_yield,
-                                s1.spot, s1.vol, s1.tau_years, s1.rate, s1.div_yield)
+        shares = revaluation_shares(strike[e], cp[e], s0, s1, american[e], scheme=scheme)
         for factor in ("spot", "vol", "time", "rates", "dividend"):
             cols[f"reval_{factor}"][e] = units0[e] * getattr(shares, factor)  # type: ignore[index]
 
@@ -205,7 +205,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
 
     expiring_option = (status == EXPIRED) & option
     _explain_expiring(cols, np.flatnonzero(expiring_option), market0, market1, i0, i1, strike, cp, units0, price0,
-                      dt_years, revaluation)
+                      dt_years, revaluation, american, scheme)
 
     # Exposures at the prior state, for everything held on the prior date.
     if p.size:
@@ -215,7 +215,10 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         cols["gamma_cash_1pct"][p] = units0[p] * g0.gamma * s0.spot * s0.spot / 100.0
         cols["vega_per_vol_point"][p] = units0[p] * g0.vega / 100.0
         cols["theta_per_calendar_day"][p] = units0[p] * g0.theta_per_year / DAYS_PER_YEAR_CALENDAR
-        cols["theta_per_business_day"][p] = units0[p] * g0.theta_per_year / DAYS_PER_YEAR_BUSINESS
+        # One business day under the run's basis: 1/252 under BUS/252; under ACT/365F the calendar days from
+        # the prior date to its next business day / 365 (3/365 from a Friday), not a year / 252.
+        one_day = float(basis.year_fraction(prior_as_of, basis.next_business_day(prior_as_of))[0])
+        cols["theta_per_business_day"][p] = units0[p] * g0.theta_per_year * one_day
 
     # Decay expected to the next business day, from the run-date state of what is still held.
     h = np.flatnonzero(held1)

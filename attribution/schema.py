@@ -38,7 +38,7 @@ EXPOSURE_COLUMNS: tuple[str, ...] = (
     "gamma_cash_1pct",           # change of delta_cash for a 1 % spot move: N * gamma * spot^2 / 100
     "vega_per_vol_point",        # N * vega / 100
     "theta_per_calendar_day",    # N * theta_per_year / 365
-    "theta_per_business_day",    # N * theta_per_year / 252
+    "theta_per_business_day",    # N * theta_per_year * one business day from the prior date under the run's basis
     "theta_next_business_day",   # run-date state: N1 * theta1 * year fraction to the next business day
 )
 

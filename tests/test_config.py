@@ -119,3 +119,12 @@ def test_a_run_with_a_job_file_without_path_keys_succeeds(tmp_path, monkeypatch,
     code = main(["run", "--as-of", RUN.isoformat(), "--job", "job.toml"])
     assert code in (EXIT_OK, EXIT_FINDINGS), capsys.readouterr().err
     assert (tmp_path / "archive.duckdb").exists()
+
+
+def test_the_demo_applies_the_limits_its_job_file_documents(tmp_path):
+    """jobs/nightly.toml (the demo desk's job file) and the demo's own run use the same limits, book by book."""
+    from attribution.demo.run import demo_config
+    documented = load_job(JOBS / "nightly.toml")
+    applied = demo_config(tmp_path, documented.holidays)
+    assert applied.limits == documented.limits
+    assert applied.book_limits == documented.book_limits

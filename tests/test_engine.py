@@ -265,3 +265,27 @@ def test_a_night_of_only_expiries_is_in_the_quality_series(tmp_path):
         series = quality_series(con, RUN)
     assert series["book"].tolist() == ["Index vol"]
     np.testing.assert_allclose(series[["hpl", "rtpl"]].iloc[0], rows.loc["T4", ["pnl_actual", "pnl_explained"]])
+
+
+def test_theta_per_business_day_is_one_business_day_under_the_run_basis(night, tmp_path):
+    """From a Friday under ACT/365F one business day is three calendar days (3/365 of a year, not 1/252); under
+    BUS/252 it is 1/252 (common practice, no source)."""
+    _, rows, _ = night
+    held = rows["status"] == "carried"
+    np.testing.assert_allclose(rows.loc[held, "theta_per_business_day"],
+                               3.0 * rows.loc[held, "theta_per_calendar_day"], rtol=1e-12)
+    write_mini_desk(tmp_path / "data")
+    _, bus = _run(tmp_path, "--no-reports", "--basis", "BUS/252")
+    t1, inst = bus.loc["T1"], BY_ID["ZEN-C100-J27"]
+    theta_per_year = bsm_greeks(SPOT[PRIOR]["ZEN"], inst.strike, t1["tau_prior_years"], VOL[PRIOR]["ZEN"],
+                                RATE[PRIOR]["USD"], DIV[PRIOR]["ZEN"], True).theta_per_year
+    np.testing.assert_allclose(t1["theta_per_business_day"], 10 * 100 * theta_per_year / 252, rtol=1e-9)
+
+
+def test_net_delta_in_units_is_per_underlying_only(night):
+    """book_pnl keeps no sum of delta units (units of different underlyings do not add); positions keep theirs."""
+    _, rows, root = night
+    with duckdb.connect(str(root / "archive.duckdb"), read_only=True) as con:
+        units = con.execute("SELECT delta_units FROM book_pnl").fetchall()
+    assert units and all(u is None for (u,) in units)
+    assert rows.loc["T1", "delta_units"] != 0.0

@@ -525,3 +525,22 @@ def test_book_page_shows_hedges_beside_options_and_the_official_break(tmp_path) 
     index = (folder / "index.html").read_text(encoding="utf-8")
     assert f"{total[1]:,.0f}".replace("-", "\u2212") in index or f"{total[1]:,.0f}" in index
     assert 'id="fig-official_break"' in page
+
+
+def test_the_dividend_line_says_it_is_the_foreign_rate_for_fx(night) -> None:
+    """The dividend term of an FX option is the foreign rate: the waterfall, methods and tables say so."""
+    _, index = night
+    page = _page(index, BOOKS[0])
+    header = " ".join(page.tables["underlying-table"][0])
+    assert "foreign rate" in header and "foreign rate" in " ".join(" ".join(r) for r in page.tables["method-table"])
+
+
+def test_a_green_zone_with_ratios_outside_their_guides_says_so() -> None:
+    """Green by Spearman and KS (MAR32), variance ratio 35 % (BCBS 352 guide: at most 20 %): one line says both."""
+    from attribution.report.view import _zone
+    base = {"zone": "green", "mean_ratio": 0.02, "variance_ratio": 0.35}
+    state = _zone(base)
+    assert state.code == "green" and state.tone == "watch"
+    assert "green zone" in state.word and "variance ratio 35 % (guide at most 20 %)".replace(" %", "%") in state.word
+    assert _zone({**base, "variance_ratio": 0.1}).tone == "ok"
+    assert "outside" not in _zone({**base, "zone": "amber"}).word

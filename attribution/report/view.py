@@ -102,12 +102,30 @@ def _figure_rows(frame: pd.DataFrame, label: str, text: tuple[str, ...],
     return _by_book(frame, rows)
 
 
+MEAN_RATIO_GUIDE, VARIANCE_RATIO_GUIDE = 0.10, 0.20  # BCBS 352 (2016): |mean| <= 10 %, variance <= 20 %
+
+
+def _zone(q: Mapping[str, object]) -> State:
+    """The zone in words; a green zone whose BCBS 352 ratios are outside their guides says so in the same line."""
+    state = _state(_ZONE_WORDS, q["zone"], "not yet computed")
+    mean, variance = _number(q["mean_ratio"]), _number(q["variance_ratio"])
+    outside = []
+    if mean is not None and abs(mean) > MEAN_RATIO_GUIDE:
+        outside.append(f"mean ratio {mean:.0%} (guide within \u00b1{MEAN_RATIO_GUIDE:.0%})")
+    if variance is not None and variance > VARIANCE_RATIO_GUIDE:
+        outside.append(f"variance ratio {variance:.0%} (guide at most {VARIANCE_RATIO_GUIDE:.0%})")
+    if state.code == "green" and outside:
+        return State(state.code, "watch", f"{state.word}, but the BCBS 352 ratios are outside their guides: "
+                                          + "; ".join(outside))
+    return state
+
+
 def _quality(frame: pd.DataFrame) -> dict[str, Quality]:
     """The quality row of each book (one per book and night)."""
     out = {}
     for q in frame.to_dict("records"):
         out[_text(q["book"])] = Quality(
-            zone=_state(_ZONE_WORDS, q["zone"], "not yet computed"), nights=int(_number(q["nights"]) or 0),
+            zone=_zone(q), nights=int(_number(q["nights"]) or 0),
             provisional=True if pd.isna(q["provisional"]) else bool(q["provisional"]),
             spearman=_number(q["spearman"]), ks=_number(q["ks"]), mean_ratio=_number(q["mean_ratio"]),
             variance_ratio=_number(q["variance_ratio"]),
@@ -128,7 +146,8 @@ def _methods(f: Mapping[str, float | None]) -> tuple[tuple[MethodRow, ...], Meth
             ("cross", "Cross spot-vol", "vanna", f["pnl_vanna"], 0.0 if f["reval_spot"] is not None else None),
             ("time", "Time", "theta", f["pnl_theta"], f["reval_time"]),
             ("rates", "Rates", "rho", f["pnl_rates"], f["reval_rates"]),
-            ("dividend", "Dividend", "dividend", f["pnl_dividend"], f["reval_dividend"]))
+            ("dividend", "Dividend / foreign rate", "dividend (FX: foreign rate)", f["pnl_dividend"],
+             f["reval_dividend"]))
     reval_total = add(*REVAL_COLUMNS)
     bars = charts.pair_bars([(s[3], s[4]) for s in spec] + [(f["pnl_explained"], reval_total)])
     rows = tuple(MethodRow(key, label, terms, a, b, None if a is None or b is None else b - a, bar)
@@ -141,7 +160,7 @@ def _methods(f: Mapping[str, float | None]) -> tuple[tuple[MethodRow, ...], Meth
 
 def _waterfall(f: Mapping[str, float | None], unpriced: int, currency: str) -> charts.Waterfall:
     labels = {"delta": "Delta", "gamma": "Gamma", "vega": "Vega", "volga": "Volga", "vanna": "Vanna",
-              "theta": "Theta", "rates": "Rates", "dividend": "Dividend"}
+              "theta": "Theta", "rates": "Rates", "dividend": "Dividend / foreign rate (FX)"}
     steps = [(f"pnl_{t}", labels[t], f[f"pnl_{t}"], "") for t in TAYLOR_TERMS]
     if f.get("pnl_smile_delta"):  # sticky moneyness: a ninth explained line
         steps.insert(1, ("pnl_smile_delta", "Smile delta", f["pnl_smile_delta"], "spot-implied vol move"))
