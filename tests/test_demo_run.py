@@ -45,7 +45,7 @@ def test_demo_archives_every_night_and_conserves_positions(demo):
 
 
 def test_planted_faults_are_caught(demo, tmp_path):
-    """Stale mark -> warning; fat-finger mark -> a mark gap on that instrument; missing mark -> rejections;
+    """Stale mark -> warning; fat-finger mark -> a mark gap on that instrument; missing mark -> rolled and warned;
     off-smile mark -> `off smile` only; butterfly in the marks -> `smile arbitrage`."""
     into, _ = demo
     faults = build_demo(tmp_path / "again", business_days=8).faults  # same seed: the same faults
@@ -66,10 +66,13 @@ def test_planted_faults_are_caught(demo, tmp_path):
             assert ("off smile" if fault.kind == "off_smile_mark" else "smile arbitrage") in rules
             if fault.kind == "off_smile_mark":
                 assert "smile arbitrage" not in rules
-        elif fault.kind == "missing_mark":
-            rejected = con.execute("SELECT count(*) FROM input_exceptions WHERE as_of = ? AND severity = 'rejected' "
-                                   "AND detail LIKE '%no usable option mark%'", [day]).fetchone()[0]
-            assert rejected >= 1
+        elif fault.kind == "missing_mark":  # rolled forward from the prior date's mark, flagged and warned
+            warned = con.execute("SELECT count(*) FROM input_exceptions WHERE as_of = ? AND severity = 'warning' "
+                                 "AND rule = 'mark rolled forward' AND key = ?",
+                                 [day, fault.instrument_or_trade]).fetchone()[0]
+            flagged = con.execute("SELECT count(*) FROM position_pnl WHERE as_of = ? AND instrument_id = ? "
+                                  "AND flags LIKE '%mark_rolled%'", [day, fault.instrument_or_trade]).fetchone()[0]
+            assert warned == 1 and flagged >= 1
     con.close()
     assert {f.kind for f in faults} >= {"stale_mark", "fat_finger_mark", "missing_mark", "off_smile_mark",
                                         "smile_arbitrage_mark"}
