@@ -136,7 +136,8 @@ def quality_series(con: duckdb.DuckDBPyConnection, up_to: dt.date) -> pd.DataFra
     """
     return con.execute(
         "SELECT as_of, book, pnl_actual AS hpl, pnl_explained AS rtpl FROM book_pnl "
-        "WHERE as_of <= ? AND carried + closed + expired > 0 ORDER BY book, as_of", [up_to]).df()
+        "WHERE as_of <= ? AND coalesce(carried, 0) + coalesce(closed, 0) + coalesce(expired, 0) > 0 "
+        "ORDER BY book, as_of", [up_to]).df()
 
 
 def write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, frames: dict[str, pd.DataFrame]) -> pd.DataFrame:

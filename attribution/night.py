@@ -109,11 +109,14 @@ def _explain_expiring(cols: dict[str, object], e: NDArray[np.intp], market0: Ins
     """Rows ``e`` expire tonight (expiry after the prior date, on or before the run date): explained down to
     the intrinsic value at the run-date spot with tau1 = 0, with the same terms and revaluation as a night
     held. The vol is not observable at expiry, so it does not move (vega, volga and vanna are 0); time runs
-    only to the expiry (min(night, tau0))."""
+    only to the expiry (min(night, tau0)); a rate or yield missing on the run date does not move either."""
     if not e.size:
         return
     s0, m1 = _state(market0, i0[e]), _state(market1, i1[e])
-    s1 = MarketState(m1.spot, s0.vol, np.zeros(e.size), m1.rate, m1.div_yield)
+    # A settlement needs only the run-date spot: without a run-date rate or yield (no curve), they do not move.
+    rate1 = np.where(np.isfinite(m1.rate), m1.rate, s0.rate)
+    div1 = np.where(np.isfinite(m1.div_yield), m1.div_yield, s0.div_yield)
+    s1 = MarketState(m1.spot, s0.vol, np.zeros(e.size), rate1, div1)
     settle = np.maximum(cp[e] * (m1.spot - strike[e]), 0.0)
     dt_e = np.minimum(dt_years, s0.tau_years)
     ex = explain_overnight(strike[e], cp[e], units0[e], s0, s1, price0[e], settle, dt_e, american[e], scheme=scheme)
