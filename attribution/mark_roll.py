@@ -61,12 +61,13 @@ def roll_marks(market: InstrumentMarket, terms: pd.DataFrame, config: JobConfig,
         return market
     i = np.flatnonzero(rolled)
     price = market.price.copy()
+    spot = market.escrowed_spot  # the spot the model prices on (less the dividends' present value)
     with np.errstate(all="ignore"):
-        price[i] = price_unchecked(market.spot[i], market.strike[i], market.tau_years[i], vol[i], market.rate[i],
+        price[i] = price_unchecked(spot[i], market.strike[i], market.tau_years[i], vol[i], market.rate[i],
                                    market.div_yield[i], market.cp[i])
         a = i[market.american[i]]
         if a.size:
-            price[a] = american_price_unchecked(market.spot[a], market.strike[a], market.tau_years[a], vol[a],
+            price[a] = american_price_unchecked(spot[a], market.strike[a], market.tau_years[a], vol[a],
                                                 market.rate[a], market.div_yield[a], market.cp[a],
                                                 scheme=market.american_scheme)
     reason = market.reason.copy()
