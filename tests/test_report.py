@@ -101,6 +101,8 @@ def test_fx_exposure_per_currency_equals_the_archive(night) -> None:
         assert shown_number(shown[5]) == pytest.approx(converted / 100, abs=0.5)
         assert shown_number(shown[6]) == pytest.approx(translation, abs=0.5)
     assert shown_number(table[0][3]) == pytest.approx(1.1)
+    shown_rate = report.html.make_environment().filters["fx_rate"]
+    assert shown_rate(0.006667) == "0.006667" and shown_rate(None) == charts.MISSING  # a yen rate keeps its digits
 
 
 def test_two_methods_side_by_side_add_up(night) -> None:

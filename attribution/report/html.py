@@ -65,6 +65,7 @@ def make_environment() -> jinja2.Environment:
     env.filters["amount"] = charts.format_amount
     env.filters["percent"] = charts.format_percent
     env.filters["ratio"] = lambda v: charts.format_amount(v, 3)
+    env.filters["fx_rate"] = lambda v: charts.MISSING if charts.is_missing(v) else f"{float(v):.6g}"  # 0.00667 JPY
     env.filters["raw"] = lambda v: "" if charts.is_missing(v) else repr(float(v))
     env.filters["quantity"] = _format_quantity
     env.filters["amount_cells"] = amount_cells
