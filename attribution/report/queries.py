@@ -127,7 +127,7 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
         run=_frame(con, f"""SELECT {_columns(RUNS)} FROM runs WHERE as_of = ?
                             ORDER BY finished_at DESC NULLS LAST, started_at DESC LIMIT 1""", [as_of]),
         vol_parts=_vol_parts(con, as_of),
-        hedging=_frame(con, HEDGING_SQL, [as_of]),
+        hedging=_frame(con, HEDGING_SQL, [as_of, HEDGING_ROWS_SHOWN]),
         # FX exposure: the run-date value of what each book holds, per premium currency, in that currency and
         # converted; a 1 % move of the rate changes the converted value by 1 % (the translation of the next night).
         currencies=_frame(con, """
@@ -182,25 +182,33 @@ def _vol_parts(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> pd.DataFrame:
         GROUP BY ALL ORDER BY book, bucket""", [*limits, as_of])
 
 
+HEDGING_ROWS_SHOWN = 30  # underlyings in a book's hedging table (largest net delta first; its cash row kept)
 # Per book and underlying: the options' and the hedges' (delta-one kinds') delta and P&L, side by side, the
-# largest net delta first. A row archived before instrument kinds existed (kind NULL) is an option; a book's
-# cash row has no underlying and comes last.
+# largest net delta first, with the book's sums over every underlying (book_options_pnl, ...). A row archived
+# before instrument kinds existed (kind NULL) is an option; a book's cash row has no underlying.
 HEDGING_SQL = """
     WITH p AS (SELECT book, underlying, coalesce(kind, 'option') = 'option' AS is_option, delta_units, delta_cash,
                       pnl_total - coalesce(pnl_cash, 0) AS pnl, coalesce(pnl_cash, 0) AS cash
-               FROM position_pnl WHERE as_of = ?)
-    SELECT book, coalesce(underlying, '(cash)') AS underlying,
-           sum(delta_units) FILTER (WHERE is_option) AS options_delta_units,
-           sum(delta_units) FILTER (WHERE NOT is_option) AS hedges_delta_units,
-           sum(delta_units) AS book_delta_units,
-           sum(delta_cash) FILTER (WHERE is_option) AS options_delta_cash,
-           sum(delta_cash) FILTER (WHERE NOT is_option) AS hedges_delta_cash,
-           sum(delta_cash) AS book_delta_cash,
-           sum(pnl) FILTER (WHERE is_option) AS options_pnl,
-           sum(pnl) FILTER (WHERE NOT is_option) AS hedges_pnl,
-           sum(cash) AS cash_pnl
-    FROM p GROUP BY book, underlying
-    ORDER BY book, underlying IS NULL, abs(sum(delta_cash)) DESC NULLS LAST, underlying"""
+               FROM position_pnl WHERE as_of = ?),
+         g AS (SELECT book, coalesce(underlying, '(cash)') AS underlying, underlying IS NULL AS is_cash,
+                      sum(delta_units) FILTER (WHERE is_option) AS options_delta_units,
+                      sum(delta_units) FILTER (WHERE NOT is_option) AS hedges_delta_units,
+                      sum(delta_units) AS book_delta_units,
+                      sum(delta_cash) FILTER (WHERE is_option) AS options_delta_cash,
+                      sum(delta_cash) FILTER (WHERE NOT is_option) AS hedges_delta_cash,
+                      sum(delta_cash) AS book_delta_cash,
+                      sum(pnl) FILTER (WHERE is_option) AS options_pnl,
+                      sum(pnl) FILTER (WHERE NOT is_option) AS hedges_pnl,
+                      sum(cash) AS cash_pnl
+               FROM p GROUP BY book, underlying)
+    SELECT * EXCLUDE (is_cash),
+           coalesce(sum(options_pnl) OVER (PARTITION BY book), 0) AS book_options_pnl,
+           coalesce(sum(hedges_pnl) OVER (PARTITION BY book), 0) AS book_hedges_pnl,
+           coalesce(sum(cash_pnl) OVER (PARTITION BY book), 0) AS book_cash_pnl
+    FROM g
+    QUALIFY row_number() OVER (PARTITION BY book ORDER BY is_cash DESC, abs(book_delta_cash) DESC NULLS LAST,
+                                                         underlying) <= ?
+    ORDER BY book, is_cash, abs(book_delta_cash) DESC NULLS LAST, underlying"""
 HEDGING_VALUES: tuple[str, ...] = ("options_delta_units", "hedges_delta_units", "book_delta_units",
                                    "options_delta_cash", "hedges_delta_cash", "book_delta_cash",
                                    "options_pnl", "hedges_pnl", "cash_pnl")

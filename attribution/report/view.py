@@ -173,27 +173,23 @@ def _waterfall(f: Mapping[str, float | None], unpriced: int, currency: str) -> c
     return charts.waterfall(steps, ("pnl_total", f"Total P&L ({currency})", f["pnl_total"]), width=620.0)
 
 
-HEDGING_ROWS_SHOWN = 30  # underlyings listed in a book's hedging table (largest net delta first)
-
-
 def _hedging(frame: pd.DataFrame,
              currency: str) -> tuple[dict[str, tuple[FigureRow, ...]], dict[str, charts.Waterfall]]:
     """Per book: its hedging rows (options, hedges, book per underlying) and the options / hedges / cash
-    waterfall to the book's total (every row summed, whatever is listed)."""
+    waterfall to the book's total (the query's sums over every underlying, whatever is listed)."""
     if not len(frame):
         return {}, {}
     rows = _by_book(frame, [FigureRow(label, (), values) for label, values in
                             zip(_texts(frame, "underlying"), _floats(frame, HEDGING_VALUES), strict=True)])
-    sums = frame.groupby("book", sort=True)[["options_pnl", "hedges_pnl", "cash_pnl"]].sum(min_count=0)
+    sums = frame.drop_duplicates("book")[["book", "book_options_pnl", "book_hedges_pnl", "book_cash_pnl"]]
     charts_by_book = {}
-    for book, r in sums.iterrows():
-        steps = [("options_pnl", "Options", float(r["options_pnl"]), ""),
-                 ("hedges_pnl", "Hedges", float(r["hedges_pnl"]), "underlying, futures, forwards"),
-                 ("cash_pnl", "Cash flows", float(r["cash_pnl"]), "")]
-        total = float(r["options_pnl"] + r["hedges_pnl"] + r["cash_pnl"])
-        charts_by_book[str(book)] = charts.waterfall(steps, ("pnl_total", f"Total P&L ({currency})", total),
-                                                     width=620.0)
-    return {b: r[:HEDGING_ROWS_SHOWN] for b, r in rows.items()}, charts_by_book
+    for book, options, hedges, cash in sums.itertuples(index=False):
+        steps = [("hedging-options", "Options", float(options), ""),  # keys unlike the night's waterfall's
+                 ("hedging-hedges", "Hedges", float(hedges), "underlying, futures, forwards"),
+                 ("hedging-cash", "Cash flows", float(cash), "")]
+        charts_by_book[str(book)] = charts.waterfall(
+            steps, ("hedging-total", f"Total P&L ({currency})", float(options + hedges + cash)), width=620.0)
+    return rows, charts_by_book
 
 
 History = tuple[charts.LineChart, charts.LineChart]
