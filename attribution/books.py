@@ -20,7 +20,9 @@ from attribution.controls import BREACH, WATCH, book_states, position_states
 from attribution.exceptions_log import REJECTED, WARNING
 from attribution.lifecycle import STATUSES
 from attribution.loading import RawNight
+from attribution.market import InstrumentMarket
 from attribution.schema import BOOK_PNL, EXPOSURE_COLUMNS, PNL_COLUMNS, REVAL_COLUMNS, V2_AMOUNT_COLUMNS
+from attribution.valuation import MarketState, value_and_greeks
 
 NO_BOOK = "(no book)"  # the book shown for a rejected position row without one
 UNASSIGNED_DESK = "(unassigned)"  # the desk of a book that books.parquet does not list
@@ -60,6 +62,44 @@ def rejected_positions(ledger: pd.DataFrame) -> pd.DataFrame:
     return rejected.drop_duplicates("position")[["book", "position"]]
 
 
+def rejected_size(rejected: pd.DataFrame, raw0: RawNight, market0: InstrumentMarket, fx0: pd.Series) -> pd.DataFrame:
+    """Per book, what the rejected positions weighed on the prior date: value and vega at the prior state.
+
+    A rejected position is valued when the prior date holds it (its file row, by trade_id) in an instrument
+    the prior market prices, with a finite quantity and an FX rate; its value is quantity x multiplier x prior
+    mark x prior FX, its vega the model's at the prior state (per vol point). The others (new trades, a
+    keyless row, no usable prior mark) are counted in ``rejected_unvalued``, never valued at 0 silently.
+    Columns: book, rejected_prior_value, rejected_vega_per_vol_point, rejected_unvalued.
+    """
+    columns = ["rejected_prior_value", "rejected_vega_per_vol_point", "rejected_unvalued"]
+    if rejected.empty:
+        return pd.DataFrame(columns=["book", *columns])
+    prior = raw0.tables["positions.parquet"]
+    prior = prior[prior["trade_id"].isin(rejected["position"])].drop_duplicates("trade_id")
+    prior = rejected.merge(prior[["trade_id", "instrument_id", "quantity"]], how="left",
+                           left_on="position", right_on="trade_id")
+    idx = market0.locate(prior["instrument_id"].to_numpy(dtype=object))
+    i = np.maximum(idx, 0)
+    quantity = prior["quantity"].to_numpy(dtype=float)
+    fx = pd.Series(market0.currency[i], dtype=object).map(fx0).to_numpy(dtype=float)
+    ok = (idx >= 0) & market0.usable[i] & np.isfinite(market0.price[i]) & np.isfinite(quantity) & np.isfinite(fx)
+    value = np.zeros(len(prior))
+    vega = np.zeros(len(prior))
+    k = np.flatnonzero(ok)
+    if k.size:
+        units = quantity[k] * market0.multiplier[i[k]] * fx[k]
+        j = i[k]
+        state = MarketState(market0.spot[j], market0.vol[j], market0.tau_years[j], market0.rate[j],
+                            market0.div_yield[j])
+        greeks, _ = value_and_greeks(market0.strike[j], market0.cp[j], state, market0.american[j],
+                                     scheme=market0.american_scheme, group=j)
+        value[k] = units * market0.price[j]
+        vega[k] = units * greeks.vega / 100.0
+    sized = pd.DataFrame({"book": prior["book"].to_numpy(dtype=object), "rejected_prior_value": value,
+                          "rejected_vega_per_vol_point": vega, "rejected_unvalued": (~ok).astype(np.int64)})
+    return sized.groupby("book", as_index=False, sort=True)[columns].sum()
+
+
 def conservation(raw0: RawNight, raw1: RawNight, archived: pd.Series,
                   rejected: pd.DataFrame) -> tuple[int, tuple[str, ...]]:
     """Positions in (distinct trades over both dates, plus keyless rows) and any unaccounted."""
@@ -77,10 +117,11 @@ def conservation(raw0: RawNight, raw1: RawNight, archived: pd.Series,
 
 def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.DataFrame,
                 config: JobConfig, as_of: dt.date, prior_as_of: dt.date,
-                desks: pd.Series | None = None) -> pd.DataFrame:
+                desks: pd.Series | None = None, rejected_sizes: pd.DataFrame | None = None) -> pd.DataFrame:
     """One row per book: sums, counts by status, rejected and warning counts, limit state, desk.
 
     ``desks``: the run date's desk per book (books.parquet); a book it does not list is ``(unassigned)``.
+    ``rejected_sizes``: :func:`rejected_size`'s rows (a book without one left out nothing: zeros).
     """
     amounts = list(PNL_COLUMNS) + list(REVAL_COLUMNS) + list(EXPOSURE_COLUMNS) + list(V2_AMOUNT_COLUMNS)
     grouped = positions.groupby("book", sort=True)
@@ -119,6 +160,11 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
     frame["desk"] = frame["book"].map(desks if desks is not None else {}).astype(object).fillna(UNASSIGNED_DESK)
     frame["official_pnl"] = frame["official_break"] = np.nan
     frame["delta_units"] = np.nan  # units of different underlyings (and currencies) do not add up: per underlying only
+    sizes = (rejected_sizes if rejected_sizes is not None else pd.DataFrame(columns=["book"])).set_index("book")
+    for column in ("rejected_prior_value", "rejected_vega_per_vol_point", "rejected_unvalued"):
+        values = sizes[column] if column in sizes else pd.Series(dtype=float)
+        frame[column] = values.reindex(frame["book"]).fillna(0).to_numpy()
+    frame["rejected_unvalued"] = frame["rejected_unvalued"].astype(np.int64)
     return frame[[name for name, _ in BOOK_PNL]]
 
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 import dataclasses
 import datetime as dt
 import math
+import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -85,6 +86,31 @@ class VolTimeSettings:
         return all(w == 1.0 for w in (*self.weekdays, self.holiday, *(x for _, x in self.events)))
 
 
+DEFAULT_EXPIRY_BUCKETS: tuple[str, ...] = ("1W", "1M", "3M", "6M", "1Y", "2Y", "5Y")
+_TENOR_YEARS = {"D": 1 / 365, "W": 7 / 365, "M": 1 / 12, "Y": 1.0}
+
+
+def tenor_years(tenor: str) -> float:
+    """A tenor such as ``1W``, ``3M`` or ``2Y`` in years (a day is 1/365, a week 7/365, a month 1/12)."""
+    match = re.fullmatch(r"([1-9][0-9]{0,2})([DWMY])", tenor)
+    if match is None:
+        raise ConfigError(f"expiry bucket {tenor!r} is not a tenor such as 1W, 3M or 2Y")
+    return int(match.group(1)) * _TENOR_YEARS[match.group(2)]
+
+
+def _expiry_buckets(values: Any, where: str) -> tuple[str, ...]:
+    """The upper ends of the expiry buckets of the book page, increasing; beyond the last is one more bucket."""
+    if not isinstance(values, list) or not values or not all(isinstance(v, str) for v in values):
+        raise ConfigError(f"{where}: expiry_buckets must be a list of tenors such as [\"1W\", \"1M\", \"1Y\"]")
+    try:
+        years = [tenor_years(v) for v in values]
+    except ConfigError as exc:
+        raise ConfigError(f"{where}: {exc}") from exc
+    if any(b <= a for a, b in zip(years, years[1:], strict=False)):
+        raise ConfigError(f"{where}: expiry_buckets must increase, got {values}")
+    return tuple(values)
+
+
 @dataclass(frozen=True, slots=True)
 class JobConfig:
     """Everything one run needs to know besides the dates."""
@@ -106,6 +132,7 @@ class JobConfig:
     history_nights: int = 60
     smile: SmileSettings = field(default_factory=SmileSettings)
     vol_time: VolTimeSettings = field(default_factory=VolTimeSettings)
+    expiry_buckets: tuple[str, ...] = DEFAULT_EXPIRY_BUCKETS  # upper ends of the book page's expiry buckets
 
     def limits_for(self, book: str) -> LimitSettings:
         """The limits of ``book``: its override when the job file has one, else the default."""
@@ -242,6 +269,11 @@ def load_job(path: Path) -> JobConfig:
     smile = _smile_settings(_section(raw, "smile", source), f"{source} [smile]")
     vol_time = _vol_time_settings(_section(raw, "vol_time", source), f"{source} [vol_time]")
     defaults = JobConfig()
+    report = _section(raw, "report", source)
+    unknown = sorted(set(report) - {"expiry_buckets"})
+    if unknown:
+        raise ConfigError(f"{source} [report]: unknown key(s) {', '.join(unknown)}; allowed: expiry_buckets")
+    buckets = _expiry_buckets(report.get("expiry_buckets", list(DEFAULT_EXPIRY_BUCKETS)), f"{source} [report]")
 
     def resolve(key: str, default: Path) -> Path:
         value = job.get(key)
@@ -278,6 +310,7 @@ def load_job(path: Path) -> JobConfig:
         history_nights=history_nights,
         smile=smile,
         vol_time=vol_time,
+        expiry_buckets=buckets,
     )
     return validate(config, source)
 

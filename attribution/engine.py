@@ -34,7 +34,14 @@ from attribution.activity import (
     with_statuses,
 )
 from attribution.archive import archive_lock, connect, write_night
-from attribution.books import book_frame, conservation, position_books, position_limit_states, rejected_positions
+from attribution.books import (
+    book_frame,
+    conservation,
+    position_books,
+    position_limit_states,
+    rejected_positions,
+    rejected_size,
+)
 from attribution.config import ConfigError, JobConfig
 from attribution.contract import CleanNight, clean_night, trade_date_warnings
 from attribution.controls import BREACH
@@ -232,7 +239,8 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     ledger = position_books(raw0, raw1, log.frame(keyless=True))
     rejected = rejected_positions(ledger)
     exceptions = ledger.drop(columns="position")
-    frame = book_frame(positions, exceptions, rejected, config, as_of, prior_as_of, clean1.desks)
+    frame = book_frame(positions, exceptions, rejected, config, as_of, prior_as_of, clean1.desks,
+                       rejected_size(rejected, raw0, market0, clean0.fx))
     frame, exceptions = _official(frame, exceptions, clean1, config, books)
     books = frame
     positions_in, missing = conservation(raw0, raw1, positions["trade_id"], rejected)

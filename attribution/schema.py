@@ -79,6 +79,10 @@ BOOK_PNL: tuple[tuple[str, str], ...] = (
     ("official_pnl", "DOUBLE"),          # the desk's reported P&L (official_pnl.parquet), NULL without a row
     ("official_break", "DOUBLE"),        # official_pnl - pnl_total, NULL without a row
     ("exercised", "BIGINT"),             # positions exercised or assigned whole tonight
+    # the size of what was left out: rejected positions held on the prior date, at the prior state
+    ("rejected_prior_value", "DOUBLE"),         # quantity0 x multiplier x prior mark x prior FX
+    ("rejected_vega_per_vol_point", "DOUBLE"),  # their vega at the prior state, per vol point
+    ("rejected_unvalued", "BIGINT"),            # rejected positions the prior date cannot value (new, no usable mark)
 )
 
 INPUT_EXCEPTIONS: tuple[tuple[str, str], ...] = (

@@ -62,6 +62,9 @@ def test_defaults_without_a_job_file():
     ("[time]\nholidays = ['2026-12-25']\n", "TOML date"),
     ("[job\n", "not valid TOML"),
     ("[job]\namerican_precision = 'high'\n", "american_precision 'high' is not one of standard, precise"),
+    ("[report]\nexpiry_buckets = ['1M', '1W']\n", "expiry_buckets must increase"),
+    ("[report]\nexpiry_buckets = ['3 months']\n", "'3 months' is not a tenor"),
+    ("[report]\nbuckets = ['1M']\n", "unknown key(s) buckets"),
 ])
 def test_bad_job_files_are_refused_naming_the_file_and_key(tmp_path, text, message):
     """Every refusal names the job file and the key or rule."""
@@ -128,3 +131,11 @@ def test_the_demo_applies_the_limits_its_job_file_documents(tmp_path):
     applied = demo_config(tmp_path, documented.holidays)
     assert applied.limits == documented.limits
     assert applied.book_limits == documented.book_limits
+
+
+def test_expiry_buckets_default_and_from_the_job_file(tmp_path):
+    """Without a [report] table the buckets end at 1W, 1M, 3M, 6M, 1Y, 2Y, 5Y; a job file can name others."""
+    assert JobConfig().expiry_buckets == ("1W", "1M", "3M", "6M", "1Y", "2Y", "5Y")
+    path = tmp_path / "job.toml"
+    path.write_text("[report]\nexpiry_buckets = ['2W', '3M', '10Y']\n")
+    assert load_job(path).expiry_buckets == ("2W", "3M", "10Y")

@@ -80,3 +80,29 @@ def test_a_version_1_folder_has_unassigned_desks_and_no_strategy(tmp_path):
         assert con.execute("SELECT count(*) FROM position_pnl WHERE strategy IS NOT NULL").fetchone() == (0,)
     finally:
         con.close()
+
+
+def test_rejected_positions_are_sized_at_the_prior_state(tmp_path):
+    """A held position rejected tonight counts its prior value (quantity x multiplier x prior mark x FX) and its
+    vega at the prior state (QuantLib's analytic European vega, per vol point); a new trade rejected tonight has
+    no prior value and is counted as not valued."""
+    from tests.contract_files import edit_row
+    from tests.mini_desk import INSTRUMENTS, mark, ql_option
+    write_mini_desk(tmp_path / "data")
+    edit_row(tmp_path / "data", RUN, "positions", "T3", quantity=1e12)   # held: EUR call, 20 contracts x 10
+    edit_row(tmp_path / "data", RUN, "positions", "T7", quantity=1e12)   # new tonight: nothing to value
+    code, con = _night(tmp_path)
+    try:
+        rows = {r[0]: r[1:] for r in con.execute(
+            "SELECT book, rejected, rejected_prior_value, rejected_vega_per_vol_point, rejected_unvalued "
+            "FROM book_pnl").fetchall()}
+    finally:
+        con.close()
+    assert code == 3
+    inst = next(i for i in INSTRUMENTS if i.instrument_id == "QRX-C50-F27")
+    units = 20.0 * inst.multiplier * 1.08   # prior FX of EUR
+    rejected, value, vega, unvalued = rows["Euro single names"]
+    assert (rejected, unvalued) == (1, 0)
+    assert value == pytest.approx(units * mark(inst, PRIOR), rel=1e-12)
+    assert vega == pytest.approx(units * ql_option(inst, PRIOR).vega() / 100.0, rel=1e-9)  # QuantLib reference
+    assert rows["Index vol"][0] == 1 and rows["Index vol"][1:] == (0.0, 0.0, 1)

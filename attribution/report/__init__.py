@@ -32,7 +32,7 @@ __all__ = ["EXCEPTIONS_SHOWN", "TERM_COLUMNS", "TOP_POSITIONS", "NightSettings",
 
 def render_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, reports_dir: Path, config: JobConfig) -> Path:
     """Write ``<reports_dir>/<as_of>/index.html``, ``exceptions.html`` and one page per book; return the index."""
-    frames = load_night(con, as_of, config.history_nights)
+    frames = load_night(con, as_of, config.history_nights, config.expiry_buckets)
     if not len(frames.books) and not len(frames.exceptions) and not len(frames.run):
         raise ReportError(f"archive: nothing archived for {as_of.isoformat()} (no run, no book, no exception)")
     settings = night_settings(frames.run, config)  # the night's own settings, as its run record holds them

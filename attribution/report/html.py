@@ -87,4 +87,7 @@ def render_files(night: NightView, pages: list[BookPage]) -> dict[str, str]:
              "exceptions.html": env.get_template("exceptions.html").render(night=night, footer=footer)}
     for page in pages:
         files[page.summary.file_name] = book_template.render(page=page, night=night, footer=footer)
+    desk_template = env.get_template("desk.html")
+    for desk in night.desks:
+        files[desk.file_name] = desk_template.render(desk=desk, night=night, footer=footer)
     return files

@@ -38,6 +38,38 @@ class BookSummary:
     exceptions: int
     position_breaches: int
     official_break: float | None = None  # official P&L - total (official_pnl.parquet); None without a row
+    desk: str = ""
+    desk_file: str = ""
+    total_mtd: float | None = None
+    total_ytd: float | None = None
+    residual_mtd: float | None = None
+    residual_ytd: float | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class DeskSummary:
+    """A desk on the index and its own page: the sums of its books (every column books have) and its books."""
+
+    name: str
+    file_name: str
+    books: tuple[BookSummary, ...]
+    total: float
+    actual: float
+    explained: float
+    residual: float
+    residual_share: float | None
+    limit: State             # the worst limit state of its books
+    zone: State              # the worst quality zone of its books
+    breaches: int            # books in breach
+    watches: int             # books on watch
+    exceptions: int
+    position_breaches: int
+    total_mtd: float | None
+    total_ytd: float | None
+    residual_mtd: float | None
+    residual_ytd: float | None
+    official_break: float | None
+    to_date: tuple[FigureRow, ...] = ()   # the night, month and year to date per term
 
 
 @dataclass(frozen=True, slots=True)
@@ -134,6 +166,11 @@ class BookPage:
     hedging: tuple[FigureRow, ...] = ()        # per underlying: options, hedges, book (queries.HEDGING_VALUES)
     hedge_waterfall: charts.Waterfall | None = None  # options, hedges and cash to the total
     currencies: tuple[FigureRow, ...] = ()  # FX exposure: run-date value per premium currency (CURRENCY_VALUES)
+    to_date: tuple[FigureRow, ...] = ()     # per term: (night, month to date, year to date)
+    breaches_to_date: tuple[int, int] = (0, 0)   # nights in breach this month, this year
+    strategies: tuple[FigureRow, ...] = ()  # label, (positions,), STRATEGY_COLUMNS
+    exposure_changes: tuple[FigureRow, ...] = ()  # underlying, (), EXPOSURE_CHANGE_COLUMNS
+    previous_as_of: dt.date | None = None   # the archived night the exposures are compared with
 
 
 
@@ -149,14 +186,15 @@ class NightView:
     exceptions: tuple[ExceptionRow, ...]
     severity_counts: tuple[tuple[str, int], ...]
     rule_counts: tuple[tuple[str, str, int], ...]
+    desks: tuple[DeskSummary, ...] = ()
 
 
-def file_name_for(book: str) -> str:
-    """A safe, unique, bounded file name for a book page: ``book-<slug>-<hash>.html``.
+def file_name_for(book: str, kind: str = "book") -> str:
+    """A safe, unique, bounded file name for a book (or desk) page: ``book-<slug>-<hash>.html``.
 
     The slug keeps ASCII letters, digits, ``-`` and ``_`` (anything else becomes ``-``), so no
     path separator or ``..`` survives; the hash of the full name keeps distinct names distinct.
     """
-    slug = re.sub(r"[^A-Za-z0-9_-]+", "-", book).strip("-_")[:_MAX_SLUG] or "book"
+    slug = re.sub(r"[^A-Za-z0-9_-]+", "-", book).strip("-_")[:_MAX_SLUG] or kind
     digest = hashlib.sha256(book.encode("utf-8")).hexdigest()[:12]
-    return f"book-{slug}-{digest}.html"
+    return f"{kind}-{slug}-{digest}.html"

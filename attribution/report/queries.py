@@ -8,6 +8,8 @@ from dataclasses import dataclass, field
 import duckdb
 import pandas as pd
 
+from attribution.config import DEFAULT_EXPIRY_BUCKETS, tenor_years
+from attribution.periods import to_date
 from attribution.schema import BOOK_PNL, BOOK_QUALITY, EXPOSURE_COLUMNS, RUNS, TAYLOR_TERMS
 
 TERM_COLUMNS: tuple[str, ...] = (
@@ -19,12 +21,23 @@ CURRENCY_VALUES: tuple[str, ...] = ("value_local", "fx_rate", "value_reporting",
 TOP_POSITIONS = 20
 TOP_UNDERLYINGS = 30  # underlyings listed per book (largest residual first); the rest share one line
 EXCEPTIONS_SHOWN = 50  # rows listed on a book page; the night's exceptions page lists them all
-# Vol P&L of positions held overnight by expiry bucket (time to expiry at the prior date) and by part.
-VOL_BUCKETS: tuple[tuple[float, str], ...] = (
-    (1 / 12, "up to 1 month"), (0.25, "1 to 3 months"), (0.5, "3 to 6 months"), (1.0, "6 months to 1 year"),
-    (2.0, "1 to 2 years"), (float("inf"), "over 2 years"))
-VOL_PART_COLUMNS: tuple[str, ...] = ("pnl_vol", "pnl_vol_level", "pnl_vol_skew", "pnl_vol_curvature",
-                                     "pnl_vol_own", "pnl_smile_delta")
+# Vega and vol P&L of positions held overnight by expiry bucket (time to expiry at the prior date) and by part.
+VOL_PART_COLUMNS: tuple[str, ...] = ("vega_per_vol_point", "pnl_vega", "pnl_vol", "pnl_vol_level", "pnl_vol_skew",
+                                     "pnl_vol_curvature", "pnl_vol_own", "pnl_smile_delta")
+TOP_EXPOSURE_CHANGES = 10  # underlyings per book in the night-over-night comparison
+EXPOSURE_CHANGE_COLUMNS: tuple[str, ...] = (
+    "delta_cash_before", "delta_cash", "gamma_cash_1pct_before", "gamma_cash_1pct", "vega_before", "vega",
+    "theta_before", "theta")
+STRATEGY_COLUMNS: tuple[str, ...] = ("pnl_actual", "pnl_explained", "pnl_residual", "pnl_new_trade", "pnl_expiry",
+                                     "pnl_amendment", "pnl_total", "vega_per_vol_point")
+
+
+def expiry_buckets(tenors: tuple[str, ...]) -> tuple[tuple[float, str], ...]:
+    """(upper end in years, label) per bucket: up to the first tenor, between each pair, and beyond the last."""
+    ends = [tenor_years(t) for t in tenors]
+    labels = [f"up to {tenors[0]}", *(f"{a} to {b}" for a, b in zip(tenors, tenors[1:], strict=False)),
+              f"{tenors[-1]}+"]
+    return tuple(zip([*ends, float("inf")], labels, strict=True))
 POSITION_TEXT: tuple[str, ...] = ("trade_id", "instrument_id", "underlying", "status", "flags", "limit_state")
 POSITION_VALUES: tuple[str, ...] = ("quantity", "quantity_run_date", *TERM_COLUMNS)
 
@@ -60,10 +73,18 @@ class NightFrames:
     ex_dates: pd.DataFrame = field(default_factory=pd.DataFrame)           # per book and underlying gone ex tonight
     hedging: pd.DataFrame = field(default_factory=pd.DataFrame)  # per book and underlying: options, hedges
     currencies: pd.DataFrame = field(default_factory=pd.DataFrame)  # FX exposure per book and currency
+    buckets: tuple[tuple[float, str], ...] = ()
+    to_date_books: pd.DataFrame | None = None      # periods.to_date per book
+    to_date_desks: pd.DataFrame | None = None      # periods.to_date per desk
+    strategies: pd.DataFrame | None = None         # per book and strategy label
+    exposure_changes: pd.DataFrame | None = None   # per book, the underlyings whose exposures moved most
 
 
-def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: int) -> NightFrames:
-    """Read everything the night's pages show, with one query per kind of figure."""
+def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: int,
+               tenors: tuple[str, ...] = DEFAULT_EXPIRY_BUCKETS) -> NightFrames:
+    """Read everything the night's pages show, with one query per kind of figure; ``tenors``: the upper ends of
+    the expiry buckets (the job's ``[report] expiry_buckets``)."""
+    buckets = expiry_buckets(tenors)
     tables = {r[0] for r in con.execute("SELECT table_name FROM information_schema.tables").fetchall()}
     missing = sorted({"position_pnl", "book_pnl", "input_exceptions", "book_quality", "runs"} - tables)
     if missing:
@@ -126,7 +147,12 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
             ORDER BY book, as_of""", [as_of, as_of, max(int(history_nights), 1)]),
         run=_frame(con, f"""SELECT {_columns(RUNS)} FROM runs WHERE as_of = ?
                             ORDER BY finished_at DESC NULLS LAST, started_at DESC LIMIT 1""", [as_of]),
-        vol_parts=_vol_parts(con, as_of),
+        vol_parts=_vol_parts(con, as_of, buckets),
+        buckets=buckets,
+        to_date_books=to_date(con, as_of, "book"),
+        to_date_desks=to_date(con, as_of, "desk"),
+        strategies=_strategies(con, as_of),
+        exposure_changes=_exposure_changes(con, as_of),
         hedging=_frame(con, HEDGING_SQL, [as_of, HEDGING_ROWS_SHOWN]),
         # FX exposure: the run-date value of what each book holds, per premium currency, in that currency and
         # converted; a 1 % move of the rate changes the converted value by 1 % (the translation of the next night).
@@ -167,19 +193,54 @@ def _dividends(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> dict[str, pd.D
     return {"dividend_schedule": schedule, "ex_dates": ex_dates}
 
 
-def _vol_parts(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> pd.DataFrame:
-    """Per book and expiry bucket (index into VOL_BUCKETS): positions with a vol on both dates, vol P&L by part."""
-    limits = [b for b, _ in VOL_BUCKETS[:-1]]
+def _vol_parts(con: duckdb.DuckDBPyConnection, as_of: dt.date, buckets: tuple[tuple[float, str], ...]) -> pd.DataFrame:
+    """Per book and expiry bucket (index into ``buckets``): positions held overnight with a vol on both dates,
+    their vega at the prior state and vol P&L by part."""
+    ends = [end for end, _ in buckets]
     return _frame(con, """
-        SELECT book, CASE WHEN tau_prior_years <= ? THEN 0 WHEN tau_prior_years <= ? THEN 1
-                          WHEN tau_prior_years <= ? THEN 2 WHEN tau_prior_years <= ? THEN 3
-                          WHEN tau_prior_years <= ? THEN 4 ELSE 5 END AS bucket,
-               count(*) AS positions, sum(pnl_vega + pnl_volga) AS pnl_vol, sum(pnl_vol_level) AS pnl_vol_level,
+        WITH b AS (SELECT unnest(range(?)) AS bucket, unnest(?::DOUBLE[]) AS lo, unnest(?::DOUBLE[]) AS hi)
+        SELECT p.book, b.bucket, count(*) AS positions, sum(vega_per_vol_point) AS vega_per_vol_point,
+               sum(pnl_vega) AS pnl_vega, sum(pnl_vega + pnl_volga) AS pnl_vol, sum(pnl_vol_level) AS pnl_vol_level,
                sum(pnl_vol_skew) AS pnl_vol_skew, sum(pnl_vol_curvature) AS pnl_vol_curvature,
                sum(pnl_vol_own) AS pnl_vol_own, sum(pnl_smile_delta) AS pnl_smile_delta
-        FROM position_pnl
+        FROM position_pnl p JOIN b ON p.tau_prior_years > b.lo AND p.tau_prior_years <= b.hi
         WHERE as_of = ? AND tau_prior_years IS NOT NULL AND vol_prior IS NOT NULL AND vol_run IS NOT NULL
-        GROUP BY ALL ORDER BY book, bucket""", [*limits, as_of])
+        GROUP BY ALL ORDER BY book, bucket""", [len(ends), [float("-inf"), *ends[:-1]], ends, as_of])
+
+
+def _strategies(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> pd.DataFrame:
+    """Per book and strategy label (NULL last): positions and P&L."""
+    return _frame(con, """
+        SELECT book, strategy, count(*) AS positions, sum(pnl_actual) AS pnl_actual,
+               sum(pnl_explained) AS pnl_explained, sum(pnl_residual) AS pnl_residual,
+               sum(pnl_new_trade) AS pnl_new_trade, sum(pnl_expiry) AS pnl_expiry,
+               sum(pnl_amendment) AS pnl_amendment, sum(pnl_total) AS pnl_total,
+               sum(vega_per_vol_point) AS vega_per_vol_point
+        FROM position_pnl WHERE as_of = ? GROUP BY book, strategy ORDER BY book, strategy NULLS LAST""", [as_of])
+
+
+def _exposure_changes(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> pd.DataFrame:
+    """Per book: the underlyings whose exposures at the prior state moved most since the previous archived night,
+    ranked by the larger of |change of delta cash| / 100 (a 1 % move's P&L) and |change of vega per vol point|."""
+    return _frame(con, """
+        WITH prev AS (SELECT max(as_of) AS d FROM runs WHERE as_of < ?),
+             x AS (SELECT as_of, book, underlying, sum(delta_cash) AS dc, sum(gamma_cash_1pct) AS g,
+                          sum(vega_per_vol_point) AS v, sum(theta_per_calendar_day) AS t
+                   FROM position_pnl WHERE as_of = ? OR as_of = (SELECT d FROM prev) GROUP BY ALL),
+             n AS (SELECT * FROM x WHERE as_of = ?), o AS (SELECT * FROM x WHERE as_of <> ?),
+             j AS (SELECT coalesce(n.book, o.book) AS book, coalesce(n.underlying, o.underlying) AS underlying,
+                          coalesce(o.dc, 0) AS delta_cash_before, coalesce(n.dc, 0) AS delta_cash,
+                          coalesce(o.g, 0) AS gamma_cash_1pct_before, coalesce(n.g, 0) AS gamma_cash_1pct,
+                          coalesce(o.v, 0) AS vega_before, coalesce(n.v, 0) AS vega,
+                          coalesce(o.t, 0) AS theta_before, coalesce(n.t, 0) AS theta
+                   FROM n FULL JOIN o ON n.book = o.book AND n.underlying = o.underlying)
+        SELECT j.*, (SELECT d FROM prev) AS previous_as_of FROM j
+        WHERE book IN (SELECT book FROM book_pnl WHERE as_of = ?)
+        QUALIFY row_number() OVER (PARTITION BY book ORDER BY greatest(abs(delta_cash - delta_cash_before) / 100,
+                                   abs(vega - vega_before)) DESC, underlying) <= ?
+        ORDER BY book, greatest(abs(delta_cash - delta_cash_before) / 100, abs(vega - vega_before)) DESC, underlying""",
+                  [as_of, as_of, as_of, as_of, as_of, TOP_EXPOSURE_CHANGES])
+
 
 
 HEDGING_ROWS_SHOWN = 30  # underlyings in a book's hedging table (largest net delta first; its cash row kept)

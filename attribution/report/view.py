@@ -14,6 +14,7 @@ from attribution.report.pages import (
     BookPage,
     BookSummary,
     Conventions,
+    DeskSummary,
     ExceptionRow,
     FigureRow,
     MethodRow,
@@ -24,12 +25,13 @@ from attribution.report.pages import (
 )
 from attribution.report.queries import (
     CURRENCY_VALUES,
+    EXPOSURE_CHANGE_COLUMNS,
     EXPOSURE_COLUMNS,
     HEDGING_VALUES,
     POSITION_TEXT,
     POSITION_VALUES,
+    STRATEGY_COLUMNS,
     TERM_COLUMNS,
-    VOL_BUCKETS,
     VOL_PART_COLUMNS,
     NightFrames,
 )
@@ -44,6 +46,18 @@ _ZONE_WORDS = {"green": ("ok", "green zone: explained and actual P&L agree"),
                "amber": ("watch", "amber zone: agreement is weakening"),
                "red": ("alert", "red zone: explained and actual P&L disagree")}
 T = TypeVar("T")
+UNASSIGNED_DESK = "(unassigned)"
+NO_STRATEGY = "(no strategy label)"
+# The rows of the night / month-to-date / year-to-date tables: (column, label).
+TO_DATE_ROWS: tuple[tuple[str, str], ...] = (
+    ("pnl_total", "Total P&L"), ("pnl_actual", "Actual, positions held overnight"),
+    *((f"pnl_{t}", t.capitalize()) for t in TAYLOR_TERMS),
+    ("pnl_explained", "Explained"), ("pnl_residual", "Residual"),
+    ("pnl_higher_order", "of which expansion error"), ("pnl_mark_gap", "of which mark/model gap"),
+    ("pnl_new_trade", "New trades"), ("pnl_expiry", "Expiries"), ("pnl_amendment", "Amendments"),
+    ("pnl_fx_translation", "FX translation"), ("pnl_cash", "Cash flows"),
+    ("official_pnl", "Official P&L"), ("official_break", "Official P&L break (official - total)"),
+)
 
 
 def _by_book(frame: pd.DataFrame, rows: list[T]) -> dict[str, tuple[T, ...]]:
@@ -96,7 +110,7 @@ def _figure_rows(frame: pd.DataFrame, label: str, text: tuple[str, ...],
                  values: tuple[str, ...]) -> dict[str, tuple[FigureRow, ...]]:
     """FigureRows of a whole frame sorted by book, grouped by book."""
     labels = _texts(frame, label)
-    cells = list(zip(*(_texts(frame, c) for c in text), strict=True)) if len(frame) else []
+    cells = list(zip(*(_texts(frame, c) for c in text), strict=True)) if text else [()] * len(frame)
     numbers = _floats(frame, values)
     rows = [FigureRow(a, b, c) for a, b, c in zip(labels, cells, numbers, strict=True)]
     return _by_book(frame, rows)
@@ -240,11 +254,12 @@ def _rule_counts(rows: tuple[ExceptionRow, ...]) -> tuple[tuple[str, str, int], 
     return tuple((severity, rule, n) for (severity, rule), n in sorted(counts.items()))
 
 
-def _vol_parts(frame: pd.DataFrame) -> dict[str, tuple[tuple[FigureRow, ...], FigureRow]]:
+def _vol_parts(frame: pd.DataFrame, buckets: tuple[tuple[float, str], ...]
+               ) -> dict[str, tuple[tuple[FigureRow, ...], FigureRow]]:
     """Per book: the vol P&L rows by expiry bucket and their total row."""
     if not len(frame):
         return {}
-    frame = frame.assign(label=[VOL_BUCKETS[int(b)][1] for b in frame["bucket"]])
+    frame = frame.assign(label=[buckets[int(b)][1] for b in frame["bucket"]])
     rows = _figure_rows(frame, "label", ("positions",), VOL_PART_COLUMNS)
     totals = frame.groupby("book", sort=True)[["positions", *VOL_PART_COLUMNS]].sum(min_count=1)
     out = {}
@@ -256,7 +271,38 @@ def _vol_parts(frame: pd.DataFrame) -> dict[str, tuple[tuple[FigureRow, ...], Fi
 
 
 _COUNT_COLUMNS = ("positions", "carried", "closed", "new", "new_unpriced", "expired", "settled", "rejected", "warnings",
-                  "position_breaches")
+                  "position_breaches", "rejected_unvalued")
+
+
+def _empty_if_none(frame: pd.DataFrame | None) -> pd.DataFrame:
+    return frame if frame is not None else pd.DataFrame()
+
+
+def _records(frame: pd.DataFrame | None, key: str) -> dict[str, dict[str, object]]:
+    """Rows of ``frame`` by their ``key`` column."""
+    if frame is None or not len(frame):
+        return {}
+    return {_text(r[key]): r for r in frame.to_dict("records")}
+
+
+def _labelled(frame: pd.DataFrame | None) -> pd.DataFrame:
+    """The strategy rows with a word for positions without a label."""
+    if frame is None or not len(frame):
+        return pd.DataFrame()
+    return frame.assign(strategy=frame["strategy"].astype(object).where(frame["strategy"].notna(), NO_STRATEGY))
+
+
+def _previous_night(frame: pd.DataFrame | None) -> dt.date | None:
+    if frame is None or not len(frame) or frame["previous_as_of"].isna().all():
+        return None
+    return pd.Timestamp(frame["previous_as_of"].dropna().iloc[0]).date()
+
+
+def _to_date_rows(night: Mapping[str, float | None], to_date: Mapping[str, object]) -> tuple[FigureRow, ...]:
+    """(night, month to date, year to date) of each term of TO_DATE_ROWS."""
+    return tuple(FigureRow(label, (column,), (night.get(column), _number(to_date.get(f"{column}_mtd")),
+                                              _number(to_date.get(f"{column}_ytd"))))
+                 for column, label in TO_DATE_ROWS)
 
 
 def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
@@ -268,7 +314,11 @@ def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
     exposures = _figure_rows(frames.underlyings, "underlying", ("positions",), EXPOSURE_COLUMNS)
     positions = _figure_rows(frames.positions, "trade_id", POSITION_TEXT[1:], POSITION_VALUES)
     unpriced = _figure_rows(frames.unpriced, "trade_id", POSITION_TEXT[1:], POSITION_VALUES)
-    vol_parts = _vol_parts(frames.vol_parts)
+    vol_parts = _vol_parts(frames.vol_parts, frames.buckets)
+    to_date = _records(frames.to_date_books, "book")
+    strategies = _figure_rows(_labelled(frames.strategies), "strategy", ("positions",), STRATEGY_COLUMNS)
+    changes = _figure_rows(_empty_if_none(frames.exposure_changes), "underlying", (), EXPOSURE_CHANGE_COLUMNS)
+    previous = _previous_night(frames.exposure_changes)
     schedule = _figure_rows(frames.dividend_schedule, "underlying",
                             ("currency", "next_ex_date", "dividends", "last_ex_date"),
                             ("next_amount", "next_pv", "schedule_pv"))
@@ -292,7 +342,13 @@ def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
             limit=_state(_LIMIT_WORDS, limit_code, "not recorded"),
             zone=q.zone if q else State("", "none", "not yet computed"),
             exceptions=len(exceptions.get(name, ())), position_breaches=counts["position_breaches"],
-            official_break=figures["official_break"])
+            desk=_text(record["desk"]) or UNASSIGNED_DESK, desk_file=file_name_for(_text(record["desk"]) or
+                                                                                  UNASSIGNED_DESK, "desk"),
+            total_mtd=_number(to_date.get(name, {}).get("pnl_total_mtd")),
+            total_ytd=_number(to_date.get(name, {}).get("pnl_total_ytd")),
+            residual_mtd=_number(to_date.get(name, {}).get("pnl_residual_mtd")),
+            residual_ytd=_number(to_date.get(name, {}).get("pnl_residual_ytd")),
+            official_break=figures.get("official_break"))
         methods, method_total = _methods(figures)
         lines, cumulative = history.get(name, (None, None))
         pages.append(BookPage(
@@ -307,7 +363,11 @@ def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
             vol_parts=vol_parts.get(name, ((), None))[0], vol_parts_total=vol_parts.get(name, ((), None))[1],
             dividend_schedule=schedule.get(name, ()), ex_dates=ex_dates.get(name, ()),
             hedging=hedging.get(name, ()), hedge_waterfall=hedge_waterfalls.get(name),
-            currencies=currencies.get(name, ())))
+            currencies=currencies.get(name, ()),
+            to_date=_to_date_rows(figures, to_date.get(name, {})),
+            breaches_to_date=(int(_number(to_date.get(name, {}).get("breaches_mtd")) or 0),
+                              int(_number(to_date.get(name, {}).get("breaches_ytd")) or 0)),
+            strategies=strategies.get(name, ()), exposure_changes=changes.get(name, ()), previous_as_of=previous))
     pages.sort(key=_attention)
     return pages
 
@@ -361,4 +421,45 @@ def night_view(frames: NightFrames, pages: list[BookPage], as_of: dt.date, conve
     run = {c: _run_text(v) for c, v in frames.run.iloc[0].items()} if len(frames.run) else {}
     return NightView(as_of, conventions, tuple(p.summary for p in pages), totals, run, rows,
                      tuple((str(k), int(v)) for k, v in severity.items()),
-                     tuple((str(k[0]), str(k[1]), int(v)) for k, v in rules.items()))
+                     tuple((str(k[0]), str(k[1]), int(v)) for k, v in rules.items()),
+                     desks=desk_summaries(frames, pages))
+
+
+def _worst(states: list[State], rank: Mapping[str, int], absent: State) -> State:
+    known = [s for s in states if s.code]
+    return min(known, key=lambda s: rank.get(s.code, 2)) if known else absent
+
+
+def _sum(values: list[float | None]) -> float | None:
+    present = [v for v in values if v is not None]
+    return sum(present) if present else None
+
+
+def desk_summaries(frames: NightFrames, pages: list[BookPage]) -> tuple[DeskSummary, ...]:
+    """One summary per desk of the night's books (pages in attention order); desks needing attention first,
+    ``(unassigned)`` last among equals."""
+    to_date = _records(frames.to_date_desks, "desk")
+    by_desk: dict[str, list[BookPage]] = {}
+    for page in pages:
+        by_desk.setdefault(page.summary.desk or UNASSIGNED_DESK, []).append(page)
+    desks = []
+    for name, members in by_desk.items():
+        books = [p.summary for p in members]
+        night = {c: _sum([p.figures.get(c) for p in members]) for c, _ in TO_DATE_ROWS}
+        row = to_date.get(name, {})
+        actual = sum(b.actual for b in books)
+        residual = sum(b.residual for b in books)
+        desks.append(DeskSummary(
+            name=name, file_name=file_name_for(name, "desk"), books=tuple(books),
+            total=sum(b.total for b in books), actual=actual, explained=sum(b.explained for b in books),
+            residual=residual, residual_share=_share(residual, actual),
+            limit=_worst([b.limit for b in books], _LIMIT_RANK, State("", "none", "not recorded")),
+            zone=_worst([b.zone for b in books], _ZONE_RANK, State("", "none", "not yet computed")),
+            breaches=sum(b.limit.code == "breach" for b in books), watches=sum(b.limit.code == "watch" for b in books),
+            exceptions=sum(b.exceptions for b in books), position_breaches=sum(b.position_breaches for b in books),
+            total_mtd=_number(row.get("pnl_total_mtd")), total_ytd=_number(row.get("pnl_total_ytd")),
+            residual_mtd=_number(row.get("pnl_residual_mtd")), residual_ytd=_number(row.get("pnl_residual_ytd")),
+            official_break=_sum([b.official_break for b in books]), to_date=_to_date_rows(night, row)))
+    desks.sort(key=lambda d: (_LIMIT_RANK.get(d.limit.code, 2), _ZONE_RANK.get(d.zone.code, 2),
+                              d.name == UNASSIGNED_DESK, d.name))
+    return tuple(desks)
