@@ -180,7 +180,7 @@ def world(tmp_path_factory: pytest.TempPathFactory) -> World:
         con.close()
     assert len(rows["position_pnl"]) == desk.positions and len(rows["runs"]) == 1
     pages = frozenset(p.name for p in (clean / REPORTS / night.isoformat()).iterdir())
-    assert len(pages) == desk.books + 2
+    assert len(pages) == desk.books + 3  # index, exceptions, one page per book and the one desk's page
     return World(desk.root, earlier, night, base, clean, sums, rows, clean_exit, pages)
 
 
