@@ -144,7 +144,7 @@ def hostile(tmp_path_factory: pytest.TempPathFactory) -> HostileRun:
 def test_run_with_hostile_names_completes(hostile):
     """The night runs to its end (exit 3: the one position in a missing instrument is rejected)."""
     assert hostile.exit_code == 3
-    assert len(hostile.pages) == N + 2  # index, exceptions, one page per book
+    assert len(hostile.pages) == N + 3  # index, exceptions, one page per book, the desk (unassigned)
 
 
 def test_no_page_carries_markup_from_the_data(hostile):
