@@ -182,10 +182,12 @@ def test_every_written_file_stays_inside_the_reports_folder(hostile):
 
 
 def test_file_names_are_bounded_and_plain(hostile):
-    """Every report file name is short and plain ASCII: ``book-<slug>-<hash>.html``, index or exceptions."""
+    """Every report file name is short and plain ASCII: ``book-<slug>-<hash>.html``, ``desk-<slug>-<hash>.html``,
+    index or exceptions."""
     names = [Path(p).name for p in hostile.pages]
     assert all(len(n) <= 100 for n in names), max(names, key=len)
-    assert all(re.fullmatch(r"(index|exceptions|book-[A-Za-z0-9_-]*-[0-9a-f]{12})\.html", n) for n in names), names
+    plain = r"(index|exceptions|(book|desk)-[A-Za-z0-9_-]*-[0-9a-f]{12})\.html"
+    assert all(re.fullmatch(plain, n) for n in names), names
     assert len(set(names)) == len(names)
     assert {Path(p).parent.name for p in hostile.pages} == {RUN.isoformat()}
 
