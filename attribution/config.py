@@ -151,7 +151,7 @@ class JobConfig:
         return plain(self)
 
 
-SECTIONS = ("job", "time", "limits", "checks", "smile", "vol_time")
+SECTIONS = ("job", "time", "limits", "checks", "smile", "vol_time", "report")
 JOB_KEYS: dict[str, type] = {  # [job] key -> the TOML type it must have
     "data_root": str, "archive": str, "reports": str, "reporting_currency": str, "engine": str,
     "scheduler": str, "revaluation": bool, "write_reports": bool, "history_nights": int, "american_precision": str,
