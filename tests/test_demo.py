@@ -8,6 +8,7 @@ reference for the BSM prices of clean marks; the rest are properties the scenari
 from __future__ import annotations
 
 import datetime as dt
+import re
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -60,10 +61,22 @@ def _read(root: Path, day: dt.date) -> dict[str, pd.DataFrame]:
     return files
 
 
+def quiet_definition(folder: Path) -> Path:
+    """The packaged desk with the close noise of [marks] switched off, so marks can be checked to 1e-9."""
+    text = default_definition().read_text(encoding="utf-8")
+    for key in ("common_noise", "idio_noise"):
+        text = re.sub(rf"^{key} = [0-9.e-]+", f"{key} = 0.0", text, count=1, flags=re.MULTILINE)
+    path = folder / "quiet_desk.toml"
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
 @pytest.fixture(scope="module")
 def built(tmp_path_factory: pytest.TempPathFactory) -> Built:
+    """A 14-day slice of the packaged desk without its close noise (see test_close_noise_... for the noise)."""
     root = tmp_path_factory.mktemp("demo")
-    summary = build_demo(root, start=START, business_days=DAYS, positions_target=TARGET)
+    summary = build_demo(root, start=START, business_days=DAYS, positions_target=TARGET,
+                         definition=quiet_definition(tmp_path_factory.mktemp("definition")))
     return Built(summary, {day: _read(root, day) for day in summary.dates})
 
 
@@ -138,9 +151,9 @@ def test_default_desk_has_the_scenario_books_and_underlyings() -> None:
 
 def test_every_file_has_the_contract_columns_and_arrow_types(built: Built, tmp_path: Path) -> None:
     """Each as_of folder holds the six files of version 1, future_marks and (after the first night) the
-    trade activity and cash flows, with the contract's column names, order and Arrow types."""
+    trade activity and cash flows, and books.parquet, with the contract's column names, order and Arrow types."""
     expected = {
-        "positions": [pa.string(), pa.string(), pa.string(), pa.float64(), pa.date32(), pa.float64()],
+        "positions": [pa.string(), pa.string(), pa.string(), pa.float64(), pa.date32(), pa.float64(), pa.string()],
         "instruments": [pa.string(), pa.string(), pa.string(), pa.string(), pa.float64(), pa.date32(),
                         pa.float64(), pa.string(), pa.string()],
         "option_marks": [pa.string(), pa.float64(), pa.float64()],
@@ -152,6 +165,7 @@ def test_every_file_has_the_contract_columns_and_arrow_types(built: Built, tmp_p
         "future_marks": [pa.string(), pa.float64()],
         "trade_activity": [pa.string(), pa.string(), pa.string(), pa.float64(), pa.float64()],
         "cash_flows": [pa.string(), pa.string(), pa.string(), pa.string(), pa.float64(), pa.string()],
+        "books": [pa.string(), pa.string()],
     }
     root = built.summary.data_root
     for day in built.summary.dates:
@@ -533,3 +547,44 @@ def test_market_moves_vol_against_spot_and_rates_a_little() -> None:
     assert np.all(market.fx_to_reporting[:, 0] == 1.0) and np.all(market.fx_to_reporting > 0)
     gaps = np.diff(dates).astype(int)
     assert set(gaps) >= {1, 3} and gaps.max() <= 5
+
+
+def test_close_noise_moves_marks_off_the_model_within_its_size(tmp_path: Path) -> None:
+    """With the packaged [marks] noise, clean books' marks differ from BSM at their implied vol by a shared error
+    per underlying and night plus a small one per option: within 6 sd of the time value, and not all zero."""
+    desk = load_desk()
+    summary = build_demo(tmp_path, start=START, business_days=6, positions_target=300)
+    faulty = {f.instrument_or_trade for f in summary.faults}
+    sd = desk.marks.common_noise + desk.marks.idio_noise
+    for day in summary.dates:
+        m = _state(_read(tmp_path, day), day)
+        m = m[(m["tau"] > 0) & m["implied_vol"].notna() & ~m["instrument_id"].isin(faulty)
+              & ~m["underlying"].isin(faulty) & (m["exercise"] == "european")]
+        lower, _ = _bounds(m)
+        time_value = _model(m) - lower
+        m, time_value = m[time_value > 1e-4 * m["spot"]], time_value[time_value > 1e-4 * m["spot"]]
+        error = (m["price"].to_numpy() - _model(m)) / time_value
+        assert np.abs(error).max() < 6 * sd and np.abs(error).max() > 0.1 * sd
+
+
+def test_books_file_puts_every_book_on_its_desk_and_positions_carry_a_strategy(built: Built) -> None:
+    """books.parquet lists each book once with the desk of demo_desk.toml; every position has a strategy label."""
+    desk = load_desk()
+    for files in built.nights.values():
+        assert dict(zip(files["books"]["book"], files["books"]["desk"], strict=True)) == {
+            b.name: b.desk for b in desk.books}
+        assert files["positions"]["strategy"].notna().all()
+    labels = set(built.nights[built.summary.dates[-1]]["positions"]["strategy"])
+    assert {"outright", "delta-neutral pair"} <= labels and labels & {"short straddle", "short strangle"}
+
+
+def test_new_trades_earn_the_spread_on_average(built: Built) -> None:
+    """Priced new trades are booked inside the spread on most days' average: buys below, sells above the mark."""
+    days = built.summary.dates
+    edges = []
+    for day in days[1:]:
+        f = built.nights[day]
+        new = f["positions"][(f["positions"]["trade_date"] == day) & f["positions"]["trade_price"].notna()]
+        mark = new.merge(f["option_marks"], on="instrument_id")
+        edges.append((np.sign(mark["quantity"]) * (mark["price"] - mark["trade_price"]) / mark["price"]).mean())
+    assert np.mean(edges) > 0

@@ -202,3 +202,52 @@ def test_hostile_book_name_stays_text_in_the_browser(visit: Any, night: tuple[An
     index_seen = visit(index)
     _assert_clean(index_seen, index)
     assert index_seen.page.get_by_role("link", name=book).count() == 1
+
+
+@pytest.fixture(scope="module")
+def demo_index(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A short demo (ten business days of the packaged desk) with its last night's pages."""
+    from attribution.demo.run import run_demo
+    root = tmp_path_factory.mktemp("demo-browser")
+    assert run_demo(root / "demo", days=10, echo=lambda _: None) == 0
+    (index,) = (root / "demo" / "reports").glob("*/index.html")
+    return index
+
+
+def _links(seen: Visit) -> list[str]:
+    return seen.page.eval_on_selector_all("a[href]", "links => links.map(a => a.getAttribute('href'))")
+
+
+def _follow_every_link(seen: Visit, path: Path) -> None:
+    """Every link of the page names a file of the night's folder that opens in the browser without a request
+    leaving it (the context aborts anything but file:// and records every request)."""
+    links = _links(seen)
+    assert links, f"{path.name} has no link"
+    for href in links:
+        assert "://" not in href and not href.startswith(("/", "#")), href
+        target = path.parent / href
+        assert target.is_file(), f"{path.name}: link {href} does not resolve"
+        response = seen.page.goto(target.resolve().as_uri(), wait_until="load")
+        assert response is not None and response.ok, href
+    assert all(url.startswith(path.parent.resolve().as_uri()) for url in seen.requests), seen.requests
+    assert seen.console_errors == [] and seen.page_errors == [] and seen.dialogs == []
+
+
+def test_demo_index_desk_and_book_pages_open_and_every_link_resolves(visit: Any, demo_index: Path) -> None:
+    """The demo's index, a desk page and a book page load clean (no script, no request but the page) and every
+    link on each opens a page of the same night, with no request leaving the folder."""
+    seen = visit(demo_index)
+    _assert_clean(seen, demo_index)
+    links = _links(seen)
+    desk = demo_index.parent / next(h for h in links if h.startswith("desk-"))
+    book = demo_index.parent / next(h for h in links if h.startswith("book-"))
+    assert seen.page.locator("#book-table tbody.desk").count() >= 2   # the demo's books sit on several desks
+    _follow_every_link(seen, demo_index)
+    for path in (desk, book):
+        page = visit(path)
+        _assert_clean(page, path)
+        _follow_every_link(page, path)
+    assert visit(desk).page.locator("#book-table tbody tr[data-book-file]").count() >= 1
+    book_page = visit(book).page
+    for section in ("to-date-table", "strategy-table", "vol-parts-table"):
+        assert book_page.locator(f"#{section}").count() == 1, section

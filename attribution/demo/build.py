@@ -56,11 +56,13 @@ from attribution.demo.market import (
     IntArray,
     ListedInstruments,
     MarketPaths,
+    VarianceClock,
     list_instruments,
     nearest_strike,
     series_key,
     simulate_market,
     smile_vol,
+    variance_clock,
     zero_rate,
 )
 from attribution.demo.nights import Night, PlantedFault, Pool, Trades
@@ -68,7 +70,10 @@ from attribution.loading import CONTRACT_SCHEMAS, CONTRACT_SCHEMAS_V2
 from attribution.pricing import bsm_greeks, bsm_price
 
 DEFAULT_START = dt.date(2025, 11, 3)
-SCHEMAS: dict[str, pa.Schema] = {k: v for k, v in CONTRACT_SCHEMAS.items() if k != "books"}  # no desks yet
+# The contract's files; positions carry the optional strategy column (contract version 2).
+SCHEMAS: dict[str, pa.Schema] = {**CONTRACT_SCHEMAS,
+                                 "positions": CONTRACT_SCHEMAS["positions"].append(pa.field("strategy", pa.string()))}
+STRATEGIES = ("outright", "short straddle", "short strangle", "delta-neutral pair")
 FAULT_KINDS = ("stale_mark", "fat_finger_mark", "missing_mark", "off_smile_mark", "smile_arbitrage_mark",
                "noisy_marks")
 
@@ -114,9 +119,14 @@ class DemoSummary:
 
 
 def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments,
-           dividends: pd.DataFrame, split: FloatArray) -> tuple[Night, Pool]:
-    """Clean marks of every live instrument tonight (on the escrowed spot, strikes adjusted for the split by
-    ``split``, per instrument), and the pool open for new trades."""
+           dividends: pd.DataFrame, split: FloatArray, clock: VarianceClock,
+           rng: np.random.Generator) -> tuple[Night, Pool]:
+    """The desk's close of every live instrument tonight (on the escrowed spot, strikes adjusted for the split by
+    ``split``, per instrument), and the pool open for new trades (at clean prices).
+
+    The desk prices on its variance clock: the smile vol over the weighted time to expiry, quoted as the
+    ACT/365F vol that gives the same price (``implied_vol``). Its close then carries a shared error of the
+    time value per underlying and a small one per option, inside the no-arbitrage bounds."""
     day = market.dates[d]
     live = np.flatnonzero(store.expiry >= day)
     und, strike, is_call = store.und[live], store.strike[live] / split[live], store.is_call[live]
@@ -130,8 +140,10 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments
     for c in range(len(codes)):
         rate[ccy == c] = zero_rate(market.zero_rates[d, c], market.tenors_years, tau[ccy == c])
     p = desk.param
-    vol = smile_vol(market.atm_vol[d, und], p("skew")[und], p("smile_curvature")[und], p("term_slope")[und],
-                    np.log(strike / spot), tau)
+    smile = smile_vol(market.atm_vol[d, und], p("skew")[und], p("smile_curvature")[und], p("term_slope")[und],
+                      np.log(strike / spot), tau)
+    weighted = clock.years(np.full(live.size, market.dates[d]), store.expiry[live])
+    vol = smile * np.sqrt(np.where(tau > 0, weighted / np.where(tau > 0, tau, 1.0), 1.0))
     price = bsm_price(spot, strike, tau, vol, rate, div, is_call)
     sign = np.where(is_call, 1.0, -1.0)
     lower = np.maximum(sign * (spot * np.exp(-div * tau) - strike * np.exp(-rate * tau)), 0.0)
@@ -144,14 +156,18 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments
             spot[a], strike[a], tau[a], vol[a], rate[a], div[a], np.where(is_call[a], 1.0, -1.0))
         lower[a] = np.maximum(lower[a], sign[a] * (spot[a] - strike[a]))
         upper[a] = np.where(is_call[a], spot[a], strike[a])
-    price = np.where(tau > 0, np.maximum(price, lower + desk.min_time_value_share * spot), price)
+    floor = lower + desk.min_time_value_share * spot
+    price = np.where(tau > 0, np.maximum(price, floor), price)
     delta = bsm_greeks(spot, strike, tau, vol, rate, div, is_call).delta
+    noise = desk.marks.common_noise * rng.standard_normal(len(desk.underlyings))[und] \
+        + desk.marks.idio_noise * rng.standard_normal(live.size)
+    close = np.where(tau > 0, np.clip(price + noise * (price - lower), floor, upper * (1 - 1e-9)), price)
     # An American mark far from the money hardly moves with vol (or sits in its exercise region) and does not
     # identify one (README, American exercise): the desk gives its vol; only marks within a standard deviation
     # of the money leave it to the job.
     near = np.abs(np.log(strike / spot)) < vol * np.sqrt(tau)
     null_vol = store.null_vol[live] & ~(american & (exercised | ~near))
-    night = Night(live=live, price=price, vol=np.where(null_vol, np.nan, vol),
+    night = Night(live=live, price=close, vol=np.where(null_vol, np.nan, vol),
                    keep=np.ones(live.size, bool), tau=tau, lower=lower, upper=upper,
                    rows=np.zeros(0, np.int64), quantity=np.zeros(0), spot=spot, rate=rate, div=div,
                    clean_price=price.copy(), delta=delta)
@@ -174,14 +190,16 @@ def _sample(rng: np.random.Generator, pool: Pool, mask: NDArray[np.bool_], n: in
 
 
 def _pairs(rng: np.random.Generator, pool: Pool, style: str, mask: NDArray[np.bool_], lots: FloatArray,
-           side: FloatArray) -> tuple[IntArray, FloatArray]:
-    """Two-leg packages, legs interleaved: short straddles/strangles, or pairs whose deltas offset."""
+           side: FloatArray) -> tuple[IntArray, FloatArray, IntArray]:
+    """Two-leg packages, legs interleaved: short straddles/strangles, or pairs whose deltas offset; and each
+    leg's strategy (index into STRATEGIES)."""
     if style == "short_vol":
         anchor = _sample(rng, pool, mask & ~pool.is_call & (pool.log_strike <= np.log(pool.spot * 1.02)), lots.size)
         straddle = rng.random(anchor.size) < 0.5
         target = np.where(straddle, pool.log_strike[anchor], 2 * np.log(pool.spot[anchor]) - pool.log_strike[anchor])
         partner = nearest_strike(pool.series, pool.log_strike, pool.series[anchor] + 1, target)
         q_anchor, q_partner = -lots[: anchor.size], -lots[: anchor.size]
+        label = np.where(straddle, 1, 2)
     else:
         anchor = _sample(rng, pool, mask, lots.size)
         other = nearest_strike(pool.series, pool.log_strike, pool.series[anchor] ^ 1, pool.log_strike[anchor])
@@ -195,9 +213,10 @@ def _pairs(rng: np.random.Generator, pool: Pool, style: str, mask: NDArray[np.bo
         opposite = np.where(pool.is_call[partner] == pool.is_call[anchor], -1.0, 1.0)
         q_anchor = side[: anchor.size] * lots[: anchor.size]
         q_partner = side[: anchor.size] * opposite * np.maximum(1.0, np.round(lots[: anchor.size] * ratio))
+        label = np.full(anchor.size, 3)
     ok = partner >= 0
     return (np.stack([anchor[ok], partner[ok]], axis=1).ravel(),
-            np.stack([q_anchor[ok], q_partner[ok]], axis=1).ravel())
+            np.stack([q_anchor[ok], q_partner[ok]], axis=1).ravel(), np.repeat(label[ok], 2))
 
 
 def _open(rng: np.random.Generator, desk: DeskSpec, b: int, pool: Pool, n: int, trades: Trades,
@@ -212,10 +231,12 @@ def _open(rng: np.random.Generator, desk: DeskSpec, b: int, pool: Pool, n: int, 
     if book.style == "outright":
         legs = _sample(rng, pool, mask, n_packages)
         quantity, per_package = (side * lots)[: legs.size], 1
+        strategy = np.zeros(legs.size, np.int64)
     else:
-        legs, quantity = _pairs(rng, pool, book.style, mask, lots, side)
+        legs, quantity, strategy = _pairs(rng, pool, book.style, mask, lots, side)
         per_package = 2
-    spread = np.sign(quantity) * rng.uniform(0.0, desk.trading.half_spread_max, legs.size)
+    earned = np.where(rng.random(legs.size) < desk.trading.spread_win_share, -1.0, 1.0)
+    spread = earned * np.sign(quantity) * rng.uniform(0.0, desk.trading.half_spread_max, legs.size)
     price = np.where(rng.random(legs.size) < unpriced_share, np.nan, pool.price[legs] * (1.0 + spread))
     base = trades.book.size
     trades.book = np.concatenate([trades.book, np.full(legs.size, b)])
@@ -224,6 +245,7 @@ def _open(rng: np.random.Generator, desk: DeskSpec, b: int, pool: Pool, n: int, 
     trades.trade_date = np.concatenate([trades.trade_date, trade_date[: legs.size]])
     trades.trade_price = np.concatenate([trades.trade_price, price])
     trades.package = np.concatenate([trades.package, base + np.arange(legs.size) // per_package * per_package])
+    trades.strategy = np.concatenate([trades.strategy, strategy])
     trades.live = np.concatenate([trades.live, base + np.arange(legs.size)])
 
 
@@ -326,8 +348,10 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
     booked = pa.Table.from_arrays([
         pa.array(trade_ids, pa.string()), pa.array(np.array([b.name for b in desk.books])[trades.book], pa.string()),
         instrument_id.take(pa.array(trades.instrument)), pa.array(trades.trade_date, pa.date32()),
-        pa.array(trades.trade_price, pa.float64(), mask=np.isnan(trades.trade_price))],
-        names=["trade_id", "book", "instrument_id", "trade_date", "trade_price"])
+        pa.array(trades.trade_price, pa.float64(), mask=np.isnan(trades.trade_price)),
+        pa.array(np.array(STRATEGIES, dtype=object)[trades.strategy], pa.string())],
+        names=["trade_id", "book", "instrument_id", "trade_date", "trade_price", "strategy"])
+    books = [pa.array([b.name for b in desk.books], pa.string()), pa.array([b.desk for b in desk.books], pa.string())]
     n_tenor = market.tenors_years.size
     actions = schedule.actions(names)
     for d, night in enumerate(nights):
@@ -335,14 +359,16 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
         folder.mkdir(exist_ok=True)
         held = booked.take(pa.array(night.rows))
         options = pa.Table.from_arrays([held["trade_id"], held["book"], held["instrument_id"], pa.array(night.quantity),
-                                        held["trade_date"], held["trade_price"]], schema=SCHEMAS["positions"])
+                                        held["trade_date"], held["trade_price"], held["strategy"]],
+                                       schema=SCHEMAS["positions"])
         split = _split(schedule, store, before_split, market.dates[d])[night.live]
         options_listed = pa.Table.from_arrays(_terms(instruments.take(pa.array(night.live)), split),
                                               schema=instruments.schema)
         at = hedge_instruments.schema.get_field_index("multiplier")
         hedge_listed = hedge_instruments.set_column(at, "multiplier", pa.array(hedges.multipliers[d], pa.float64()))
         listed = pa.concat_tables([options_listed, hedge_listed])
-        events = {"positions": pa.concat_tables([options, pa.Table.from_pydict(hedges.positions[d],
+        hedge_rows = {**hedges.positions[d], "strategy": ["delta hedge"] * len(hedges.positions[d]["trade_id"])}
+        events = {"positions": pa.concat_tables([options, pa.Table.from_pydict(hedge_rows,
                                                                                 schema=SCHEMAS["positions"])]),
                   "instruments": listed,
                   "future_marks": pa.Table.from_pydict(hedges.future_marks[d], schema=SCHEMAS["future_marks"])}
@@ -361,13 +387,14 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
             "fx_rates": [pa.array(codes, pa.string()), pa.array(market.fx_to_reporting[d])],
             "dividends": schedule.columns(market.dates[d], names),
             "corporate_actions": actions,
+            "books": books,
         }
         for name, columns in tables.items():
             pq.write_table(pa.Table.from_arrays(columns, schema=SCHEMAS[name]), folder / f"{name}.parquet")
 
 
 def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, business_days: int = 261,
-               positions_target: int = 5000, definition: Path | None = None) -> DemoSummary:
+               positions_target: int = 2000, definition: Path | None = None) -> DemoSummary:
     """Write the demo desk's nightly input folders for ``business_days`` business days from ``start``."""
     desk = load_desk(definition)
     if business_days < 5:
@@ -391,6 +418,7 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
     weights = np.array([b.weight for b in desk.books])
     targets = np.ceil(positions_target * weights / weights.sum()).astype(np.int64)
     store, trades, nights = ListedInstruments(), Trades(), []
+    clock = variance_clock(desk, dates[0], expiries[-1] + 800)
     before_split = 0  # instruments listed before the split day: their strikes and multipliers are adjusted
     every_dividend = schedule.frame(dates[0] - np.timedelta64(1, "D"), np.array(names))
     for d in range(dates.size):
@@ -401,7 +429,8 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
             store.strike = store.strike / split  # listed in tonight's units, so no strike is listed twice
             list_instruments(desk, market, d, store, expiries, clean, list_rng)
             store.strike[: split.size] *= split
-        night, pool = _marks(desk, market, d, store, every_dividend, _split(schedule, store, before_split, dates[d]))
+        night, pool = _marks(desk, market, d, store, every_dividend, _split(schedule, store, before_split, dates[d]),
+                             clock, fault_rng)
         _trade(trade_rng, desk, d, market, store, trades, pool, targets)
         night.rows, night.quantity = trades.live.copy(), trades.quantity[trades.live]
         nights.append(night)

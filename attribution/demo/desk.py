@@ -72,6 +72,7 @@ class BookSpec:
     """A book: what it trades, how (``style``) and how its marks behave (``marks``)."""
 
     name: str
+    desk: str
     description: str
     style: str
     marks: str
@@ -91,11 +92,23 @@ class TradingSpec:
     unpriced_share: float
     min_days_to_expiry_new: int
     half_spread_max: float
+    spread_win_share: float
     null_vol_share: float
     listing_every_days: int
     monthly_expiries: int
     quarterly_horizon_days: int
     strike_grid_sd: tuple[float, ...]
+
+
+@dataclass(frozen=True, slots=True)
+class MarkSpec:
+    """How the desk's close differs from the job's model (units in demo_desk.toml, [marks])."""
+
+    common_noise: float
+    idio_noise: float
+    weekend_weight: float
+    event_weight: float
+    events: tuple[str, ...]
 
 
 @dataclass(frozen=True, slots=True)
@@ -125,6 +138,7 @@ class DeskSpec:
     underlyings: tuple[UnderlyingSpec, ...]
     books: tuple[BookSpec, ...]
     trading: TradingSpec
+    marks: MarkSpec
     faults: FaultSpec
 
     def param(self, name: str) -> FloatArray:
@@ -220,7 +234,7 @@ def _check(desk: DeskSpec) -> None:
         raise DeskDefinitionError(f"{src}: " + "; ".join(broken))
 
 
-_NESTED = ("source", "currencies", "underlyings", "books", "trading", "faults")
+_NESTED = ("source", "currencies", "underlyings", "books", "trading", "marks", "faults")
 
 
 def _header(data: dict[str, Any], src: str) -> dict[str, Any]:
@@ -251,6 +265,7 @@ def load_desk(path: Path | None = None) -> DeskSpec:
         books=tuple(_make(BookSpec, b, f"{src} [[book]] {b.get('name', f'#{i + 1}')}")
                     for i, b in enumerate(data.get("book", []))),
         trading=_make(TradingSpec, data.get("trading", {}), f"{src} [trading]"),
+        marks=_make(MarkSpec, data.get("marks", {}), f"{src} [marks]"),
         faults=_make(FaultSpec, data.get("faults", {}), f"{src} [faults]"),
         **_header(data.get("desk", {}), src),
     )

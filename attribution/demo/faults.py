@@ -152,20 +152,25 @@ def _plant_mark_fault(desk: DeskSpec, market: MarketPaths, store: ListedInstrume
 def mark_faults(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: Trades, nights: list[Night],
                  ids: NDArray[np.str_], b: int) -> list[PlantedFault]:
     """One stale, one fat-finger and one missing mark, one mark off its smile and one butterfly in the marks,
-    on distinct nights, in positions book ``b`` carries."""
+    in positions book ``b`` carries: the fat-finger and the missing mark (another instrument) on the last night, so
+    that the demo's report shows a breach and rejected positions; the others on distinct nights of their own."""
     n = len(nights)
     used: set[int] = set()
+    fat_finger: set[int] = set()
     out = []
-    for kind, frac in (("stale_mark", 0.35), ("fat_finger_mark", 0.6), ("missing_mark", 0.8),
+    for kind, frac in (("fat_finger_mark", 1.0), ("missing_mark", 1.0), ("stale_mark", 0.35),
                        ("off_smile_mark", 0.45), ("smile_arbitrage_mark", 0.7)):
         order = sorted(range(1, n), key=lambda d, f=frac: abs(d - f * (n - 1)))
-        for d in (d for d in order if d not in used):
+        for d in (d for d in order if d not in used or (kind == "missing_mark" and d == n - 1)):
             both, score = _fault_candidates(desk, market, store, trades, nights, d, b, kind)
+            score = np.where(np.isin(both, list(fat_finger)), 0.0, score) if kind == "missing_mark" else score
             if both.size and score.max() > 0:
                 inst = int(both[np.argmax(score)])
                 detail = _plant_mark_fault(desk, market, store, nights, d, inst, kind)
                 out.append(PlantedFault(market.dates[d].item(), desk.books[b].name, str(ids[inst]), kind, detail))
                 used.add(d)
+                if kind == "fat_finger_mark":
+                    fat_finger.add(inst)
                 break
         else:
             raise RuntimeError(f"book {desk.books[b].name}: no carried position to plant a {kind} in")

@@ -19,7 +19,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from attribution.arrays import FloatArray, IntArray
-from attribution.demo.desk import DAYS_PER_YEAR, DeskSpec
+from attribution.demo.desk import DAYS_PER_YEAR, DeskSpec, desk_holidays
 
 
 @dataclass(frozen=True, slots=True)
@@ -123,6 +123,35 @@ def simulate_market(desk: DeskSpec, dates: NDArray[np.datetime64], rng: np.rando
     return MarketPaths(dates=dates, spot=spot, atm_vol=atm_vol, dividend_yield=dividend_yield,
                        zero_rates=zero_rates, fx_to_reporting=_fx_to_reporting(desk, spot),
                        tenors_years=np.array(desk.curve_tenors_years))
+
+
+@dataclass(frozen=True, slots=True)
+class VarianceClock:
+    """The desk's own clock for option variance: calendar days weighted (weekends and holidays light, event
+    days heavy, other business days the rest, so that a year still counts 365), cumulated from ``base``."""
+
+    base: np.datetime64
+    cumulative: FloatArray   # cumulative[i]: weighted days from base to base + i
+
+    def years(self, start: NDArray[np.datetime64], end: NDArray[np.datetime64]) -> FloatArray:
+        """Weighted years between the dates (the days after ``start`` up to ``end``), as ACT/365F years."""
+        i = (start - self.base).astype(np.int64)
+        j = (end - self.base).astype(np.int64)
+        return (self.cumulative[j] - self.cumulative[i]) / DAYS_PER_YEAR
+
+
+def variance_clock(desk: DeskSpec, first: np.datetime64, last: np.datetime64) -> VarianceClock:
+    """The marks' variance clock from ``first`` to ``last`` (a year after ``first`` sets the business-day weight)."""
+    days = np.arange(first, last + 1)
+    holidays = np.array(desk_holidays(desk, first.item(), last.item()), dtype="datetime64[D]")
+    quiet = ~np.is_busday(days, holidays=holidays)
+    month_day = np.array([text[5:] for text in np.datetime_as_string(days, unit="D")])  # a few thousand days
+    event = np.isin(month_day, desk.marks.events) & ~quiet
+    year = slice(0, min(days.size, 365))
+    fixed = desk.marks.weekend_weight * quiet[year].sum() + desk.marks.event_weight * event[year].sum()
+    business = max((min(days.size, 365) - fixed) / max((~quiet[year] & ~event[year]).sum(), 1), 0.1)
+    weight = np.where(quiet, desk.marks.weekend_weight, np.where(event, desk.marks.event_weight, business))
+    return VarianceClock(first, np.concatenate([[0.0], np.cumsum(weight[1:])]))
 
 
 # ---- listing ---------------------------------------------------------------------------------

@@ -34,6 +34,7 @@ class Trades:
     trade_date: NDArray[np.datetime64] = field(default_factory=lambda: np.zeros(0, "datetime64[D]"))
     trade_price: FloatArray = field(default_factory=lambda: np.zeros(0))
     package: IntArray = field(default_factory=lambda: np.zeros(0, np.int64))
+    strategy: IntArray = field(default_factory=lambda: np.zeros(0, np.int64))  # index into build.STRATEGIES
     live: IntArray = field(default_factory=lambda: np.zeros(0, np.int64))
     counts: dict[str, int] = field(default_factory=lambda: dict.fromkeys(
         ("new", "unpriced", "closed", "expired", "amended"), 0))
