@@ -36,7 +36,7 @@ ql = pytest.importorskip("QuantLib")
 START = dt.date(2025, 12, 8)   # 14 business days: a monthly expiry (12-19) and two holidays (12-25, 12-26)
 DAYS = 14
 TARGET = 600
-FILES = ("positions", "instruments", "option_marks", "underlying_marks", "rate_curves", "fx_rates")
+FILES = ("positions", "instruments", "option_marks", "underlying_marks", "rate_curves", "fx_rates", "books")
 EVENTS = ("dividends", "corporate_actions", "future_marks", "trade_activity", "cash_flows")  # version 2 files
 
 
