@@ -42,7 +42,7 @@ from attribution.schema import (
 )
 from attribution.smile_night import NightSmiles, vol_columns
 from attribution.timebasis import DAYS_PER_YEAR_CALENDAR, TimeBasis
-from attribution.valuation import KIND_NAMES, OPTION, revaluation_shares, settlement_value, value_and_greeks
+from attribution.valuation import FUTURE, KIND_NAMES, OPTION, revaluation_shares, settlement_value, value_and_greeks
 from attribution.vol_time import VarianceClock, clock_terms, decay_per_year
 
 
@@ -248,8 +248,11 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     at_mark = amended & np.isnan(trade_price1)
     if activity is not None:
         amended, at_mark = _activity_lines(cols, activity, status, mult * legs.fx_rate, qty0, qty1)
-    # The prior value revalued at the run date's rate (the terms above are all at the run date's rate).
-    cols["pnl_fx_translation"] = np.where(has_prior, qty0 * mult * np.nan_to_num(price0)
+    # The prior value revalued at the run date's rate (the terms above are all at the run date's rate). A future
+    # is margined daily: its value after the prior night's settlement is 0, so it has nothing to translate (its
+    # settlement price is not a value held in the currency).
+    value0 = np.where(kind == FUTURE, 0.0, np.nan_to_num(price0))
+    cols["pnl_fx_translation"] = np.where(has_prior, qty0 * mult * value0
                                           * (legs.fx_rate - np.nan_to_num(legs.fx_rate_prior)), 0.0)
     cols["pnl_total"] = (cols["pnl_actual"] + np.nan_to_num(cols["pnl_new_trade"]) + cols["pnl_expiry"]
                          + cols["pnl_amendment"] + cols["pnl_fx_translation"] + cols["pnl_cash"])

@@ -278,3 +278,34 @@ def test_hedged_desk_explain_of_each_kind(tmp_path):
     assert_allclose([fwd["price_prior"], fwd["price_run"]], [v0, v1], rtol=1e-12)
     assert_allclose(fwd["pnl_actual"], -10 * 1000 * 1.10 * (v1 - v0), rtol=1e-12)
     assert fwd["pnl_mark_gap"] == 0.0 and fwd["vol_prior"] != fwd["vol_prior"]  # no mark; no vol (NULL)
+
+
+def test_a_margined_future_has_no_fx_translation_and_a_forward_translates_its_value(tmp_path):
+    """A future in EUR: pnl_total = N fx1 (F1 - F0), no translation; the EUR forward: q0 m v0 (fx1 - fx0).
+
+    References: README.md, "FX translation" (a future's value after settlement is 0); plain arithmetic.
+    """
+    from attribution.cli import main
+    from tests.contract_files import read_rows, write_folder
+    from tests.hedged_desk import FUTURE, FUTURE_PRICE, write_hedged_desk
+    from tests.mini_desk import FX, PRIOR, RUN
+
+    root = write_hedged_desk(tmp_path / "data")
+    for day in (PRIOR, RUN):
+        rows = read_rows(root, day, "instruments")
+        for row in rows:
+            if row["instrument_id"] == FUTURE["instrument_id"]:
+                row.update(underlying="QRX", currency="EUR")
+        write_folder(root, day, {"instruments": rows})
+    assert main(["run", "--as-of", RUN.isoformat(), "--data", str(root), "--archive", str(tmp_path / "a.duckdb"),
+                 "--no-reports"]) == 0
+    import duckdb
+    with duckdb.connect(str(tmp_path / "a.duckdb"), read_only=True) as con:
+        rows = con.execute("SELECT * FROM position_pnl").df().set_index("trade_id")
+    fx0, fx1 = FX[PRIOR]["EUR"], FX[RUN]["EUR"]
+    fut = rows.loc["H2"]
+    assert fut["pnl_fx_translation"] == 0.0
+    assert_allclose(fut["pnl_total"], -3 * 50 * fx1 * (FUTURE_PRICE[RUN] - FUTURE_PRICE[PRIOR]), rtol=1e-12)
+    fwd = rows.loc["H3"]
+    assert_allclose(fwd["pnl_fx_translation"], -10 * 1000 * fwd["price_prior"] * (fx1 - fx0), rtol=1e-12)
+    assert_allclose(fwd["pnl_total"], -10 * 1000 * (fwd["price_run"] * fx1 - fwd["price_prior"] * fx0), rtol=1e-12)
