@@ -151,7 +151,7 @@ def waterfall(steps: Sequence[tuple[str, str, float | None, str]], total: tuple[
     key, label, total_value = total
     total_end = 0.0 if is_missing(total_value) else float(total_value)
     domain = _domain([*ends, total_end])
-    left, right, top = 118.0, width - 96.0, 22.0
+    left, right, top = 168.0, width - 96.0, 22.0  # room for the longest label, 'Dividend / foreign rate (FX)'
     to_x = _scale(*domain, left, right)
     rows = [(k, lab, v, note, ends[i], ends[i + 1], False) for i, (k, lab, v, note) in enumerate(steps)]
     rows.append((key, label, total_value, "", 0.0, total_end, True))
