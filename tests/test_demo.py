@@ -322,7 +322,12 @@ def test_planted_faults_are_in_the_data_as_the_summary_says(built: Built) -> Non
     s, desk = built.summary, load_desk()
     kinds = {f.kind for f in s.faults}
     assert kinds == set(FAULT_KINDS) == {"stale_mark", "fat_finger_mark", "missing_mark", "off_smile_mark",
-                                         "smile_arbitrage_mark", "noisy_marks"}
+                                         "smile_arbitrage_mark", "noisy_marks", "booking_error"}
+    (error,) = _faults(built, "booking_error")
+    files = built.nights[error.as_of]  # the row is on no instrument, so it sits with the non-option positions
+    row = files["hedge_positions"].set_index("trade_id").loc[error.instrument_or_trade]
+    listed = set(files["instruments"]["instrument_id"]) | set(files["hedge_instruments"]["instrument_id"])
+    assert error.as_of == s.dates[-1] and row["book"] == error.book and row["instrument_id"] not in listed
     faulty_book = next(b.name for b in desk.books if b.marks == "planted_faults")
     for kind in ("stale_mark", "fat_finger_mark", "missing_mark"):
         (fault,) = _faults(built, kind)
@@ -444,6 +449,7 @@ def test_hedges_keep_books_delta_neutral_and_activity_reconciles(built: Built) -
     for prior, day in zip(days, days[1:], strict=False):
         p0 = pd.concat([built.nights[prior]["positions"], built.nights[prior]["hedge_positions"]]).set_index("trade_id")
         p1 = pd.concat([built.nights[day]["positions"], built.nights[day]["hedge_positions"]]).set_index("trade_id")
+        p1 = p1.drop(index=[f.instrument_or_trade for f in _faults(built, "booking_error")], errors="ignore")
         act = built.nights[day]["trade_activity"]
         moved = act.groupby("trade_id")["quantity"].sum()
         expiry = pd.concat([built.nights[prior]["instruments"], built.nights[prior]["hedge_instruments"]]).set_index(

@@ -66,6 +66,12 @@ def test_planted_faults_are_caught(demo, tmp_path):
             assert ("off smile" if fault.kind == "off_smile_mark" else "smile arbitrage") in rules
             if fault.kind == "off_smile_mark":
                 assert "smile arbitrage" not in rules
+        elif fault.kind == "booking_error":  # a trade on an unlisted instrument: rejected by its trade_id, not lost
+            rejected = con.execute("SELECT count(*) FROM input_exceptions WHERE as_of = ? AND key = ? "
+                                   "AND severity = 'rejected'", [day, fault.instrument_or_trade]).fetchone()[0]
+            assert rejected >= 1
+            assert con.execute("SELECT count(*) FROM position_pnl WHERE as_of = ? AND trade_id = ?",
+                               [day, fault.instrument_or_trade]).fetchone()[0] == 0
         elif fault.kind == "missing_mark":  # rolled forward from the prior date's mark, flagged and warned
             warned = con.execute("SELECT count(*) FROM input_exceptions WHERE as_of = ? AND severity = 'warning' "
                                  "AND rule = 'mark rolled forward' AND key = ?",

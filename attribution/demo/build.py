@@ -16,7 +16,8 @@ vectorised over instruments and trades:
   (single options, short straddles and strangles, or delta-offsetting pairs), a share of them
   booked without a trade_price.
 
-Planted faults (:class:`PlantedFault`): a stale mark, a fat-finger mark and a missing mark in each
+Planted faults (:class:`PlantedFault`): a booking error on the last night (a new trade on a mistyped instrument
+id), and a stale mark, a fat-finger mark and a missing mark in each
 book whose marks are ``planted_faults``, each inside the no-arbitrage bounds where it has a price;
 random errors of the time value (one shared by the book's options that night, plus one per option)
 on ~15 % of nights in each book whose marks are ``noisy``, with ``implied_vol`` left at its clean
@@ -75,7 +76,7 @@ SCHEMAS: dict[str, pa.Schema] = {**CONTRACT_SCHEMAS,
                                  "positions": CONTRACT_SCHEMAS["positions"].append(pa.field("strategy", pa.string()))}
 STRATEGIES = ("outright", "short straddle", "short strangle", "delta-neutral pair")
 FAULT_KINDS = ("stale_mark", "fat_finger_mark", "missing_mark", "off_smile_mark", "smile_arbitrage_mark",
-               "noisy_marks")
+               "noisy_marks", "booking_error")
 
 
 @dataclass(frozen=True, slots=True)
@@ -307,6 +308,25 @@ def _ids(desk: DeskSpec, store: ListedInstruments, trade_count: int) -> tuple[ND
     return ids, np.char.mod(f"{desk.trade_id_prefix}%08d", np.arange(trade_count))
 
 
+def _booking_error(desk: DeskSpec, market: MarketPaths, nights: list[Night], ids: NDArray[np.str_],
+                   trades: Trades) -> tuple[dict[int, dict[str, list[object]]], PlantedFault]:
+    """A new trade of the faulty book on the last night, booked on a mistyped instrument id that no file lists:
+    the job must reject it (and say why) rather than drop it."""
+    b = next(i for i, book in enumerate(desk.books) if book.marks == "planted_faults")
+    d = len(nights) - 1
+    night = nights[d]
+    held = night.rows[trades.book[night.rows] == b]
+    real = str(ids[trades.instrument[held[0]]])
+    wrong = real.replace("-", "", 1)  # the dash after the ticker forgotten
+    trade_id = f"{desk.trade_id_prefix}LATE-0001"
+    day = market.dates[d].item()
+    row: dict[str, list[object]] = {"trade_id": [trade_id], "book": [desk.books[b].name], "instrument_id": [wrong],
+                                    "quantity": [5.0], "trade_date": [day], "trade_price": [None],
+                                    "strategy": ["booking error"]}
+    return {d: row}, PlantedFault(day, desk.books[b].name, trade_id, "booking_error",
+                                  f"new trade booked on {wrong!r}, a mistyped {real!r} that no instruments file lists")
+
+
 def _prepare_root(root: Path, dates: NDArray[np.datetime64]) -> None:
     root.mkdir(parents=True, exist_ok=True)
     wanted = {f"as_of={d}" for d in dates}
@@ -331,7 +351,7 @@ def _terms(instruments: pa.Table, split: FloatArray) -> list[pa.ChunkedArray]:
 
 def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: Trades,
            nights: list[Night], ids: NDArray[np.str_], trade_ids: NDArray[np.str_], schedule: Schedule,
-           before_split: int, hedges: HedgeBook) -> None:
+           before_split: int, hedges: HedgeBook, booked_wrong: dict[int, dict[str, list[object]]]) -> None:
     names = np.array([u.name for u in desk.underlyings])
     codes = np.array([c.code for c in desk.currencies])
     ccy = np.array([list(codes).index(u.currency) for u in desk.underlyings])
@@ -368,8 +388,10 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
         hedge_listed = hedge_instruments.set_column(at, "multiplier", pa.array(hedges.multipliers[d], pa.float64()))
         listed = pa.concat_tables([options_listed, hedge_listed])
         hedge_rows = {**hedges.positions[d], "strategy": ["delta hedge"] * len(hedges.positions[d]["trade_id"])}
-        events = {"positions": pa.concat_tables([options, pa.Table.from_pydict(hedge_rows,
-                                                                                schema=SCHEMAS["positions"])]),
+        parts = [options, pa.Table.from_pydict(hedge_rows, schema=SCHEMAS["positions"])]
+        if d in booked_wrong:
+            parts.append(pa.Table.from_pydict(booked_wrong[d], schema=SCHEMAS["positions"]))
+        events = {"positions": pa.concat_tables(parts),
                   "instruments": listed,
                   "future_marks": pa.Table.from_pydict(hedges.future_marks[d], schema=SCHEMAS["future_marks"])}
         for name, parts in (("trade_activity", hedges.activity[d]), ("cash_flows", hedges.cash_flows[d])):
@@ -445,7 +467,9 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
     names_und = np.arange(len(desk.underlyings))
     hedge_splits = [schedule.split_factor(names_und, np.ones(names_und.size, bool), day) for day in dates]
     hedges = hedge_book(desk, market, store, trades, nights, trade_ids, hedge_rng, splits, hedge_splits)
-    _write(root, desk, market, store, trades, nights, ids, trade_ids, schedule, before_split, hedges)
+    booked_wrong, fault = _booking_error(desk, market, nights, ids, trades)
+    faults.append(fault)
+    _write(root, desk, market, store, trades, nights, ids, trade_ids, schedule, before_split, hedges, booked_wrong)
     counts = np.array([night.rows.size for night in nights])
     first, last_expiry = dates[0].item(), store.expiry.max().item()
     return DemoSummary(
