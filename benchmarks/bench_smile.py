@@ -37,7 +37,8 @@ def _market(as_of: dt.date, und: np.ndarray, expiry: np.ndarray, strike: np.ndar
         expiry=expiry, tau_years=tau, spot=spot, div_yield=np.full(n, 0.01), rate=np.full(n, 0.03),
         price=np.ones(n), vol=vol, marked_vol=vol, vol_solved=np.zeros(n, bool), vol_mismatch=np.zeros(n, bool),
         spot_known=np.ones(n, bool), usable=np.ones(n, bool), reason=np.full(n, "", dtype=object),
-        listed=np.ones(n, bool), terms_rejected=np.zeros(n, bool), american=np.zeros(n, bool))
+        listed=np.ones(n, bool), terms_rejected=np.zeros(n, bool), american=np.zeros(n, bool),
+        kind=np.zeros(n, np.int8))
 
 
 def build(n_smiles: int, strikes: int, seed: int = 1) -> tuple[InstrumentMarket, InstrumentMarket]:
