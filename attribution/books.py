@@ -21,11 +21,17 @@ from attribution.exceptions_log import REJECTED, WARNING
 from attribution.lifecycle import STATUSES
 from attribution.loading import RawNight
 from attribution.market import InstrumentMarket
-from attribution.schema import BOOK_PNL, EXPOSURE_COLUMNS, PNL_COLUMNS, REVAL_COLUMNS, V2_AMOUNT_COLUMNS
+from attribution.schema import (
+    BOOK_PNL,
+    EXPOSURE_COLUMNS,
+    PNL_COLUMNS,
+    REVAL_COLUMNS,
+    UNASSIGNED_DESK,
+    V2_AMOUNT_COLUMNS,
+)
 from attribution.valuation import MarketState, value_and_greeks
 
 NO_BOOK = "(no book)"  # the book shown for a rejected position row without one
-UNASSIGNED_DESK = "(unassigned)"  # the desk of a book that books.parquet does not list
 
 
 def position_books(raw0: RawNight, raw1: RawNight, exceptions: pd.DataFrame) -> pd.DataFrame:

@@ -20,6 +20,8 @@ PNL_COLUMNS: tuple[str, ...] = (
     "pnl_total",
 )
 REVAL_COLUMNS: tuple[str, ...] = tuple(f"reval_{f}" for f in REVAL_FACTORS)
+UNASSIGNED_DESK = "(unassigned)"  # book_pnl.desk of a book that books.parquet does not list
+
 # Amount columns of the data contract's version 2. They stand after every version-1 column of
 # ``position_pnl`` and ``book_pnl``, so an archive written before them gains them at the end
 # (``ALTER TABLE ... ADD COLUMN``, see :func:`attribution.archive.connect`) and keeps its rows.

@@ -36,7 +36,7 @@ from attribution.report.queries import (
     NightFrames,
 )
 from attribution.report.settings import NightSettings
-from attribution.schema import BOOK_PNL, REVAL_COLUMNS, TAYLOR_TERMS
+from attribution.schema import BOOK_PNL, REVAL_COLUMNS, TAYLOR_TERMS, UNASSIGNED_DESK
 from attribution.timebasis import TimeBasis
 
 _LIMIT_RANK = {"breach": 0, "watch": 1}
@@ -46,7 +46,6 @@ _ZONE_WORDS = {"green": ("ok", "green zone: explained and actual P&L agree"),
                "amber": ("watch", "amber zone: agreement is weakening"),
                "red": ("alert", "red zone: explained and actual P&L disagree")}
 T = TypeVar("T")
-UNASSIGNED_DESK = "(unassigned)"
 NO_STRATEGY = "(no strategy label)"
 # The rows of the night / month-to-date / year-to-date tables: (column, label).
 TO_DATE_ROWS: tuple[tuple[str, str], ...] = (
