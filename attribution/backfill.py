@@ -8,6 +8,7 @@ from collections.abc import Callable
 
 from attribution.config import JobConfig
 from attribution.console import ProgressLine, summary
+from attribution.date_cache import DateCache
 from attribution.engine import EXIT_FINDINGS, EXIT_OK, NightOutcome, open_archive
 from attribution.loading import InputFileError, available_dates
 from attribution.runner import cluster, run_night
@@ -30,12 +31,14 @@ def backfill(config: JobConfig, start: dt.date, end: dt.date, reports_last: int 
     progress = ProgressLine(len(nights))
     outcomes: list[NightOutcome] = []
     # The archive is held for the whole range (no other run slips in between nights), and with
-    # engine = "dask" one cluster serves every night.
+    # engine = "dask" one cluster serves every night. Each date's reading, row rules and market state
+    # serve both nights that use it (as run date, then as the next night's prior): one cache per range.
+    shared = DateCache()
     with open_archive(config) as session, cluster(config) as client:
         for k, night in enumerate(nights):
             with_reports = config.write_reports and (reports_last < 0 or k >= len(nights) - reports_last)
             outcomes.append(run_night(dataclasses.replace(config, write_reports=with_reports), night,
-                                      session=session, client=client))
+                                      session=session, client=client, cache=shared))
             progress.step(str(night))
     progress.close()
     last = outcomes[-1]

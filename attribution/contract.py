@@ -9,6 +9,7 @@ a price outside its no-arbitrage bounds) live in :mod:`attribution.market` and
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -392,27 +393,37 @@ def clean_night(raw: RawNight, log: ExceptionLog, checks: CheckSettings, reporti
     The files of the run date's events (trade_activity, cash_flows, official_pnl) are checked only
     when ``run_date``: the prior date's were its own night's.
     """
+    held = clean_holdings(raw, log, checks, reporting_currency)
+    return with_events(held, log) if run_date else held
+
+
+def clean_holdings(raw: RawNight, log: ExceptionLog, checks: CheckSettings, reporting_currency: str) -> CleanNight:
+    """The row rules of the files that describe the date's holdings and market (every file but the
+    run date's events, which are left empty): the same whether the date is a night's prior or run date,
+    so a backfill checks them once per date (:mod:`attribution.date_cache`)."""
     positions, rejected = _positions(raw, log, checks)
     dividends, broken_schedules = _dividends(raw, log)
-    events = raw if run_date else RawNight(raw.as_of, raw.folder, {}, {})
-    return CleanNight(
-        raw=raw,
-        positions=positions,
-        instruments=_instruments(raw, log),
-        marks=_marks(raw, log, checks),
-        underlyings=_underlyings(raw, log, checks),
-        curves=_curves(raw, log, checks),
-        fx=_fx(raw, log, reporting_currency),
-        rejected_trades=rejected,
-        desks=_desks(raw, log),
-        dividends=dividends,
-        broken_schedules=broken_schedules,
-        corporate_actions=_corporate_actions(raw, log),
-        future_marks=_future_marks(raw, log),
-        activity=activity_rows(events, log),
-        cash_flows=_cash_flows(events, log),
-        official=_official_pnl(events, log),
-    )
+    instruments = _instruments(raw, log)
+    marks = _marks(raw, log, checks)
+    underlyings = _underlyings(raw, log, checks)
+    curves = _curves(raw, log, checks)
+    fx = _fx(raw, log, reporting_currency)
+    desks = _desks(raw, log)
+    corporate = _corporate_actions(raw, log)
+    future_marks = _future_marks(raw, log)
+    none = RawNight(raw.as_of, raw.folder, {}, {})
+    return CleanNight(raw=raw, positions=positions, instruments=instruments, marks=marks, underlyings=underlyings,
+                      curves=curves, fx=fx, rejected_trades=rejected, desks=desks, dividends=dividends,
+                      broken_schedules=broken_schedules, corporate_actions=corporate, future_marks=future_marks,
+                      activity=activity_rows(none, log), cash_flows=_cash_flows(none, log),
+                      official=_official_pnl(none, log))
+
+
+def with_events(held: CleanNight, log: ExceptionLog) -> CleanNight:
+    """``held`` with the run date's event files checked (trade_activity, cash_flows, official_pnl)."""
+    raw = held.raw
+    return dataclasses.replace(held, activity=activity_rows(raw, log), cash_flows=_cash_flows(raw, log),
+                               official=_official_pnl(raw, log))
 
 
 EARLIEST_TRADE_DATE = np.datetime64("1900-01-01", "D")  # before this a trade_date is a placeholder, not a booking

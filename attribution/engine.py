@@ -43,15 +43,16 @@ from attribution.books import (
     rejected_size,
 )
 from attribution.config import ConfigError, JobConfig
-from attribution.contract import CleanNight, clean_night, trade_date_warnings
+from attribution.contract import CleanNight, clean_night, trade_date_warnings, with_events
 from attribution.controls import BREACH
 from attribution.corporate_actions import restate_prior
+from attribution.date_cache import DateCache
 from attribution.dividends import going_ex, schedule_frame
 from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
 from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.lifecycle import Legs, match_legs
-from attribution.loading import folder_for, prior_date, read_night
-from attribution.mark_roll import roll_marks
+from attribution.loading import folder_for, folder_stamp, prior_date, read_night
+from attribution.mark_roll import roll_dates, roll_marks
 from attribution.market import InstrumentMarket, build_market, flag_stale_marks, instrument_terms
 from attribution.night import corporate_flags, dividend_income, position_rows, reject_non_finite, stale_flags
 from attribution.smile_night import check_smiles, night_smiles
@@ -185,34 +186,60 @@ def _official(frame: pd.DataFrame, exceptions: pd.DataFrame, clean1: CleanNight,
     return frame, pd.concat([exceptions, extra], ignore_index=True) if len(exceptions) else extra
 
 
+def _market(config: JobConfig, basis: TimeBasis, clean: CleanNight, terms: pd.DataFrame, log: ExceptionLog,
+            shared: DateCache | None) -> InstrumentMarket:
+    """The date's market state with its missing marks rolled forward (shared across a backfill's nights)."""
+    marks_file = clean.raw.path("option_marks.parquet")
+
+    def build() -> InstrumentMarket:
+        market = build_market(clean, terms, basis, config.checks, log, config.american_precision)
+        return roll_marks(market, terms, config, basis, marks_file, log)
+
+    if shared is None:
+        return build()
+    as_of = clean.raw.as_of
+    sources = tuple((d, folder_stamp(config.data_root, d))
+                    for d in roll_dates(config.data_root, as_of, basis, config.checks.mark_roll_days))
+    key = (basis, config.checks, config.american_precision, config.reporting_currency, config.data_root, sources)
+    return shared.market(clean, terms, key, log, build)
+
+
 def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
                   progress: Progress | None = None, books: frozenset[str] | None = None,
-                  keep_null_books: bool = True) -> PreparedNight:
+                  keep_null_books: bool = True, cache: DateCache | None = None) -> PreparedNight:
     """Read, validate, price and explain one night; nothing is written.
 
     ``books`` limits the night to the positions of those books (plus those without a book when
     ``keep_null_books``): one part of a night split over a cluster (:mod:`attribution.dask_engine`).
     Every other file is read and checked whole. None takes every position.
+    ``cache``: a backfill's :class:`~attribution.date_cache.DateCache`; a date's reading, row rules
+    and market state computed for the previous night are reused where they are the same work.
     """
     watch = Stopwatch(progress)
     prior_as_of = resolve_prior(config, as_of, prior)
-    raw0 = read_night(config.data_root, prior_as_of, books, keep_null_books)
-    raw1 = read_night(config.data_root, as_of, books, keep_null_books)
+    shared = cache if books is None else None  # a part of a night (one group of books) is never shared
+    if shared is None:
+        raw0 = read_night(config.data_root, prior_as_of, books, keep_null_books)
+        raw1 = read_night(config.data_root, as_of, books, keep_null_books)
+    else:
+        raw0, raw1 = shared.read(config.data_root, prior_as_of), shared.read(config.data_root, as_of)
     watch.lap("read")
     log = ExceptionLog(as_of)
     basis = TimeBasis(config.time_basis, config.holidays)
     if prior is None:
         warn_missing_days(config, basis, prior_as_of, as_of, log)
-    clean0 = clean_night(raw0, log, config.checks, config.reporting_currency, run_date=False)
-    clean1 = clean_night(raw1, log, config.checks, config.reporting_currency)
+    if shared is None:
+        clean0 = clean_night(raw0, log, config.checks, config.reporting_currency, run_date=False)
+        clean1 = clean_night(raw1, log, config.checks, config.reporting_currency)
+    else:
+        clean0 = shared.holdings(raw0, log, config.checks, config.reporting_currency)
+        clean1 = with_events(shared.holdings(raw1, log, config.checks, config.reporting_currency), log)
     clean0, restated = restate_prior(clean0, clean1, log)  # a split tonight: the prior date in new units
     trade_date_warnings(clean1, log)
     watch.lap("validate")
     terms0, terms1 = instrument_terms(clean0, clean1), instrument_terms(clean1, clean0)
-    market0 = roll_marks(build_market(clean0, terms0, basis, config.checks, log, config.american_precision), terms0,
-                         config, basis, raw0.path("option_marks.parquet"), log)
-    market1 = roll_marks(build_market(clean1, terms1, basis, config.checks, log, config.american_precision), terms1,
-                         config, basis, raw1.path("option_marks.parquet"), log)
+    market0 = _market(config, basis, clean0, terms0, log, shared)
+    market1 = _market(config, basis, clean1, terms1, log, shared)
     stale = flag_stale_marks(market0, market1, config.checks.stale_spot_move,
                              raw1.path("option_marks.parquet"), log)
     legs = match_legs(clean0, clean1, market0, market1, log)

@@ -42,6 +42,18 @@ class ExceptionLog:
             "keyless": np.broadcast_to(np.asarray(keyless, dtype=bool), key_array.shape),
         }))
 
+    def mark(self) -> int:
+        """A place in the ledger, for :meth:`since`."""
+        return len(self._parts)
+
+    def since(self, mark: int) -> tuple[pd.DataFrame, ...]:
+        """The rows added after ``mark`` (blocks to :meth:`extend` another ledger with)."""
+        return tuple(self._parts[mark:])
+
+    def extend(self, parts: tuple[pd.DataFrame, ...]) -> None:
+        """Add rows taken with :meth:`since` from a ledger of the same date's files, in their order."""
+        self._parts.extend(parts)
+
     def frame(self, keyless: bool = False) -> pd.DataFrame:
         """All rows so far, with ``as_of``, in the order they were found (and the ``keyless`` flag if asked)."""
         columns = ["as_of", "file", "key", "rule", "detail", "severity", *(["keyless"] if keyless else [])]

@@ -214,6 +214,21 @@ def read_file(folder: Path, file: str, books: frozenset[str] | None = None,
     return _to_frame(path, table.take(pa.array(rows, type=pa.int64())), columns, pd.Index(rows)), digest
 
 
+def folder_stamp(data_root: Path, as_of: dt.date) -> tuple[tuple[str, int, int, int], ...]:
+    """Identity of one date's files as the file system sees them: (file, size, modification time in
+    nanoseconds, inode) of each contract file present. A file rewritten, replaced, added or removed
+    changes it (a backfill reuses a date's work only while it holds, see :mod:`attribution.date_cache`)."""
+    folder = folder_for(data_root, as_of)
+    stamp = []
+    for file in FILE_COLUMNS:
+        try:
+            st = (folder / file).stat()
+        except OSError:
+            continue
+        stamp.append((file, st.st_size, st.st_mtime_ns, st.st_ino))
+    return tuple(stamp)
+
+
 def read_night(data_root: Path, as_of: dt.date, books: frozenset[str] | None = None,
                keep_null_books: bool = True) -> RawNight:
     """Every file of one date; raises :class:`InputFileError` on the first unusable file.

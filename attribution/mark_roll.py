@@ -41,7 +41,7 @@ def roll_marks(market: InstrumentMarket, terms: pd.DataFrame, config: JobConfig,
         return market
     vol = market.vol.copy()
     source = np.full(len(market.ids), None, dtype=object)
-    for day in _earlier_dates(data_root, as_of, basis, checks.mark_roll_days):
+    for day in roll_dates(data_root, as_of, basis, checks.mark_roll_days):
         need = wanted & (source == None)  # noqa: E711 - element-wise test on an object array
         if not need.any():
             break
@@ -82,7 +82,7 @@ def roll_marks(market: InstrumentMarket, terms: pd.DataFrame, config: JobConfig,
                                usable=reason == "", reason=reason, mark_rolled=rolled)
 
 
-def _earlier_dates(data_root: object, as_of: object, basis: TimeBasis, max_days: int) -> list:
+def roll_dates(data_root: object, as_of: object, basis: TimeBasis, max_days: int) -> list:
     """Folders before ``as_of`` within ``max_days`` business days of it, latest first."""
     holidays = np.array(basis.holidays, dtype="datetime64[D]")
     earlier = [d for d in available_dates(data_root) if d < as_of]  # type: ignore[arg-type, operator]

@@ -14,20 +14,22 @@ import functools
 from typing import Any
 
 from attribution.config import JobConfig
+from attribution.date_cache import DateCache
 from attribution.engine import ArchiveSession, NightOutcome, Prepare, Progress, prepare_night
 from attribution.engine import run_night as run_prepared_night
 
 __all__ = ["cluster", "preparer", "run_night"]
 
 
-def preparer(config: JobConfig, client: Any = None) -> Prepare:
+def preparer(config: JobConfig, client: Any = None, cache: DateCache | None = None) -> Prepare:
     """The step that computes a night's tables under ``config.engine``.
 
     ``client``: with ``engine = "dask"``, a Dask client already connected (the caller keeps it open);
     None connects to ``config.scheduler`` or starts a local cluster for each night.
+    ``cache``: a backfill's shared work on its dates (the local engine; see :mod:`attribution.date_cache`).
     """
     if config.engine != "dask":
-        return prepare_night
+        return prepare_night if cache is None else functools.partial(prepare_night, cache=cache)
     from attribution.dask_engine import prepare_night_dask  # dask is an optional extra
     return functools.partial(prepare_night_dask, client=client)
 
@@ -42,10 +44,10 @@ def cluster(config: JobConfig) -> contextlib.AbstractContextManager[Any]:
 
 def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
               progress: Progress | None = None, session: ArchiveSession | None = None,
-              client: Any = None) -> NightOutcome:
+              client: Any = None, cache: DateCache | None = None) -> NightOutcome:
     """Run one night into the archive (and reports) on the job's engine; see :func:`attribution.engine.run_night`.
 
     ``client``: with ``engine = "dask"``, a Dask client already connected (a backfill keeps one,
-    see :func:`cluster`); None connects for this night.
+    see :func:`cluster`); None connects for this night. ``cache``: see :func:`preparer`.
     """
-    return run_prepared_night(config, as_of, prior, progress, session, preparer(config, client))
+    return run_prepared_night(config, as_of, prior, progress, session, preparer(config, client, cache))
