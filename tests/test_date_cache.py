@@ -1,0 +1,102 @@
+"""A backfill's shared work on each date (attribution.date_cache): every night it runs is exactly the night
+a single ``attribution run`` computes (README, "Commands": a backfill reads, checks and prices each date once
+for the two nights that use it, as long as the date's files are unchanged)."""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+from pathlib import Path
+
+import duckdb
+import pandas as pd
+import pytest
+
+from attribution.backfill import backfill
+from attribution.config import JobConfig
+from attribution.date_cache import DateCache
+from attribution.demo import build_demo
+from attribution.engine import PreparedNight, prepare_night
+from attribution.runner import run_night
+from tests.contract_files import put_rows, read_rows
+
+
+@pytest.fixture(scope="module")
+def desk(tmp_path_factory: pytest.TempPathFactory) -> tuple[JobConfig, list[dt.date]]:
+    """The demo desk's first six business days (a weekend inside; its planted faults on the last nights)."""
+    root = tmp_path_factory.mktemp("shared")
+    summary = build_demo(root / "data", business_days=6)
+    config = JobConfig(data_root=root / "data", archive_path=root / "archive.duckdb", reports_dir=root / "reports",
+                       holidays=summary.holidays, write_reports=False)
+    return config, list(summary.dates)
+
+
+def assert_same_night(shared: PreparedNight, fresh: PreparedNight) -> None:
+    """Every table of the night identical, row order included, to the last bit."""
+    for name in ("positions", "books", "exceptions", "dividend_schedule"):
+        pd.testing.assert_frame_equal(getattr(shared, name), getattr(fresh, name), check_exact=True, obj=name)
+    assert (shared.hashes, shared.positions_in, shared.rejected_positions, shared.unaccounted) == \
+        (fresh.hashes, fresh.positions_in, fresh.rejected_positions, fresh.unaccounted)
+
+
+def test_shared_nights_equal_fresh_nights(desk):
+    """Each night of a range computed with the shared cache equals the same night computed alone, and the
+    cache did serve the prior date's read, row rules and market on those nights."""
+    config, dates = desk
+    cache = DateCache()
+    for day in dates[1:]:
+        assert_same_night(prepare_night(config, day, cache=cache), prepare_night(config, day))
+    nights = len(dates) - 1
+    assert cache.reused["read"] == nights - 1
+    assert cache.reused["validate"] == nights - 1
+    assert 1 <= cache.reused["market"] <= nights - 1
+
+
+def test_a_file_rewritten_between_nights_is_read_again(desk, tmp_path):
+    """A date's file rewritten after its night (a corrected mark) is read, checked and priced again as the
+    next night's prior: the next night equals a fresh one on the new file."""
+    config, dates = desk
+    data = tmp_path / "data"
+    for day in dates[:4]:
+        src = config.data_root / f"as_of={day.isoformat()}"
+        (data / src.name).mkdir(parents=True)
+        for f in src.iterdir():
+            (data / src.name / f.name).write_bytes(f.read_bytes())
+    config = dataclasses.replace(config, data_root=data)
+    cache = DateCache()
+    prepare_night(config, dates[1], cache=cache)
+    prepare_night(config, dates[2], cache=cache)
+    rows = read_rows(data, dates[2], "option_marks")
+    rows[0]["price"] = float(rows[0]["price"]) * 1.5  # type: ignore[arg-type]
+    rows[1]["implied_vol"] = None
+    put_rows(data, dates[2], "option_marks", rows)
+    before = dict(cache.reused)
+    shared = prepare_night(config, dates[3], cache=cache)
+    assert cache.reused == before  # nothing of the rewritten date was reused
+    assert_same_night(shared, prepare_night(config, dates[3]))
+
+
+def _tables(path: Path) -> dict[str, pd.DataFrame]:
+    con = duckdb.connect(str(path), read_only=True)
+    try:
+        out = {}
+        for name in ("position_pnl", "book_pnl", "input_exceptions", "dividend_schedule"):
+            frame = con.execute(f"SELECT * FROM {name}").df()  # names from this list, not from input
+            frame = frame.drop(columns=[c for c in frame.columns if c == "run_id"])
+            out[name] = frame.sort_values(list(frame.columns), ignore_index=True, kind="stable")
+        return out
+    finally:
+        con.close()
+
+
+def test_backfill_archive_equals_single_runs(desk, tmp_path):
+    """`attribution backfill` over three nights archives exactly what `attribution run` of each night does."""
+    config, dates = desk
+    filled = dataclasses.replace(config, archive_path=tmp_path / "filled.duckdb")
+    backfill(filled, dates[1], dates[3], reports_last=0, echo=lambda _: None)
+    single = dataclasses.replace(config, archive_path=tmp_path / "single.duckdb")
+    for day in dates[1:4]:
+        run_night(single, day)
+    a, b = _tables(filled.archive_path), _tables(single.archive_path)
+    for name in a:
+        pd.testing.assert_frame_equal(a[name], b[name], check_exact=True, obj=name)
