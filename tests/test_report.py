@@ -15,6 +15,7 @@ import re
 from pathlib import Path
 
 import duckdb
+import numpy as np
 import pandas as pd
 import pytest
 from report_fixtures import AS_OF, PageParser, build_archive, shown_number
@@ -429,6 +430,23 @@ def test_amounts_are_formatted_with_separators_and_minus() -> None:
     sample = [1234567.4, -1234.6, -0.3, 0.0, None, float("nan"), 1e12, -999.5]
     assert charts.format_amounts(sample) == [charts.format_amount(v) for v in sample]
     assert charts.format_compact(-1_250_000) == "-1.25m" and charts.format_compact(250_000) == "250k"
+
+
+def test_vectorised_amount_cells_equal_the_scalar_format() -> None:
+    """amount_cell_rows writes, for every value at once, the text format_amount (Python's format(v, ",.0f")
+    rounding, no negative zero) gives one value at a time: edge cases and a million random magnitudes."""
+    edges = [0.0, -0.0, 0.5, 1.5, -0.5, -2.5, 999.5, -999.4999, 1000.0, 999_999.5, -1_234_567.5, 1e15 - 0.5,
+             -(1e15 - 1.0), 1e15, 1e20, -1e300, float("nan"), float("inf"), float("-inf"), 2.0 ** 52 + 1, 7e-320]
+    rng = np.random.default_rng(7)
+    values = np.concatenate([edges, rng.standard_normal(1_000_000) * 10.0 ** rng.uniform(-3, 16, 1_000_000)])
+    expected = [charts.format_amount(v) for v in values.tolist()]
+    assert charts.format_amount_cells(values) == expected
+    assert charts.format_amount_cells(values[:5], "<td>", "</td>") == [f"<td>{t}</td>" for t in expected[:5]]
+    rows = values[:999_999].reshape(-1, 3)
+    assert charts.amount_cell_rows(rows, "<td>", "</td>")[:50_000] == [
+        "".join(f"<td>{charts.format_amount(v)}</td>" for v in row) for row in rows[:50_000].tolist()]
+    assert charts.amount_cell_rows(np.full((2, 3), np.nan)) == [charts.MISSING * 3] * 2
+    assert charts.amount_cell_rows(np.empty((0, 4))) == []
 
 
 def test_waterfall_layout_runs_from_zero_to_total() -> None:

@@ -42,6 +42,77 @@ def format_amounts(values: Sequence[float | None]) -> list[str]:
     return ["0" if t == "-0" else t for t in texts]
 
 
+_EXACT_BELOW = 1e15  # |rounded value| below this: an exact int64, 15 digits at most
+
+
+def amount_cell_rows(values: Sequence[Sequence[float | None]] | np.ndarray, prefix: str = "",
+                     suffix: str = "") -> list[str]:
+    """Per row of ``values``: ``prefix + format_amount(v) + suffix`` of each value, joined (the tables' hot loop).
+
+    The text is :func:`format_amount`'s (whole units, round half to even on the exact binary value as
+    ``format(v, ",.0f")`` rounds, never ``-0``), built for every value at once: digits and separators
+    are written into a byte matrix one digit place at a time, NUL padding is dropped and the rows are
+    decoded in one piece. NULL, non-finite and huge values take the scalar path. ``prefix`` and
+    ``suffix`` are ASCII markup (``<td>``, ``</td>``), never text to escape.
+    """
+    v = np.asarray(values, dtype=float)
+    if v.ndim != 2:
+        v = v.reshape(len(v), -1)
+    n, columns = v.shape
+    if n == 0:
+        return []
+    cells, long_cells = _amount_bytes(v.ravel(), prefix.encode("ascii"), suffix.encode("ascii"))
+    matrix = np.concatenate([cells.reshape(n, -1), np.full((n, 1), _ROW_END, dtype=np.uint8)], axis=1)
+    texts = matrix.tobytes().translate(None, b"\0").decode("utf-8").split(chr(_ROW_END))[:-1]
+    for row in sorted({i // columns for i in long_cells}):  # a value too long for the matrix: the whole row
+        texts[row] = "".join(prefix + format_amount(float(x)) + suffix for x in v[row].tolist())
+    return texts
+
+
+_ROW_END = 1  # a byte no cell holds
+
+
+def _amount_bytes(v: np.ndarray, head: bytes, tail: bytes) -> tuple[np.ndarray, list[int]]:
+    """The UTF-8 bytes of each cell, NUL-padded (one row per value: head, the number right-aligned in a
+    fixed field, tail), and the values whose text did not fit."""
+    rounded = np.rint(v)
+    fast = np.abs(rounded) < _EXACT_BELOW  # False for NaN and infinities
+    whole = np.abs(np.where(fast, rounded, 0.0)).astype(np.int64)
+    digits = np.ones(v.size, dtype=np.int64)
+    for k in range(1, 15):
+        digits += whole >= 10 ** k
+    most = int(digits.max()) if v.size else 1
+    field_end = len(head) + max(3, 1 + most + (most - 1) // 3)  # the longest number (or MISSING): less padding
+    width = field_end + len(tail)
+    columns = np.zeros((width, v.size), dtype=np.uint8)  # one byte place per row: contiguous writes
+    columns[:len(head)] = np.frombuffer(head, dtype=np.uint8)[:, None]
+    columns[field_end:] = np.frombuffer(tail, dtype=np.uint8)[:, None]
+    rest = whole.astype(np.uint32) if v.size and int(whole.max()) < 2 ** 32 else whole  # faster division
+    for k in range(most):  # the k-th digit from the right, then a separator after every third
+        rest, digit = np.divmod(rest, rest.dtype.type(10))
+        columns[field_end - 1 - k - k // 3] = (48 + digit) * (k < digits)
+        if k % 3 == 2 and k < most - 1:
+            columns[field_end - 2 - k - k // 3] = ord(",") * (digits > k + 1)
+    negative = np.flatnonzero(fast & (rounded < 0))
+    columns[field_end - 1 - (digits + (digits - 1) // 3)[negative], negative] = ord("-")
+    out = np.ascontiguousarray(columns.T)
+    too_long = []
+    for i in np.flatnonzero(~fast).tolist():
+        text = head + format_amount(float(v[i])).encode("utf-8") + tail
+        out[i] = 0
+        if len(text) <= width:
+            out[i, :len(text)] = np.frombuffer(text, dtype=np.uint8)
+        else:
+            too_long.append(i)
+    return out, too_long
+
+
+def format_amount_cells(values: Sequence[float | None] | np.ndarray, prefix: str = "",
+                        suffix: str = "") -> list[str]:
+    """``prefix + format_amount(v) + suffix`` for each value, vectorised (see :func:`amount_cell_rows`)."""
+    return amount_cell_rows(np.asarray(values, dtype=float).reshape(-1, 1), prefix, suffix)
+
+
 def format_percent(share: float | None, decimals: int = 1) -> str:
     """A decimal share as a percentage (0.125 -> ``12.5 %``)."""
     if is_missing(share):

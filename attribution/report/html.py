@@ -8,11 +8,9 @@ import jinja2
 import markupsafe
 
 from attribution.report import charts
-from attribution.report.pages import BookPage, FigureRow, NightView
-from attribution.report.queries import TERM_COLUMNS
+from attribution.report.pages import BookPage, NightView
 
 EXCEPTIONS_SHOWN = 50  # rows listed on a book page; the night's exceptions page lists them all
-_NEW_TRADE_AT = TERM_COLUMNS.index("pnl_new_trade")
 
 
 def _cells(texts: Sequence[str]) -> str:
@@ -26,29 +24,6 @@ def amount_cells(values: Sequence[float | None]) -> markupsafe.Markup:
     sign or the missing-value dash), so it holds nothing to escape.
     """
     return markupsafe.Markup(_cells(charts.format_amounts(values)))
-
-
-def position_cells(values: Sequence[float | None]) -> markupsafe.Markup:
-    """Cells of a position row (POSITION_VALUES): two quantities, then amounts; a NULL day-one P&L is unpriced."""
-    amounts = charts.format_amounts(values[2:])
-    if charts.is_missing(values[2 + _NEW_TRADE_AT]):
-        amounts[_NEW_TRADE_AT] = "unpriced"
-    return markupsafe.Markup(_cells([_format_quantity(v) for v in values[:2]] + amounts))
-
-
-def position_text_cells(row: FigureRow) -> markupsafe.Markup:
-    """The text cells of a position row: trade, instrument, underlying, and status with limit word and flags.
-
-    Every text is escaped here (markupsafe.escape), as the template would; one call per row keeps the
-    pages' hot loop short.
-    """
-    esc = markupsafe.escape
-    instrument, underlying, status, flags, limit = row.cells
-    limit_word = f" &middot; <strong>{esc(limit)}</strong>" if limit and limit != "within" else ""
-    flag_line = f'<br><span class="sub small">{esc(flags.replace(",", ", "))}</span>' if flags else ""
-    return markupsafe.Markup(f'<td class="t">{esc(row.label)}</td><td class="t">{esc(instrument)}</td>'
-                             f'<td class="t">{esc(underlying)}</td>'
-                             f'<td class="t wrap">{esc(status)}{limit_word}{flag_line}</td>')
 
 
 def _format_quantity(value: float | None) -> str:
@@ -69,8 +44,6 @@ def make_environment() -> jinja2.Environment:
     env.filters["raw"] = lambda v: "" if charts.is_missing(v) else repr(float(v))
     env.filters["quantity"] = _format_quantity
     env.filters["amount_cells"] = amount_cells
-    env.filters["position_cells"] = position_cells
-    env.filters["position_text_cells"] = position_text_cells
     env.filters["file_name"] = lambda path: str(path).replace("\\", "/").rsplit("/", 1)[-1]
     env.globals["missing"] = charts.is_missing
     env.globals["exceptions_shown"] = EXCEPTIONS_SHOWN

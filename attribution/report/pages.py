@@ -8,6 +8,8 @@ import re
 from collections.abc import Mapping
 from dataclasses import dataclass
 
+import markupsafe
+
 from attribution.report import charts
 
 _MAX_SLUG = 48
@@ -70,6 +72,24 @@ class DeskSummary:
     residual_ytd: float | None
     official_break: float | None
     to_date: tuple[FigureRow, ...] = ()   # the night, month and year to date per term
+
+
+@dataclass(frozen=True, slots=True)
+class Rows:
+    """Table rows already in HTML (text escaped, numbers formatted; built by :mod:`~attribution.report.tables`)
+    and how many there are: a template places them whole, tests its truth and length."""
+
+    html: markupsafe.Markup
+    count: int
+
+    def __len__(self) -> int:
+        return self.count
+
+    def __html__(self) -> markupsafe.Markup:
+        return self.html
+
+
+NO_ROWS = Rows(markupsafe.Markup(""), 0)
 
 
 @dataclass(frozen=True, slots=True)
@@ -148,28 +168,27 @@ class BookPage:
     waterfall: charts.Waterfall
     methods: tuple[MethodRow, ...]
     method_total: MethodRow
-    underlyings: tuple[FigureRow, ...]
-    exposures: tuple[FigureRow, ...]
-    positions: tuple[FigureRow, ...]
+    underlyings: Rows        # by underlying: positions, TERM_COLUMNS (the unpriced count beside new trades)
+    exposures: Rows          # by underlying: EXPOSURE_COLUMNS
+    positions: Rows          # the top positions by absolute residual
     unpriced: tuple[FigureRow, ...]
     history_lines: charts.LineChart | None
     history_residual: charts.LineChart | None
     quality: Quality | None
     exceptions: tuple[ExceptionRow, ...]
     exception_rules: tuple[tuple[str, str, int], ...]
-    vol_parts: tuple[FigureRow, ...] = ()   # by expiry bucket: label, (positions,), VOL_PART_COLUMNS
-    vol_parts_total: FigureRow | None = None
+    vol_parts: Rows = NO_ROWS   # by expiry bucket: label, positions, VOL_PART_COLUMNS; then the total row
     dividend_schedule: tuple[FigureRow, ...] = ()  # underlying; (currency, next ex-date, count, last ex-date);
     #                                                (next amount, its present value, present value of all)
     ex_dates: tuple[FigureRow, ...] = ()           # underlying; (currency, positions); (amount, delta, dividend
     #                                                term, cash dividends, residual, total)
-    hedging: tuple[FigureRow, ...] = ()        # per underlying: options, hedges, book (queries.HEDGING_VALUES)
+    hedging: Rows = NO_ROWS        # per underlying: options, hedges, book (queries.HEDGING_VALUES)
     hedge_waterfall: charts.Waterfall | None = None  # options, hedges and cash to the total
-    currencies: tuple[FigureRow, ...] = ()  # FX exposure: run-date value per premium currency (CURRENCY_VALUES)
-    to_date: tuple[FigureRow, ...] = ()     # per term: (night, month to date, year to date)
+    currencies: Rows = NO_ROWS  # FX exposure: run-date value per premium currency (CURRENCY_VALUES)
+    to_date: Rows = NO_ROWS     # per term: night, month to date, year to date
     breaches_to_date: tuple[int, int] = (0, 0)   # nights in breach this month, this year
-    strategies: tuple[FigureRow, ...] = ()  # label, (positions,), STRATEGY_COLUMNS
-    exposure_changes: tuple[FigureRow, ...] = ()  # underlying, (), EXPOSURE_CHANGE_COLUMNS
+    strategies: Rows = NO_ROWS  # label, positions, STRATEGY_COLUMNS
+    exposure_changes: Rows = NO_ROWS  # underlying, EXPOSURE_CHANGE_COLUMNS
     previous_as_of: dt.date | None = None   # the archived night the exposures are compared with
 
 

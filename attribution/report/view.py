@@ -6,11 +6,13 @@ import datetime as dt
 from collections.abc import Mapping
 from typing import TypeVar
 
+import markupsafe
 import numpy as np
 import pandas as pd
 
-from attribution.report import charts
+from attribution.report import charts, tables
 from attribution.report.pages import (
+    NO_ROWS,
     BookPage,
     BookSummary,
     Conventions,
@@ -20,6 +22,7 @@ from attribution.report.pages import (
     MethodRow,
     NightView,
     Quality,
+    Rows,
     State,
     file_name_for,
 )
@@ -186,14 +189,12 @@ def _waterfall(f: Mapping[str, float | None], unpriced: int, currency: str) -> c
     return charts.waterfall(steps, ("pnl_total", f"Total P&L ({currency})", f["pnl_total"]), width=620.0)
 
 
-def _hedging(frame: pd.DataFrame,
-             currency: str) -> tuple[dict[str, tuple[FigureRow, ...]], dict[str, charts.Waterfall]]:
+def _hedging(frame: pd.DataFrame, currency: str) -> tuple[dict[str, Rows], dict[str, charts.Waterfall]]:
     """Per book: its hedging rows (options, hedges, book per underlying) and the options / hedges / cash
     waterfall to the book's total (the query's sums over every underlying, whatever is listed)."""
     if not len(frame):
         return {}, {}
-    rows = _by_book(frame, [FigureRow(label, (), values) for label, values in
-                            zip(_texts(frame, "underlying"), _floats(frame, HEDGING_VALUES), strict=True)])
+    rows = tables.hedging_rows(frame, HEDGING_VALUES)
     sums = frame.drop_duplicates("book")[["book", "book_options_pnl", "book_hedges_pnl", "book_cash_pnl"]]
     charts_by_book = {}
     for book, options, hedges, cash in sums.itertuples(index=False):
@@ -253,19 +254,20 @@ def _rule_counts(rows: tuple[ExceptionRow, ...]) -> tuple[tuple[str, str, int], 
     return tuple((severity, rule, n) for (severity, rule), n in sorted(counts.items()))
 
 
-def _vol_parts(frame: pd.DataFrame, buckets: tuple[tuple[float, str], ...]
-               ) -> dict[str, tuple[tuple[FigureRow, ...], FigureRow]]:
-    """Per book: the vol P&L rows by expiry bucket and their total row."""
+def _vol_parts(frame: pd.DataFrame, buckets: tuple[tuple[float, str], ...]) -> dict[str, Rows]:
+    """Per book: the vol P&L rows by expiry bucket, then their total row."""
     if not len(frame):
         return {}
     frame = frame.assign(label=[buckets[int(b)][1] for b in frame["bucket"]])
-    rows = _figure_rows(frame, "label", ("positions",), VOL_PART_COLUMNS)
+    rows = tables.labelled_amounts(frame, "label", "positions", VOL_PART_COLUMNS)
     totals = frame.groupby("book", sort=True)[["positions", *VOL_PART_COLUMNS]].sum(min_count=1)
+    sums = tables.cells(tables.floats(totals, VOL_PART_COLUMNS))
     out = {}
-    for book, book_rows in rows.items():
-        t = totals.loc[book]
-        out[book] = (book_rows, FigureRow("All expiries", (str(int(t["positions"])),),
-                                          tuple(_number(t[c]) for c in VOL_PART_COLUMNS)))
+    for book, positions, amounts in zip(totals.index.tolist(), totals["positions"].tolist(), sums, strict=True):
+        book_rows = rows[str(book)]
+        total = (f'<tr class="sum" id="vol-parts-total"><td class="t">All expiries</td><td>{int(positions)}</td>'
+                 f"{amounts}</tr>\n")
+        out[str(book)] = Rows(book_rows.html + markupsafe.Markup(total), book_rows.count)
     return out
 
 
@@ -297,6 +299,23 @@ def _previous_night(frame: pd.DataFrame | None) -> dt.date | None:
     return pd.Timestamp(frame["previous_as_of"].dropna().iloc[0]).date()
 
 
+def _book_to_date(books: pd.DataFrame, to_date: pd.DataFrame | None) -> dict[str, Rows]:
+    """Per book: each term of TO_DATE_ROWS for the night (the book's row), month and year to date."""
+    if not len(books):
+        return {}
+    names = [_text(b) for b in books["book"].tolist()]
+    periods = pd.DataFrame(index=names)
+    if to_date is not None and len(to_date):
+        keyed = to_date.assign(book=[_text(b) for b in to_date["book"].tolist()])
+        periods = keyed.drop_duplicates("book", keep="last").set_index("book").reindex(names)
+    nan = np.full(len(names), np.nan)
+    values = np.stack([np.column_stack([
+        books[c].to_numpy(dtype=float, na_value=np.nan) if c in books.columns else nan,
+        *(periods[f"{c}_{p}"].to_numpy(dtype=float, na_value=np.nan) if f"{c}_{p}" in periods.columns else nan
+          for p in ("mtd", "ytd"))]) for c, _ in TO_DATE_ROWS], axis=1)
+    return tables.to_date_rows(names, TO_DATE_ROWS, values)
+
+
 def _to_date_rows(night: Mapping[str, float | None], to_date: Mapping[str, object]) -> tuple[FigureRow, ...]:
     """(night, month to date, year to date) of each term of TO_DATE_ROWS."""
     return tuple(FigureRow(label, (column,), (night.get(column), _number(to_date.get(f"{column}_mtd")),
@@ -309,14 +328,16 @@ def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
     quality = _quality(frames.quality)
     exceptions = _exceptions(frames.links)
     history = _history(frames.history)
-    underlyings = _figure_rows(frames.underlyings, "underlying", ("positions", "unpriced"), TERM_COLUMNS)
-    exposures = _figure_rows(frames.underlyings, "underlying", ("positions",), EXPOSURE_COLUMNS)
-    positions = _figure_rows(frames.positions, "trade_id", POSITION_TEXT[1:], POSITION_VALUES)
+    underlyings = tables.underlying_rows(frames.underlyings, TERM_COLUMNS)
+    exposures = tables.labelled_amounts(frames.underlyings, "underlying", None, EXPOSURE_COLUMNS)
+    positions = tables.position_rows(frames.positions, POSITION_TEXT[1:], POSITION_VALUES)
     unpriced = _figure_rows(frames.unpriced, "trade_id", POSITION_TEXT[1:], POSITION_VALUES)
     vol_parts = _vol_parts(frames.vol_parts, frames.buckets)
     to_date = _records(frames.to_date_books, "book")
-    strategies = _figure_rows(_labelled(frames.strategies), "strategy", ("positions",), STRATEGY_COLUMNS)
-    changes = _figure_rows(_empty_if_none(frames.exposure_changes), "underlying", (), EXPOSURE_CHANGE_COLUMNS)
+    strategies = tables.labelled_amounts(_labelled(frames.strategies), "strategy", "positions", STRATEGY_COLUMNS)
+    changes = tables.labelled_amounts(_empty_if_none(frames.exposure_changes), "underlying", None,
+                                      EXPOSURE_CHANGE_COLUMNS)
+    book_to_date = _book_to_date(frames.books, frames.to_date_books)
     previous = _previous_night(frames.exposure_changes)
     schedule = _figure_rows(frames.dividend_schedule, "underlying",
                             ("currency", "next_ex_date", "dividends", "last_ex_date"),
@@ -324,7 +345,7 @@ def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
     ex_dates = _figure_rows(frames.ex_dates, "underlying", ("currency", "positions"),
                             ("amount", "pnl_delta", "pnl_dividend", "cash_dividends", "pnl_residual", "pnl_total"))
     hedging, hedge_waterfalls = _hedging(frames.hedging, settings.reporting_currency)
-    currencies = _figure_rows(frames.currencies, "currency", ("positions",), CURRENCY_VALUES)
+    currencies = tables.currency_rows(frames.currencies, CURRENCY_VALUES)
     numeric = [c for c, kind in BOOK_PNL if kind == "DOUBLE"]
     pages = []
     for record in frames.books.to_dict("records"):
@@ -355,18 +376,18 @@ def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
             limit_text=_limit_text(figures, limit_code, settings.watch_fraction_for(name)),
             waterfall=_waterfall(figures, counts["new_unpriced"], settings.reporting_currency),
             methods=methods, method_total=method_total,
-            underlyings=underlyings.get(name, ()), exposures=exposures.get(name, ()),
-            positions=positions.get(name, ()), unpriced=unpriced.get(name, ()),
+            underlyings=underlyings.get(name, NO_ROWS), exposures=exposures.get(name, NO_ROWS),
+            positions=positions.get(name, NO_ROWS), unpriced=unpriced.get(name, ()),
             history_lines=lines, history_residual=cumulative, quality=q, exceptions=exceptions.get(name, ()),
             exception_rules=_rule_counts(exceptions.get(name, ())),
-            vol_parts=vol_parts.get(name, ((), None))[0], vol_parts_total=vol_parts.get(name, ((), None))[1],
+            vol_parts=vol_parts.get(name, NO_ROWS),
             dividend_schedule=schedule.get(name, ()), ex_dates=ex_dates.get(name, ()),
-            hedging=hedging.get(name, ()), hedge_waterfall=hedge_waterfalls.get(name),
-            currencies=currencies.get(name, ()),
-            to_date=_to_date_rows(figures, to_date.get(name, {})),
+            hedging=hedging.get(name, NO_ROWS), hedge_waterfall=hedge_waterfalls.get(name),
+            currencies=currencies.get(name, NO_ROWS), to_date=book_to_date.get(name, NO_ROWS),
             breaches_to_date=(int(_number(to_date.get(name, {}).get("breaches_mtd")) or 0),
                               int(_number(to_date.get(name, {}).get("breaches_ytd")) or 0)),
-            strategies=strategies.get(name, ()), exposure_changes=changes.get(name, ()), previous_as_of=previous))
+            strategies=strategies.get(name, NO_ROWS), exposure_changes=changes.get(name, NO_ROWS),
+            previous_as_of=previous))
     pages.sort(key=_attention)
     return pages
 
