@@ -49,17 +49,61 @@ Detail = str | Callable[[np.ndarray], object]
 NULL_KEY = "(null) row "  # the ledger key of a row without its key: this prefix and the row's number in its file
 
 
-def _key(frame: pd.DataFrame, column: str) -> pd.Series:
-    return frame[column].where(frame[column].notna(), NULL_KEY + frame.index.astype(str))
+def _key(frame: pd.DataFrame, column: str, mask: np.ndarray) -> np.ndarray:
+    """The ledger keys of the masked rows: the key, or ``(null) row N`` where it is null."""
+    keys = frame[column].to_numpy(dtype=object)[mask]
+    null = pd.isna(keys)
+    if null.any():
+        keys = keys.copy()
+        keys[null] = NULL_KEY + frame.index[mask][null].astype(str).to_numpy(dtype=object)
+    return keys
+
+
+def _blank_text(text: np.ndarray) -> np.ndarray:
+    """Per non-null value: empty or only white space once read as text (trailing NUL characters
+    count as nothing, as they did when the values were converted to fixed-width numpy text).
+
+    One ``strip`` per distinct value: several times faster than converting a million ids to
+    fixed-width text for ``np.strings`` (which copies every one of them).
+    """
+    return np.fromiter((not (v if type(v) is str else str(v)).rstrip("\x00").strip() for v in text),
+                       dtype=bool, count=len(text))
 
 
 def _blank(values: pd.Series) -> np.ndarray:
     """Null, or a string of only white space (an empty key is no key)."""
     missing = values.isna().to_numpy().copy()
     if values.dtype == object and len(values):
-        text = values.to_numpy(dtype=object)[~missing].astype(str)
-        missing[~missing] = (np.strings.str_len(text) == 0) | np.strings.isspace(text)
+        missing[~missing] = _blank_text(values.to_numpy(dtype=object)[~missing])
     return missing
+
+
+@dataclass(frozen=True, slots=True)
+class _Codes:
+    """A text column factorised once: one hash pass serves its null, blank and duplicate rules."""
+
+    codes: np.ndarray    # per row, the index of its value in ``uniques``; -1 where null
+    uniques: np.ndarray  # the distinct non-null values
+
+    @classmethod
+    def of(cls, values: pd.Series) -> _Codes:
+        codes, uniques = pd.factorize(values.to_numpy(dtype=object), use_na_sentinel=True)
+        return cls(codes, np.asarray(uniques, dtype=object))
+
+    def blank(self) -> np.ndarray:
+        """Per row: null, or a text of only white space."""
+        null = self.codes < 0
+        if not len(self.uniques):
+            return null
+        return null | _blank_text(self.uniques)[np.where(null, 0, self.codes)]
+
+    def duplicated(self) -> np.ndarray:
+        """Non-null values that appear more than once (every copy)."""
+        null = self.codes < 0
+        if not len(self.uniques):
+            return np.zeros(len(self.codes), dtype=bool)
+        counts = np.bincount(self.codes[~null], minlength=len(self.uniques))
+        return ~null & (counts[np.where(null, 0, self.codes)] > 1)
 
 
 def shown(frame: pd.DataFrame, column: str) -> Callable[[np.ndarray], object]:
@@ -77,6 +121,21 @@ class _Rules:
         self.log, self.path, self.frame, self.key_column = log, path, frame, key_column
         self.ok = np.ones(len(frame), dtype=bool)
         self.reasons = np.full(len(frame), "", dtype=object)
+        self._codes: dict[str, _Codes] = {}
+
+    def _factorised(self, column: str) -> _Codes | None:
+        """The column's codes (computed once), or None for a column that is not text."""
+        values = self.frame[column]
+        if values.dtype != object:
+            return None
+        if column not in self._codes:
+            self._codes[column] = _Codes.of(values)
+        return self._codes[column]
+
+    def blank(self, column: str) -> np.ndarray:
+        """Per row: null, or a text of only white space."""
+        codes = self._factorised(column)
+        return _blank(self.frame[column]) if codes is None else codes.blank()
 
     def reject(self, bad: np.ndarray | pd.Series, rule: str, detail: Detail = "") -> None:
         """Rows where ``bad`` holds (and no earlier rule fired) leave the clean table with a ledger row.
@@ -86,18 +145,22 @@ class _Rules:
         """
         mask = np.asarray(bad, dtype=bool) & self.ok
         if mask.any():
-            keys = _key(self.frame, self.key_column)[mask]
-            self.log.add(self.path, keys.to_numpy(), rule, detail(mask) if callable(detail) else detail,
-                         keyless=self.frame[self.key_column].isna().to_numpy()[mask])
+            keys = _key(self.frame, self.key_column, mask)
+            self.log.add(self.path, keys, rule, detail(mask) if callable(detail) else detail,
+                         keyless=pd.isna(self.frame[self.key_column].to_numpy(dtype=object)[mask]))
             self.reasons[mask] = rule
             self.ok &= ~mask
 
     def required(self, *columns: str) -> None:
         for column in columns:
-            self.reject(_blank(self.frame[column]), f"{column} is null", f"{column} is required (null or blank)")
+            self.reject(self.blank(column), f"{column} is null", f"{column} is required (null or blank)")
 
     def unique(self, column: str) -> None:
-        dup = self.frame[column].duplicated(keep=False) & self.frame[column].notna()
+        codes = self._factorised(column)
+        if codes is None:
+            dup = (self.frame[column].duplicated(keep=False) & self.frame[column].notna()).to_numpy()
+        else:
+            dup = codes.duplicated()
         self.reject(dup, f"duplicate {column}", "the key appears more than once; every copy is left out")
 
     def finite(self, *columns: str) -> None:
@@ -150,7 +213,7 @@ def _instruments(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
     kind = frame["kind"].where(frame["kind"].notna(), "option")  # null or absent: an option (version 1)
     for column in ("instrument_id", "underlying", "option_type", "exercise", "expiry", "currency"):
         applies = kind.isin(TERM_KINDS.get(column, KINDS)).to_numpy()
-        rules.reject(applies & _blank(frame[column]), f"{column} is null", f"{column} is required (null or blank)")
+        rules.reject(applies & rules.blank(column), f"{column} is null", f"{column} is required (null or blank)")
     rules.unique("instrument_id")
     rules.reject(~kind.isin(KINDS), "kind must be option, underlying, future or forward", shown(frame, "kind"))
     for column, kinds in TERM_KINDS.items():
@@ -438,13 +501,15 @@ def trade_date_warnings(night: CleanNight, log: ExceptionLog) -> None:
     run_day = np.datetime64(night.raw.as_of, "D")
     ids = positions["trade_id"].to_numpy(dtype=object)
     file = night.raw.path("positions.parquet")
-    text = np.datetime_as_string(trade_date, unit="D").astype(object)
+    def text(mask: np.ndarray) -> np.ndarray:
+        return np.datetime_as_string(trade_date[mask], unit="D").astype(object)
+
     missing = np.isnat(trade_date)
     log.add(file, ids[missing], "trade_date is null", "trade_date is missing; the booking date cannot be checked",
             WARNING)
     late = ~missing & (trade_date > run_day)
-    log.add(file, ids[late], "trade_date after the run date", "trade_date = " + text[late]
+    log.add(file, ids[late], "trade_date after the run date", "trade_date = " + text(late)
             + f" is after the run date {night.raw.as_of}", WARNING)
     old = ~missing & (trade_date < EARLIEST_TRADE_DATE)
-    log.add(file, ids[old], "trade_date is implausible", "trade_date = " + text[old] + " is before 1900-01-01",
+    log.add(file, ids[old], "trade_date is implausible", "trade_date = " + text(old) + " is before 1900-01-01",
             WARNING)

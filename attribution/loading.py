@@ -139,6 +139,31 @@ def _cast(column: pa.ChunkedArray, kind: str) -> pa.ChunkedArray:
     return column.cast(target)
 
 
+# Text columns whose values are (nearly) all distinct: a dictionary would only add a hash pass.
+DISTINCT_COLUMNS = frozenset({"trade_id", "activity_id", "flow_id"})
+
+
+def _dictionary_columns(schema: pa.Schema, columns: tuple[tuple[str, str], ...]) -> list[str]:
+    """The text columns read as dictionaries: each distinct value becomes one Python string, shared by
+    every row that holds it (a book or instrument id repeats over many positions)."""
+    return [name for name, kind in columns if kind == STRING and name not in DISTINCT_COLUMNS
+            and name in schema.names and (pa.types.is_string(schema.field(name).type)
+                                          or pa.types.is_large_string(schema.field(name).type))]
+
+
+def _text_values(column: pa.ChunkedArray) -> np.ndarray:
+    """A text column as an object array of ``str`` (None where null), one object per distinct value
+    when the column is dictionary-encoded."""
+    if not pa.types.is_dictionary(column.type):
+        return _cast(column, STRING).to_numpy(zero_copy_only=False)
+    parts = []
+    for chunk in column.chunks:
+        words = chunk.dictionary.cast(pa.string()).to_numpy(zero_copy_only=False)
+        codes = chunk.indices.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.intp, copy=False)
+        parts.append(np.take(np.append(words, None).astype(object), codes))  # code -1 takes the None at the end
+    return np.concatenate(parts) if parts else np.full(0, None, dtype=object)
+
+
 def _to_frame(path: Path, table: pa.Table, columns: tuple[tuple[str, str], ...],
               index: pd.Index | None = None) -> pd.DataFrame:
     data: dict[str, pd.Series] = {}
@@ -149,11 +174,12 @@ def _to_frame(path: Path, table: pa.Table, columns: tuple[tuple[str, str], ...],
                                    dtype=object if kind == STRING else float)
             continue
         try:
-            values = _cast(table.column(name), kind).to_numpy(zero_copy_only=False)
+            column = table.column(name)
+            values = _text_values(column) if kind == STRING else _cast(column, kind).to_numpy(zero_copy_only=False)
         except pa.ArrowException as exc:
             raise InputFileError(f"{path}: column '{name}' cannot be read as {kind} ({exc})") from exc
-        data[name] = pd.Series(values, index=rows, dtype=object if kind == STRING else None)
-    return pd.DataFrame(data, index=rows)
+        data[name] = pd.Series(values, index=rows, dtype=object if kind == STRING else None, copy=False)
+    return pd.DataFrame(data, index=rows, copy=False)
 
 
 def blank_books(book: pa.Array | pa.ChunkedArray) -> np.ndarray:
@@ -189,7 +215,9 @@ def read_file(folder: Path, file: str, books: frozenset[str] | None = None,
         raise InputFileError(f"{path}: required file is missing")
     try:
         raw = path.read_bytes()
-        table = pq.read_table(pa.BufferReader(raw))
+        schema = pq.read_schema(pa.BufferReader(raw))
+        wanted = columns + OPTIONAL_COLUMNS.get(file, ())
+        table = pq.read_table(pa.BufferReader(raw), read_dictionary=_dictionary_columns(schema, wanted))
     except (OSError, pa.ArrowException) as exc:
         raise InputFileError(f"{path}: cannot be read as Parquet ({exc})") from exc
     for name, kind in columns:

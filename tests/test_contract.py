@@ -10,12 +10,15 @@ from __future__ import annotations
 import math
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 
 from attribution.config import CheckSettings
-from attribution.contract import CleanNight, clean_night
+from attribution.contract import CleanNight, _blank_text, clean_night
 from attribution.exceptions_log import REJECTED, ExceptionLog
 from attribution.loading import folder_for, read_night
 from tests.contract_files import table
@@ -268,3 +271,28 @@ def test_a_row_breaking_two_rules_gets_one_row(desk: Path) -> None:
     _put(desk, "instruments", rows)
     _, ledger = _clean(desk)
     assert ledger[["key", "rule"]].values.tolist() == [["ZEN-C100-J27", "option_type must be call or put"]]
+
+
+@given(st.lists(st.text(alphabet=st.sampled_from(" \t\n\r\x0b\x0c\x1c\x1f\x85\xa0\u2028\u3000\u200b\x00aZ9-"),
+                        max_size=4), max_size=30))
+def test_blank_keys_read_as_numpy_text_reads_them(values):
+    """A key is blank (README, "Input files": null or blank keys are rejected) exactly when its fixed-width
+    numpy text is empty or all white space, trailing NUL characters included (the rule's first form)."""
+    text = np.array(values, dtype=object)
+    as_str = text.astype(str) if len(values) else np.zeros(0, dtype=str)
+    expected = (np.strings.str_len(as_str) == 0) | np.strings.isspace(as_str)
+    assert (_blank_text(text) == expected).all()
+
+
+def test_keys_repeated_by_a_dictionary_read_are_checked_per_row(tmp_path):
+    """Blank and duplicate keys are found per row when the file stores its text as a dictionary
+    (every row holding one of the distinct values)."""
+    root = write_mini_desk(tmp_path)
+    rows = _rows(root, "positions")
+    rows[1]["book"] = "   "
+    rows[2]["trade_id"] = rows[3]["trade_id"]
+    pq.write_table(table("positions", rows), folder_for(root, RUN) / "positions.parquet", use_dictionary=True)
+    _, ledger = _clean(root)
+    rejected = ledger[ledger["file"].str.endswith("positions.parquet")]
+    assert sorted(rejected["rule"]) == ["book is null", "duplicate trade_id", "duplicate trade_id"]
+    assert set(rejected["key"]) == {rows[1]["trade_id"], rows[3]["trade_id"]}
