@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Sequence
 
 import jinja2
@@ -32,11 +33,20 @@ def _format_quantity(value: float | None) -> str:
     return charts.format_amount(value, 0 if float(value).is_integer() else 2)  # type: ignore[arg-type]
 
 
-def make_environment() -> jinja2.Environment:
+def _bytecode_cache() -> jinja2.BytecodeCache | None:
+    """Jinja2's cache of compiled templates in the user's private temporary folder (keyed by each template's
+    source checksum, so a changed template is compiled again), or none where no safe folder exists."""
+    try:
+        return jinja2.FileSystemBytecodeCache()
+    except RuntimeError:
+        return None
+
+
+def make_environment(bytecode_cache: jinja2.BytecodeCache | None = None) -> jinja2.Environment:
     """The report's Jinja2 environment: package templates, autoescape on for every template."""
     env = jinja2.Environment(loader=jinja2.PackageLoader("attribution.report", "templates"), autoescape=True,
                              undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True,
-                             auto_reload=False)
+                             auto_reload=False, bytecode_cache=bytecode_cache)
     env.filters["amount"] = charts.format_amount
     env.filters["percent"] = charts.format_percent
     env.filters["ratio"] = lambda v: charts.format_amount(v, 3)
@@ -50,10 +60,17 @@ def make_environment() -> jinja2.Environment:
     return env
 
 
+@functools.lru_cache(maxsize=1)
+def _environment() -> jinja2.Environment:
+    """The environment the pages are rendered with: made once per process, its templates compiled once (and
+    read back from the bytecode cache by the next process), since compiling them costs more than a small
+    night's pages."""
+    return make_environment(_bytecode_cache())
+
 
 def render_files(night: NightView, pages: list[BookPage]) -> dict[str, str]:
     """The night's files by name: ``index.html``, ``exceptions.html`` and one page per book."""
-    env = make_environment()
+    env = _environment()
     footer = markupsafe.Markup(env.get_template("footer.html").render(night=night))  # the same on every page
     book_template = env.get_template("book.html")
     files = {"index.html": env.get_template("index.html").render(night=night, footer=footer),
