@@ -102,25 +102,38 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
         quality=_frame(con, f"SELECT {_columns(BOOK_QUALITY)} FROM book_quality WHERE as_of = ? ORDER BY book",
                        [as_of]),
         underlyings=_frame(con, f"""
-            WITH u AS (SELECT book, underlying, count(*) AS positions,
-                              count(*) FILTER (WHERE status = 'new_unpriced') AS unpriced, {terms}
+            -- ranked on two sums per (book, underlying); the shown ones summed whole, the rest in one line per book
+            WITH n AS (SELECT book, underlying, sum(pnl_residual) AS residual, sum(pnl_total) AS total
                        FROM position_pnl WHERE as_of = ? GROUP BY book, underlying),
-                 r AS (SELECT *, row_number() OVER (PARTITION BY book ORDER BY abs(pnl_residual) DESC,
-                                                    abs(pnl_total) DESC, underlying) AS rank_in_book,
-                              count(*) OVER (PARTITION BY book) AS underlyings_in_book FROM u)
+                 cut AS (SELECT book, list_min(max(abs(residual), ?)) AS least FROM n GROUP BY book),
+                 top AS (SELECT n.book, n.underlying FROM n JOIN cut ON n.book = cut.book
+                         WHERE abs(n.residual) >= cut.least OR n.residual IS NULL  -- the candidates only
+                         QUALIFY row_number() OVER (PARTITION BY n.book ORDER BY abs(n.residual) DESC,
+                                                    abs(n.total) DESC, n.underlying) <= ?),
+                 others AS (SELECT n.book, count(*) AS underlyings FROM n LEFT JOIN top
+                            ON n.book = top.book AND n.underlying IS NOT DISTINCT FROM top.underlying
+                            WHERE top.book IS NULL GROUP BY n.book),
+                 x AS (SELECT p.*, top.book IS NOT NULL AS shown FROM position_pnl p LEFT JOIN top
+                       ON p.book = top.book AND p.underlying IS NOT DISTINCT FROM top.underlying WHERE p.as_of = ?)
             SELECT {underlying_cols} FROM (
-                SELECT 0 AS rest, * EXCLUDE (rank_in_book, underlyings_in_book) FROM r WHERE rank_in_book <= ?
+                SELECT 0 AS rest, book, underlying, count(*) AS positions,
+                       count(*) FILTER (WHERE status = 'new_unpriced') AS unpriced, {terms}
+                FROM x WHERE shown GROUP BY book, underlying
                 UNION ALL  -- the rest of a book's underlyings in one line (delta units do not add up across them)
-                SELECT 1, book, '(' || count(*) || ' other underlyings)', sum(positions)::BIGINT,
-                       sum(unpriced)::BIGINT, {rest_terms}
-                FROM r WHERE rank_in_book > ? GROUP BY book)
-            ORDER BY book, rest, underlying""", [as_of, TOP_UNDERLYINGS, TOP_UNDERLYINGS]),
+                SELECT 1, x.book, '(' || any_value(o.underlyings) || ' other underlyings)', count(*)::BIGINT,
+                       (count(*) FILTER (WHERE status = 'new_unpriced'))::BIGINT, {rest_terms}
+                FROM x JOIN others o ON x.book = o.book WHERE NOT x.shown GROUP BY x.book)
+            ORDER BY book, rest, underlying""", [as_of, TOP_UNDERLYINGS, TOP_UNDERLYINGS, as_of]),
         positions=_frame(con, f"""
-            SELECT book, {row_cols} FROM position_pnl WHERE as_of = ?
+            WITH p AS (SELECT rowid AS r, book, abs(coalesce(pnl_residual, 0)) AS a FROM position_pnl WHERE as_of = ?),
+                 -- the candidates: residuals at least the book's N-th largest; only they are ranked and read whole
+                 cut AS (SELECT book, list_min(max(a, ?)) AS least FROM p GROUP BY book),
+                 top AS (SELECT p.r FROM p JOIN cut ON p.book = cut.book WHERE p.a >= cut.least)
+            SELECT book, {row_cols} FROM position_pnl WHERE as_of = ? AND rowid IN (SELECT r FROM top)
             QUALIFY row_number() OVER (PARTITION BY book ORDER BY abs(coalesce(pnl_residual, 0)) DESC,
                                        abs(coalesce(pnl_total, 0)) DESC, trade_id) <= ?
             ORDER BY book, abs(coalesce(pnl_residual, 0)) DESC, abs(coalesce(pnl_total, 0)) DESC, trade_id""",
-                         [as_of, TOP_POSITIONS]),
+                         [as_of, TOP_POSITIONS, as_of, TOP_POSITIONS]),
         unpriced=_frame(con, f"""SELECT book, {row_cols} FROM position_pnl
                                  WHERE as_of = ? AND status = 'new_unpriced' ORDER BY book, trade_id""", [as_of]),
         exceptions=_frame(con, f"""SELECT row_number() OVER (ORDER BY severity, file, rule, key) AS exception_id,
@@ -128,9 +141,13 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
         links=_frame(con, f"""
             WITH e AS (SELECT row_number() OVER (ORDER BY severity, file, rule, key) AS exception_id,
                               {exception_cols} FROM input_exceptions WHERE as_of = ?),
-                 k AS (SELECT book, trade_id AS key FROM position_pnl WHERE as_of IN (?, ?)
-                       UNION SELECT book, instrument_id FROM position_pnl WHERE as_of = ?
-                       UNION SELECT book, underlying FROM position_pnl WHERE as_of = ?
+                 keys AS (SELECT DISTINCT key FROM e),  -- only the keys of exceptions can match
+                 k AS (SELECT book, trade_id AS key FROM position_pnl
+                       WHERE as_of IN (?, ?) AND trade_id IN (SELECT key FROM keys)
+                       UNION SELECT book, instrument_id FROM position_pnl
+                       WHERE as_of = ? AND instrument_id IN (SELECT key FROM keys)
+                       UNION SELECT book, underlying FROM position_pnl
+                       WHERE as_of = ? AND underlying IN (SELECT key FROM keys)
                        UNION SELECT book, book FROM book_pnl WHERE as_of = ?)
             SELECT DISTINCT book, exception_id, file, key, rule, detail, severity FROM (
                 SELECT k.book, e.exception_id, e.file, e.key, e.rule, e.detail, e.severity
@@ -153,7 +170,7 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
         to_date_desks=to_date(con, as_of, "desk"),
         strategies=_strategies(con, as_of),
         exposure_changes=_exposure_changes(con, as_of),
-        hedging=_frame(con, HEDGING_SQL, [as_of, HEDGING_ROWS_SHOWN]),
+        hedging=_frame(con, HEDGING_SQL, [as_of, HEDGING_ROWS_SHOWN, HEDGING_ROWS_SHOWN]),
         # FX exposure: the run-date value of what each book holds, per premium currency, in that currency and
         # converted; a 1 % move of the rate changes the converted value by 1 % (the translation of the next night).
         currencies=_frame(con, """
@@ -233,13 +250,16 @@ def _exposure_changes(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> pd.Data
                           coalesce(o.g, 0) AS gamma_cash_1pct_before, coalesce(n.g, 0) AS gamma_cash_1pct,
                           coalesce(o.v, 0) AS vega_before, coalesce(n.v, 0) AS vega,
                           coalesce(o.t, 0) AS theta_before, coalesce(n.t, 0) AS theta
-                   FROM n FULL JOIN o ON n.book = o.book AND n.underlying = o.underlying)
-        SELECT j.*, (SELECT d FROM prev) AS previous_as_of FROM j
-        WHERE book IN (SELECT book FROM book_pnl WHERE as_of = ?)
-        QUALIFY row_number() OVER (PARTITION BY book ORDER BY greatest(abs(delta_cash - delta_cash_before) / 100,
-                                   abs(vega - vega_before)) DESC, underlying) <= ?
-        ORDER BY book, greatest(abs(delta_cash - delta_cash_before) / 100, abs(vega - vega_before)) DESC, underlying""",
-                  [as_of, as_of, as_of, as_of, as_of, TOP_EXPOSURE_CHANGES])
+                   FROM n FULL JOIN o ON n.book = o.book AND n.underlying = o.underlying),
+             m AS (SELECT *, greatest(abs(delta_cash - delta_cash_before) / 100, abs(vega - vega_before)) AS moved
+                   FROM j WHERE book IN (SELECT book FROM book_pnl WHERE as_of = ?)),
+             -- ranked among the candidates only: moves at least the book's N-th largest
+             cut AS (SELECT book, list_min(max(moved, ?)) AS least FROM m GROUP BY book)
+        SELECT m.* EXCLUDE (moved), (SELECT d FROM prev) AS previous_as_of FROM m JOIN cut ON m.book = cut.book
+        WHERE m.moved >= cut.least
+        QUALIFY row_number() OVER (PARTITION BY m.book ORDER BY m.moved DESC, m.underlying) <= ?
+        ORDER BY m.book, m.moved DESC, m.underlying""",
+                  [as_of, as_of, as_of, as_of, as_of, TOP_EXPOSURE_CHANGES, TOP_EXPOSURE_CHANGES])
 
 
 
@@ -261,15 +281,24 @@ HEDGING_SQL = """
                       sum(pnl) FILTER (WHERE is_option) AS options_pnl,
                       sum(pnl) FILTER (WHERE NOT is_option) AS hedges_pnl,
                       sum(cash) AS cash_pnl
-               FROM p GROUP BY book, underlying)
-    SELECT * EXCLUDE (is_cash),
-           coalesce(sum(options_pnl) OVER (PARTITION BY book), 0) AS book_options_pnl,
-           coalesce(sum(hedges_pnl) OVER (PARTITION BY book), 0) AS book_hedges_pnl,
-           coalesce(sum(cash_pnl) OVER (PARTITION BY book), 0) AS book_cash_pnl
-    FROM g
-    QUALIFY row_number() OVER (PARTITION BY book ORDER BY is_cash DESC, abs(book_delta_cash) DESC NULLS LAST,
-                                                         underlying) <= ?
-    ORDER BY book, is_cash, abs(book_delta_cash) DESC NULLS LAST, underlying"""
+               FROM p GROUP BY book, underlying),
+         -- the book's sums added in the table's order (cash row, largest book delta first)
+         s AS (SELECT book, coalesce(sum(options_pnl ORDER BY is_cash DESC, abs(book_delta_cash) DESC NULLS LAST,
+                                         underlying), 0) AS book_options_pnl,
+                      coalesce(sum(hedges_pnl ORDER BY is_cash DESC, abs(book_delta_cash) DESC NULLS LAST,
+                                   underlying), 0) AS book_hedges_pnl,
+                      coalesce(sum(cash_pnl ORDER BY is_cash DESC, abs(book_delta_cash) DESC NULLS LAST,
+                                   underlying), 0) AS book_cash_pnl
+               FROM g GROUP BY book),
+         -- ranked among the candidates only: the cash row and book deltas at least the book's N-th largest
+         cut AS (SELECT book, list_min(max(abs(book_delta_cash), ?)) AS least FROM g WHERE NOT is_cash GROUP BY book),
+         c AS (SELECT g.* FROM g LEFT JOIN cut ON g.book = cut.book
+               WHERE g.is_cash OR g.book_delta_cash IS NULL OR abs(g.book_delta_cash) >= cut.least)
+    SELECT c.* EXCLUDE (is_cash), s.book_options_pnl, s.book_hedges_pnl, s.book_cash_pnl
+    FROM c JOIN s ON c.book = s.book
+    QUALIFY row_number() OVER (PARTITION BY c.book ORDER BY c.is_cash DESC, abs(c.book_delta_cash) DESC NULLS LAST,
+                                                           c.underlying) <= ?
+    ORDER BY c.book, c.is_cash, abs(c.book_delta_cash) DESC NULLS LAST, c.underlying"""
 HEDGING_VALUES: tuple[str, ...] = ("options_delta_units", "hedges_delta_units", "book_delta_units",
                                    "options_delta_cash", "hedges_delta_cash", "book_delta_cash",
                                    "options_pnl", "hedges_pnl", "cash_pnl")
