@@ -51,6 +51,7 @@ from attribution.demo.desk import business_days as desk_business_days
 from attribution.demo.dividends import Schedule, present_values
 from attribution.demo.dividends import apply as apply_dividends
 from attribution.demo.dividends import plan as plan_dividends
+from attribution.demo.exercise import Exercise, plan_exercise
 from attribution.demo.faults import mark_faults, noisy_marks
 from attribution.demo.hedges import HedgeBook, hedge_book
 from attribution.demo.market import (
@@ -67,6 +68,7 @@ from attribution.demo.market import (
     zero_rate,
 )
 from attribution.demo.nights import Night, PlantedFault, Pool, Trades
+from attribution.demo.official import DeskEvents, Holdings, LateBooking, desk_pnl, join, late_booking
 from attribution.loading import CONTRACT_SCHEMAS, CONTRACT_SCHEMAS_V2
 from attribution.pricing import bsm_greeks, bsm_price
 
@@ -76,7 +78,11 @@ SCHEMAS: dict[str, pa.Schema] = {**CONTRACT_SCHEMAS,
                                  "positions": CONTRACT_SCHEMAS["positions"].append(pa.field("strategy", pa.string()))}
 STRATEGIES = ("outright", "short straddle", "short strangle", "delta-neutral pair")
 FAULT_KINDS = ("stale_mark", "fat_finger_mark", "missing_mark", "off_smile_mark", "smile_arbitrage_mark",
-               "noisy_marks", "booking_error")
+               "noisy_marks", "booking_error", "late_booking", "official_break", "early_exercise")
+# The desk's own P&L (official_pnl.parquet) reconciles with the job's total within this (reporting currency) on
+# every night but the planted breaks; jobs/nightly.toml's [limits] official_break says the same.
+OFFICIAL_BREAK_LIMIT = 100.0
+LATE_BOOKING_AT = 0.6     # the late-booked trade: on the night nearest this share of the year
 
 
 @dataclass(frozen=True, slots=True)
@@ -171,7 +177,7 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments
     night = Night(live=live, price=close, vol=np.where(null_vol, np.nan, vol),
                    keep=np.ones(live.size, bool), tau=tau, lower=lower, upper=upper,
                    rows=np.zeros(0, np.int64), quantity=np.zeros(0), spot=spot, rate=rate, div=div,
-                   clean_price=price.copy(), delta=delta)
+                   clean_price=price.copy(), delta=delta, exercise_region=exercised)
     open_ = tau * DAYS_PER_YEAR >= desk.trading.min_days_to_expiry_new
     z = np.log(strike / spot) / (vol * np.sqrt(np.maximum(tau, 1e-9)))
     series = series_key(und, store.expiry[live]) * 2 + is_call
@@ -258,7 +264,8 @@ def _lifecycle(rng: np.random.Generator, desk: DeskSpec, day: np.datetime64, sto
     live = live[~expired]
     packages = np.unique(trades.package[live])
     closing = packages[rng.random(packages.size) < desk.trading.daily_churn]
-    closed = np.isin(trades.package[live], closing)
+    closed = np.isin(trades.package[live], closing) & (store.expiry[trades.instrument[live]] > day)  # expiring: left
+    # to settle at its intrinsic value, never closed on its last day
     trades.live = live[~closed]
     carried = trades.live
     n_amend = min(int(rng.poisson(desk.trading.amend_rate * carried.size)), carried.size)
@@ -327,6 +334,68 @@ def _booking_error(desk: DeskSpec, market: MarketPaths, nights: list[Night], ids
                                   f"new trade booked on {wrong!r}, a mistyped {real!r} that no instruments file lists")
 
 
+def _option_holdings(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: Trades, night: Night,
+                     d: int, trade_ids: NDArray[np.str_], split: FloatArray,
+                     corrected: dict[int, float]) -> Holdings:
+    """The options held on night ``d`` at the desk's own close (``corrected``: instrument -> the desk's mark where
+    the marks file carries another)."""
+    inst = trades.instrument[night.rows]
+    value = night.price[np.searchsorted(night.live, inst)].copy()
+    for i, price in corrected.items():
+        value[inst == i] = price
+    und = store.und[inst]
+    codes = [c.code for c in desk.currencies]
+    ccy = np.array([codes.index(u.currency) for u in desk.underlyings])[und]
+    no = np.zeros(inst.size, dtype=bool)
+    return Holdings(trade=trade_ids[night.rows], book=trades.book[night.rows], und=und, ccy=ccy,
+                    quantity=night.quantity, multiplier=desk.param("multiplier")[und] * split[inst], value=value,
+                    future=no, share=no)
+
+
+def _official(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: Trades, nights: list[Night],
+              ids: NDArray[np.str_], trade_ids: NDArray[np.str_], hedges: HedgeBook, schedule: Schedule,
+              splits: list[FloatArray], hedge_splits: list[FloatArray], faults: list[PlantedFault],
+              exercise: Exercise | None) -> tuple[FloatArray, LateBooking | None, list[PlantedFault]]:
+    """The desk's own P&L (nights x books), the late-booked trade, and the planted events to list: the exercise, the
+    late booking and the break the fat-finger mark makes (the desk's books carry the right mark)."""
+    books = [b.name for b in desk.books]
+    fat = [f for f in faults if f.kind == "fat_finger_mark"]
+    corrected: dict[int, dict[int, float]] = {}
+    for f in fat:
+        d = list(market.dates).index(np.datetime64(f.as_of, "D"))
+        i = int(np.flatnonzero(ids == f.instrument_or_trade)[0])
+        corrected.setdefault(d, {})[i] = float(nights[d].price[np.searchsorted(nights[d].live, i)]
+                                                / desk.faults.fat_finger_factor)
+    holdings = [join([_option_holdings(desk, market, store, trades, night, d, trade_ids, splits[d],
+                                       corrected.get(d, {})), hedges.holdings[d]]) for d, night in enumerate(nights)]
+    events = DeskEvents(hedges.activity, hedges.cash_flows, schedule.und, schedule.ex_date, schedule.amount)
+    ratio = [np.ones(len(desk.underlyings))] + [b / a for a, b in zip(hedge_splits, hedge_splits[1:], strict=False)]
+    official = desk_pnl(holdings, events, market.dates, market.fx_to_reporting, ratio,
+                        [c.code for c in desk.currencies], books)
+    late = late_booking(holdings, hedges.activity, market.fx_to_reporting, LATE_BOOKING_AT, 4 * OFFICIAL_BREAK_LIMIT)
+    planted = []
+    if late is not None:
+        day, after = market.dates[late.night].item(), market.dates[late.night + 1].item()
+        planted.append(PlantedFault(day, books[late.book], late.trade, "late_booking",
+                                    f"new trade in the desk's P&L tonight (day one {late.day_one_pnl:+,.0f}) reaches "
+                                    f"the positions file only on {after}: official P&L break tonight, about the "
+                                    "opposite the next night"))
+    for f in fat:
+        planted.append(PlantedFault(f.as_of, f.book, f.instrument_or_trade, "official_break",
+                                    "the desk's P&L is struck on its own mark of the instrument, not on the fat finger "
+                                    "in option_marks: official P&L break"))
+    if exercise is not None:
+        name = desk.underlyings[exercise.und].name
+        planted.append(PlantedFault(market.dates[exercise.night].item(), books[exercise.book],
+                                    str(trade_ids[exercise.row]), "early_exercise",
+                                    f"{exercise.activity} of {exercise.contracts:g} American "
+                                    f"{'calls' if exercise.is_call else 'puts'} {ids[exercise.instrument]} deep in the "
+                                    f"money ({name} {market.spot[exercise.night, exercise.und]:.4g}, strike "
+                                    f"{exercise.strike:g}); {exercise.shares:+g} shares delivered "
+                                    f"({hedges.delivered_trade}), unwound the next night"))
+    return official, late, planted
+
+
 def _prepare_root(root: Path, dates: NDArray[np.datetime64]) -> None:
     root.mkdir(parents=True, exist_ok=True)
     wanted = {f"as_of={d}" for d in dates}
@@ -334,6 +403,16 @@ def _prepare_root(root: Path, dates: NDArray[np.datetime64]) -> None:
     if stray:
         raise ValueError(f"{root}: holds {len(stray)} as_of folder(s) outside this demo's dates (first {stray[0]}); "
                          "write the demo into an empty folder")
+
+
+def _late_activity(activity: pa.Table, late: LateBooking, booked_night: bool) -> pa.Table:
+    """The night's activity without the late trade's ``new`` row (its night), or with it (the next night)."""
+    if booked_night:
+        return activity.filter(pc.not_equal(activity["trade_id"], late.trade))
+    row = pa.Table.from_pydict({"activity_id": [f"{activity['activity_id'][0].as_py().split('-')[0]}-late"],
+                                "trade_id": [late.trade], "kind": ["new"], "quantity": [late.quantity],
+                                "price": [late.price]}, schema=activity.schema)
+    return pa.concat_tables([activity, row])
 
 
 def _split(schedule: Schedule, store: ListedInstruments, before_split: int, day: np.datetime64) -> FloatArray:
@@ -351,7 +430,8 @@ def _terms(instruments: pa.Table, split: FloatArray) -> list[pa.ChunkedArray]:
 
 def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: Trades,
            nights: list[Night], ids: NDArray[np.str_], trade_ids: NDArray[np.str_], schedule: Schedule,
-           before_split: int, hedges: HedgeBook, booked_wrong: dict[int, dict[str, list[object]]]) -> None:
+           before_split: int, hedges: HedgeBook, booked_wrong: dict[int, dict[str, list[object]]],
+           official: FloatArray, late: LateBooking | None) -> None:
     names = np.array([u.name for u in desk.underlyings])
     codes = np.array([c.code for c in desk.currencies])
     ccy = np.array([list(codes).index(u.currency) for u in desk.underlyings])
@@ -377,8 +457,11 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
     for d, night in enumerate(nights):
         folder = root / f"as_of={market.dates[d]}"
         folder.mkdir(exist_ok=True)
-        held = booked.take(pa.array(night.rows))
-        options = pa.Table.from_arrays([held["trade_id"], held["book"], held["instrument_id"], pa.array(night.quantity),
+        held, quantity = booked.take(pa.array(night.rows)), night.quantity
+        if late is not None and d == late.night:  # booked by the desk tonight, in the files only tomorrow
+            keep = trade_ids[night.rows] != late.trade
+            held, quantity = held.filter(pa.array(keep)), quantity[keep]
+        options = pa.Table.from_arrays([held["trade_id"], held["book"], held["instrument_id"], pa.array(quantity),
                                         held["trade_date"], held["trade_price"], held["strategy"]],
                                        schema=SCHEMAS["positions"])
         split = _split(schedule, store, before_split, market.dates[d])[night.live]
@@ -397,6 +480,11 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
         for name, parts in (("trade_activity", hedges.activity[d]), ("cash_flows", hedges.cash_flows[d])):
             if parts is not None:
                 events[name] = pa.Table.from_pydict(parts, schema=SCHEMAS[name])
+        if late is not None and d in (late.night, late.night + 1):
+            events["trade_activity"] = _late_activity(events["trade_activity"], late, d == late.night)
+        if d > 0:
+            events["official_pnl"] = pa.Table.from_arrays([books[0], pa.array(official[d], pa.float64())],
+                                                          schema=SCHEMAS["official_pnl"])
         for name, table in events.items():
             pq.write_table(table, folder / f"{name}.parquet")
         tables = {
@@ -466,10 +554,15 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
     splits = [_split(schedule, store, before_split, day) for day in dates]
     names_und = np.arange(len(desk.underlyings))
     hedge_splits = [schedule.split_factor(names_und, np.ones(names_und.size, bool), day) for day in dates]
-    hedges = hedge_book(desk, market, store, trades, nights, trade_ids, hedge_rng, splits, hedge_splits)
+    exercise = plan_exercise(desk, market, store, trades, nights, splits)
+    hedges = hedge_book(desk, market, store, trades, nights, trade_ids, hedge_rng, splits, hedge_splits, exercise)
     booked_wrong, fault = _booking_error(desk, market, nights, ids, trades)
     faults.append(fault)
-    _write(root, desk, market, store, trades, nights, ids, trade_ids, schedule, before_split, hedges, booked_wrong)
+    official, late, events = _official(desk, market, store, trades, nights, ids, trade_ids, hedges, schedule, splits,
+                                       hedge_splits, faults, exercise)
+    faults += events
+    _write(root, desk, market, store, trades, nights, ids, trade_ids, schedule, before_split, hedges, booked_wrong,
+           official, late)
     counts = np.array([night.rows.size for night in nights])
     first, last_expiry = dates[0].item(), store.expiry.max().item()
     return DemoSummary(

@@ -115,7 +115,8 @@ class MarkSpec:
 class FaultSpec:
     """Sizes of the planted mark faults."""
 
-    noisy_night_share: float
+    noisy_spell_start: float
+    noisy_spell_nights: int
     noisy_common_sd: float
     noisy_idio_sd: float
     fat_finger_factor: float

@@ -179,12 +179,12 @@ def mark_faults(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, t
 
 def noisy_marks(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, nights: list[Night], b: int,
                  rng: np.random.Generator) -> list[PlantedFault]:
-    """Random errors of the time value of every live option of book ``b``'s underlyings on some nights."""
+    """Random errors of the time value of every live option of book ``b``'s underlyings on every night of one spell
+    (a bad price feed: ``noisy_spell_nights`` from ``noisy_spell_start`` of the year, at least one night)."""
     spec, book, names = desk.faults, desk.books[b], [u.name for u in desk.underlyings]
-    noisy = rng.random(len(nights)) < spec.noisy_night_share
-    noisy[0] = False
-    if not noisy.any():
-        noisy[rng.integers(1, len(nights))] = True
+    first = min(max(1, round(spec.noisy_spell_start * (len(nights) - 1))), len(nights) - 1)
+    noisy = np.zeros(len(nights), dtype=bool)
+    noisy[first: first + max(1, spec.noisy_spell_nights)] = True
     out = []
     for d in np.flatnonzero(noisy):
         night = nights[d]

@@ -58,6 +58,7 @@ class Night:
     div: FloatArray
     clean_price: FloatArray  # the model mark before any planted fault
     delta: FloatArray        # BSM delta at the clean vol (for the book's hedges)
+    exercise_region: NDArray[np.bool_]  # an American option whose clean mark sits in its exercise region
 
 
 @dataclass(frozen=True, slots=True)

@@ -9,11 +9,11 @@ from pathlib import Path
 
 from attribution.backfill import backfill
 from attribution.config import CheckSettings, JobConfig, LimitSettings
-from attribution.demo.build import build_demo
+from attribution.demo.build import OFFICIAL_BREAK_LIMIT, build_demo
 from attribution.engine import EXIT_FINDINGS, EXIT_OK
 
 # The short-vol book sells options: its residual is wider by design (jobs/nightly.toml says the same).
-DEMO_BOOK_LIMITS = (("short-vol", LimitSettings(residual_abs=40_000.0)),)
+DEMO_BOOK_LIMITS = (("short-vol", LimitSettings(residual_abs=40_000.0, official_break=OFFICIAL_BREAK_LIMIT)),)
 
 # The demo desk's close is noisier than the job's default tolerance expects (demo_desk.toml, [marks]): its job
 # warns when a marked vol misses the mark by more than 5 % (jobs/nightly.toml says the same).
@@ -23,7 +23,8 @@ DEMO_IV_PRICE_TOLERANCE = 0.05
 def demo_config(into: Path, holidays: tuple) -> JobConfig:
     """The job configuration of the demo desk inside ``into`` (jobs/nightly.toml says the same)."""
     return JobConfig(data_root=into / "data", archive_path=into / "archive.duckdb", reports_dir=into / "reports",
-                     holidays=tuple(holidays), book_limits=DEMO_BOOK_LIMITS,
+                     holidays=tuple(holidays), limits=LimitSettings(official_break=OFFICIAL_BREAK_LIMIT),
+                     book_limits=DEMO_BOOK_LIMITS,
                      checks=CheckSettings(iv_price_tolerance=DEMO_IV_PRICE_TOLERANCE))
 
 
