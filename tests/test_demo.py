@@ -37,7 +37,7 @@ START = dt.date(2025, 12, 8)   # 14 business days: a monthly expiry (12-19) and 
 DAYS = 14
 TARGET = 600
 FILES = ("positions", "instruments", "option_marks", "underlying_marks", "rate_curves", "fx_rates", "books")
-EVENTS = ("dividends", "corporate_actions", "future_marks", "trade_activity", "cash_flows")  # version 2 files
+EVENTS = ("dividends", "corporate_actions", "future_marks", "trade_activity", "cash_flows", "official_pnl")  # version 2
 
 
 @dataclass(frozen=True)
@@ -151,7 +151,8 @@ def test_default_desk_has_the_scenario_books_and_underlyings() -> None:
 
 def test_every_file_has_the_contract_columns_and_arrow_types(built: Built, tmp_path: Path) -> None:
     """Each as_of folder holds the six files of version 1, future_marks and (after the first night) the
-    trade activity and cash flows, and books.parquet, with the contract's column names, order and Arrow types."""
+    trade activity, cash flows and official P&L, and books.parquet, with the contract's column names, order and
+    Arrow types."""
     expected = {
         "positions": [pa.string(), pa.string(), pa.string(), pa.float64(), pa.date32(), pa.float64(), pa.string()],
         "instruments": [pa.string(), pa.string(), pa.string(), pa.string(), pa.float64(), pa.date32(),
@@ -165,13 +166,14 @@ def test_every_file_has_the_contract_columns_and_arrow_types(built: Built, tmp_p
         "future_marks": [pa.string(), pa.float64()],
         "trade_activity": [pa.string(), pa.string(), pa.string(), pa.float64(), pa.float64()],
         "cash_flows": [pa.string(), pa.string(), pa.string(), pa.string(), pa.float64(), pa.string()],
+        "official_pnl": [pa.string(), pa.float64()],
         "books": [pa.string(), pa.string()],
     }
     root = built.summary.data_root
     for day in built.summary.dates:
         folder = root / f"as_of={day}"
         written = expected if day != built.summary.dates[0] else {
-            k: v for k, v in expected.items() if k not in ("trade_activity", "cash_flows")}
+            k: v for k, v in expected.items() if k not in ("trade_activity", "cash_flows", "official_pnl")}
         assert sorted(p.name for p in folder.iterdir()) == sorted(f"{n}.parquet" for n in written)
         for name, types in written.items():
             schema = pq.read_schema(folder / f"{name}.parquet")
@@ -322,7 +324,8 @@ def test_planted_faults_are_in_the_data_as_the_summary_says(built: Built) -> Non
     s, desk = built.summary, load_desk()
     kinds = {f.kind for f in s.faults}
     assert kinds == set(FAULT_KINDS) == {"stale_mark", "fat_finger_mark", "missing_mark", "off_smile_mark",
-                                         "smile_arbitrage_mark", "noisy_marks", "booking_error"}
+                                         "smile_arbitrage_mark", "noisy_marks", "booking_error", "late_booking",
+                                         "official_break", "early_exercise"}
     (error,) = _faults(built, "booking_error")
     files = built.nights[error.as_of]  # the row is on no instrument, so it sits with the non-option positions
     row = files["hedge_positions"].set_index("trade_id").loc[error.instrument_or_trade]
@@ -405,26 +408,30 @@ def test_trading_activity_new_closed_expired_amended_and_listed(built: Built) ->
     counts = [len(built.nights[d]["positions"]) for d in days]
     assert (s.positions_min, s.positions_max) == (min(counts), max(counts)) and s.positions_min >= TARGET
     assert s.positions_mean == pytest.approx(np.mean(counts), rel=1e-12)
-    seen = {"closed": 0, "expired": 0, "amended": 0, "unpriced": 0, "priced": 0, "listed": 0}
+    seen = {"closed": 0, "expired": 0, "amended": 0, "unpriced": 0, "priced": 0, "listed": 0, "exercised": 0}
     for prior, day in zip(days, days[1:], strict=False):
         p0 = built.nights[prior]["positions"].set_index("trade_id")
         p1 = built.nights[day]["positions"].set_index("trade_id")
         expiry = built.nights[prior]["instruments"].set_index("instrument_id")["expiry"]
         gone = p0.index.difference(p1.index)
         expired = pd.to_datetime(expiry[p0.loc[gone, "instrument_id"]]).dt.date.to_numpy() < day
+        act = built.nights[day]["trade_activity"]
+        exercised = np.isin(gone, act.loc[act["kind"].isin(["exercise", "assignment"]), "trade_id"])
         seen["expired"] += int(expired.sum())
-        seen["closed"] += int((~expired).sum())
+        seen["closed"] += int((~expired & ~exercised).sum())
+        seen["exercised"] += int(exercised.sum())
         both = p0.index.intersection(p1.index)
         seen["amended"] += int((p0.loc[both, "quantity"] != p1.loc[both, "quantity"]).sum())
         assert (p0.loc[both, ["instrument_id", "book", "trade_date"]] == p1.loc[both, ["instrument_id", "book",
                                                                                           "trade_date"]]).all().all()
         new = p1.loc[p1.index.difference(p0.index)]
-        assert (new["trade_date"] == day).all()
+        late = {f.instrument_or_trade for f in _faults(built, "late_booking")}  # booked the night before
+        assert (new["trade_date"] == day).all() or set(new.index[new["trade_date"] != day]) <= late
         seen["unpriced"] += int(new["trade_price"].isna().sum())
         seen["priced"] += int(new["trade_price"].notna().sum())
         seen["listed"] += len(set(built.nights[day]["instruments"]["instrument_id"])
                               - set(built.nights[prior]["instruments"]["instrument_id"]))
-    assert all(v > 0 for v in seen.values()), seen
+    assert all(v > 0 for v in seen.values()), seen  # the slice holds the year's early exercise too
     assert (seen["expired"], seen["closed"], seen["amended"]) == (s.trades_expired, s.trades_closed, s.trades_amended)
     assert (seen["priced"] + seen["unpriced"], seen["unpriced"]) == (s.trades_new, s.trades_new_unpriced)
 
@@ -440,7 +447,9 @@ def test_hedges_keep_books_delta_neutral_and_activity_reconciles(built: Built) -
                            held["dividend_yield"], held["option_type"] == "call").delta
         options = (held["quantity"] * held["multiplier"] * delta).groupby([held["book"], held["underlying"]]).sum()
         hedges = f["hedge_positions"].merge(f["hedge_instruments"], on="instrument_id")
-        assert set(hedges["kind"]) == {"underlying", "future"}
+        assert set(hedges["kind"]) == {"underlying", "future", "forward"}
+        assert set(hedges.loc[hedges["kind"] == "forward", "underlying"]) == {
+            u.name for u in load_desk().underlyings if u.kind == "fx"}  # FX pairs are hedged with forwards
         units = (hedges["quantity"] * hedges["multiplier"]).groupby([hedges["book"], hedges["underlying"]]).sum()
         gross = (held["quantity"].abs() * held["multiplier"]).groupby([held["book"], held["underlying"]]).sum()
         net = (options + units.reindex(options.index).fillna(0.0)).abs()
@@ -459,7 +468,8 @@ def test_hedges_keep_books_delta_neutral_and_activity_reconciles(built: Built) -
         q0 = live0["quantity"].reindex(trades).fillna(0.0)
         q1 = p1["quantity"].reindex(trades).fillna(0.0)
         np.testing.assert_allclose(q0 + moved.reindex(trades).fillna(0.0), q1, atol=1e-9)
-        hedge_moves = act[act["trade_id"].isin(built.nights[day]["hedge_positions"]["trade_id"])]
+        hedge_moves = act[act["trade_id"].isin(built.nights[day]["hedge_positions"]["trade_id"])
+                          & ~act["kind"].isin(["new", "close"])]  # not the shares an exercise delivered
         fees = built.nights[day]["cash_flows"]
         assert len(fees) == len(hedge_moves) and (fees["amount"] < 0).all() and set(fees["kind"]) == {"commission"}
 
@@ -594,3 +604,51 @@ def test_new_trades_earn_the_spread_on_average(built: Built) -> None:
         mark = new.merge(f["option_marks"], on="instrument_id")
         edges.append((np.sign(mark["quantity"]) * (mark["price"] - mark["trade_price"]) / mark["price"]).mean())
     assert np.mean(edges) > 0
+
+
+def test_early_exercise_gives_up_the_option_for_its_shares(built: Built) -> None:
+    """The year's early exercise (data contract, "Trade activity"): an exercise or assignment of the whole prior
+    position of an American option in its money, the trade gone that night, the delivered shares (contracts x
+    multiplier, bought for a call, sold for a put) a new trade at the strike, unwound the next night."""
+    (fault,) = _faults(built, "early_exercise")
+    days = built.summary.dates
+    day = fault.as_of
+    prior, after = days[days.index(day) - 1], days[days.index(day) + 1]
+    p0 = built.nights[prior]["positions"].set_index("trade_id").loc[fault.instrument_or_trade]
+    option = built.nights[prior]["instruments"].set_index("instrument_id").loc[p0["instrument_id"]]
+    assert option["exercise"] == "american" and fault.instrument_or_trade not in set(
+        built.nights[day]["positions"]["trade_id"])
+    act = built.nights[day]["trade_activity"].set_index("trade_id")
+    row = act.loc[fault.instrument_or_trade]
+    assert row["kind"] == ("exercise" if p0["quantity"] > 0 else "assignment")
+    assert row["quantity"] == -p0["quantity"] and np.isnan(row["price"])
+    spot = built.nights[day]["underlying_marks"].set_index("underlying").at[option["underlying"], "spot"]
+    cp = 1.0 if option["option_type"] == "call" else -1.0
+    assert cp * (spot - option["strike"]) > 0.2 * option["strike"]  # deep in the money
+    shares = built.nights[day]["hedge_positions"].set_index("trade_id")
+    delivered = shares.loc[[t for t in shares.index if "EX-" in t]].iloc[0]
+    assert delivered["quantity"] == p0["quantity"] * option["multiplier"] * cp
+    assert delivered["trade_price"] == option["strike"] and delivered["trade_date"] == day
+    assert (act.loc[delivered.name, "kind"], act.loc[delivered.name, "price"]) == ("new", option["strike"])
+    later = built.nights[after]["trade_activity"].set_index("trade_id").loc[delivered.name]
+    assert later["kind"] == "close" and later["quantity"] == -delivered["quantity"]
+    assert delivered.name not in set(built.nights[after]["hedge_positions"]["trade_id"])
+
+
+def test_official_pnl_names_every_book_each_night_in_whole_units(built: Built) -> None:
+    """Every night after the first carries the desk's P&L of each book once, a finite whole number (its rounding
+    policy); the late-booked trade is in the files only from the next night, dated the night before."""
+    books = {b.name for b in load_desk().books}
+    for day in built.summary.dates[1:]:
+        official = built.nights[day]["official_pnl"]
+        assert set(official["book"]) == books and official["book"].is_unique
+        assert np.isfinite(official["pnl"]).all() and (official["pnl"] == official["pnl"].round()).all()
+    (late,) = _faults(built, "late_booking")
+    days = built.summary.dates
+    after = days[days.index(late.as_of) + 1]
+    assert late.instrument_or_trade not in set(built.nights[late.as_of]["positions"]["trade_id"])
+    assert late.instrument_or_trade not in set(built.nights[late.as_of]["trade_activity"]["trade_id"])
+    row = built.nights[after]["positions"].set_index("trade_id").loc[late.instrument_or_trade]
+    assert row["trade_date"] == late.as_of and row["book"] == late.book
+    act = built.nights[after]["trade_activity"].set_index("trade_id").loc[late.instrument_or_trade]
+    assert act["kind"] == "new" and act["quantity"] == row["quantity"]

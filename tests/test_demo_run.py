@@ -82,3 +82,51 @@ def test_planted_faults_are_caught(demo, tmp_path):
     con.close()
     assert {f.kind for f in faults} >= {"stale_mark", "fat_finger_mark", "missing_mark", "off_smile_mark",
                                         "smile_arbitrage_mark"}
+
+
+def test_official_pnl_reconciles_except_the_planted_breaks(demo, tmp_path):
+    """The desk's own P&L (official_pnl.parquet, from its books of record) meets the job's total within the demo's
+    official_break limit on every book and night but the planted breaks: the late-booked trade's night and the next
+    (opposite signs), the fat-finger night of its book, and the early exercise's night of its book (the job counts the
+    exercised intrinsic value in the option and again in the shares delivered at the strike; see README, "Demo")."""
+    from attribution.demo.build import OFFICIAL_BREAK_LIMIT
+
+    into, _ = demo
+    summary = build_demo(tmp_path / "again", business_days=8)  # same seed: the same planted events
+    expected: set[tuple[object, str]] = set()
+    for fault in summary.faults:
+        if fault.kind == "late_booking":
+            after = summary.dates[summary.dates.index(fault.as_of) + 1]
+            expected |= {(fault.as_of, fault.book), (after, fault.book)}
+        elif fault.kind in ("official_break", "early_exercise"):
+            expected.add((fault.as_of, fault.book))
+    con = duckdb.connect(str(into / "archive.duckdb"), read_only=True)
+    rows = con.execute("SELECT as_of, book, official_pnl, official_break FROM book_pnl ORDER BY as_of, book").fetchall()
+    con.close()
+    assert len(rows) == 7 * 7 and all(official is not None for _, _, official, _ in rows)
+    over = {(as_of, book): brk for as_of, book, _, brk in rows if abs(brk) > OFFICIAL_BREAK_LIMIT}
+    assert set(over) == expected, over
+    late = [f for f in summary.faults if f.kind == "late_booking"]
+    if late:
+        after = summary.dates[summary.dates.index(late[0].as_of) + 1]
+        first, second = over[(late[0].as_of, late[0].book)], over[(after, late[0].book)]
+        assert first * second < 0  # the break reverses when the trade reaches the files
+
+
+def test_exercise_is_archived_as_exercised_and_fx_books_hold_forwards(demo, tmp_path):
+    """The early exercise's trade is archived with status `exercised`, its delivered shares as a new trade; the FX
+    options book's hedges are FX forwards (kind forward)."""
+    into, _ = demo
+    summary = build_demo(tmp_path / "again", business_days=8)
+    (exercise,) = [f for f in summary.faults if f.kind == "early_exercise"]
+    con = duckdb.connect(str(into / "archive.duckdb"), read_only=True)
+    status = con.execute("SELECT status, exercise FROM position_pnl WHERE as_of = ? AND trade_id = ?",
+                         [exercise.as_of, exercise.instrument_or_trade]).fetchall()
+    delivered = con.execute("SELECT status, kind FROM position_pnl WHERE as_of = ? AND trade_id LIKE '%EX-%'",
+                            [exercise.as_of]).fetchall()
+    kinds = {k for (k,) in con.execute("SELECT DISTINCT kind FROM position_pnl WHERE book = 'fx-options' "
+                                       "AND strategy = 'delta hedge'").fetchall()}
+    con.close()
+    assert status == [("exercised", "american")]
+    assert delivered == [("new", "underlying")]
+    assert kinds == {"forward"}

@@ -386,10 +386,12 @@ def _official(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, tra
                                     "in option_marks: official P&L break"))
     if exercise is not None:
         name = desk.underlyings[exercise.und].name
+        plural = "" if abs(exercise.contracts) == 1 else "s"
         planted.append(PlantedFault(market.dates[exercise.night].item(), books[exercise.book],
                                     str(trade_ids[exercise.row]), "early_exercise",
-                                    f"{exercise.activity} of {exercise.contracts:g} American "
-                                    f"{'calls' if exercise.is_call else 'puts'} {ids[exercise.instrument]} deep in the "
+                                    f"{exercise.activity} of {abs(exercise.contracts):g} American "
+                                    f"{'call' if exercise.is_call else 'put'}{plural}"
+                                    f" {ids[exercise.instrument]} deep in the "
                                     f"money ({name} {market.spot[exercise.night, exercise.und]:.4g}, strike "
                                     f"{exercise.strike:g}); {exercise.shares:+g} shares delivered "
                                     f"({hedges.delivered_trade}), unwound the next night"))
@@ -564,6 +566,8 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
     _write(root, desk, market, store, trades, nights, ids, trade_ids, schedule, before_split, hedges, booked_wrong,
            official, late)
     counts = np.array([night.rows.size for night in nights])
+    if late is not None:
+        counts[late.night] -= 1  # the late-booked trade is in that night's files only the next night
     first, last_expiry = dates[0].item(), store.expiry.max().item()
     return DemoSummary(
         data_root=root, desk=desk.name, definition=Path(definition) if definition else default_definition(),
