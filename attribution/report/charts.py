@@ -1,9 +1,9 @@
 """Geometry of the report's inline SVG charts: waterfall, history lines and paired small bars.
 
 The functions here are pure: numbers in, frozen dataclasses of pixel coordinates and label text
-out. The SVG markup itself lives in ``templates/charts.html`` (Jinja2 macros, autoescaped), so no
-markup is assembled by string concatenation. Number formatting used by both the charts and the
-page tables lives here too, so a figure reads the same everywhere.
+out. The SVG markup is written from them by :mod:`~attribution.report.svg` (every text escaped).
+Number formatting used by both the charts and the page tables lives here too, so a figure reads
+the same everywhere.
 """
 
 from __future__ import annotations

@@ -8,7 +8,7 @@ from collections.abc import Sequence
 import jinja2
 import markupsafe
 
-from attribution.report import charts
+from attribution.report import charts, svg
 from attribution.report.pages import BookPage, NightView
 
 EXCEPTIONS_SHOWN = 50  # rows listed on a book page; the night's exceptions page lists them all
@@ -56,6 +56,7 @@ def make_environment(bytecode_cache: jinja2.BytecodeCache | None = None) -> jinj
     env.filters["amount_cells"] = amount_cells
     env.filters["file_name"] = lambda path: str(path).replace("\\", "/").rsplit("/", 1)[-1]
     env.globals["missing"] = charts.is_missing
+    env.globals["chart"] = svg  # chart.waterfall, chart.lines, chart.pair: SVG markup written in Python
     env.globals["exceptions_shown"] = EXCEPTIONS_SHOWN
     return env
 

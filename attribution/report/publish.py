@@ -40,17 +40,24 @@ def write_atomically(target: Path, files: Mapping[str, str]) -> None:
         os.close(folder)
 
 
+def _plain_name(name: str) -> bool:
+    """A file name with no folder part (no separator, not ``.`` or ``..``, no NUL): a direct child of the folder."""
+    seps = {"/", os.sep, os.altsep or "/", "\0"}
+    return bool(name) and name not in (".", "..") and not any(sep in name for sep in seps)
+
+
 def _stage_and_move(target: Path, files: Mapping[str, str]) -> None:
     _remove_leftovers(target)
     staging = target.parent / f".{target.name}.tmp-{secrets.token_hex(6)}"
     staging.mkdir()  # the usual permissions (umask), unlike a private mkdtemp folder
     old: Path | None = None
     try:
-        for name, text in files.items():
-            path = (staging / name).resolve()
-            if path.parent != staging.resolve():
+        for name in files:
+            if not _plain_name(name):
                 raise ReportError(f"report: file name {name!r} would leave the report folder")
-            path.write_text(text, encoding="utf-8")
+        for name, text in files.items():
+            with open(staging / name, "w", encoding="utf-8") as out:  # a new file in the new folder
+                out.write(text)
         if target.exists():
             old = target.parent / f".{target.name}.old-{secrets.token_hex(6)}"
             target.rename(old)
