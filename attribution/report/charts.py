@@ -96,8 +96,13 @@ def _amount_bytes(v: np.ndarray, head: bytes, tail: bytes) -> tuple[np.ndarray, 
     negative = np.flatnonzero(fast & (rounded < 0))
     columns[field_end - 1 - (digits + (digits - 1) // 3)[negative], negative] = ord("-")
     out = np.ascontiguousarray(columns.T)
+    missing = np.isnan(v)  # NULL: every such cell reads the same, written at once
+    if missing.any():
+        text = np.frombuffer(head + MISSING.encode("utf-8") + tail, dtype=np.uint8)
+        out[missing] = 0
+        out[missing, :text.size] = text
     too_long = []
-    for i in np.flatnonzero(~fast).tolist():
+    for i in np.flatnonzero(~fast & ~missing).tolist():  # infinities and huge values
         text = head + format_amount(float(v[i])).encode("utf-8") + tail
         out[i] = 0
         if len(text) <= width:

@@ -9,7 +9,7 @@ import jinja2
 import markupsafe
 
 from attribution.report import charts, svg
-from attribution.report.pages import BookPage, NightView
+from attribution.report.pages import BookPage, NightView, State
 
 EXCEPTIONS_SHOWN = 50  # rows listed on a book page; the night's exceptions page lists them all
 
@@ -25,6 +25,13 @@ def amount_cells(values: Sequence[float | None]) -> markupsafe.Markup:
     sign or the missing-value dash), so it holds nothing to escape.
     """
     return markupsafe.Markup(_cells(charts.format_amounts(values)))
+
+
+def badge(state: State) -> markupsafe.Markup:
+    """A state as its coloured mark and its word (the tone names the colour class)."""
+    esc = markupsafe.escape
+    return markupsafe.Markup(f'<span class="state state-{esc(state.tone)}"><span class="mark"></span>'
+                             f"{esc(state.word)}</span>")
 
 
 def _format_quantity(value: float | None) -> str:
@@ -56,6 +63,7 @@ def make_environment(bytecode_cache: jinja2.BytecodeCache | None = None) -> jinj
     env.filters["amount_cells"] = amount_cells
     env.filters["file_name"] = lambda path: str(path).replace("\\", "/").rsplit("/", 1)[-1]
     env.globals["missing"] = charts.is_missing
+    env.globals["badge"] = badge
     env.globals["chart"] = svg  # chart.waterfall, chart.lines, chart.pair: SVG markup written in Python
     env.globals["exceptions_shown"] = EXCEPTIONS_SHOWN
     return env

@@ -30,9 +30,12 @@ def texts(frame: pd.DataFrame, column: str) -> list[str]:
 
 
 def escaped(frame: pd.DataFrame, column: str) -> list[str]:
-    """A column as escaped HTML text (NULL as the empty string)."""
-    esc = markupsafe.escape
-    return [str(esc(t)) for t in texts(frame, column)]
+    """A column as escaped HTML text (NULL as the empty string), each distinct text escaped once."""
+    if not len(frame):
+        return []
+    codes, distinct = pd.factorize(frame[column].astype("string").fillna(""), sort=False)
+    shown = np.array([str(markupsafe.escape(t)) for t in distinct], dtype=object)
+    return shown[codes].tolist() if len(shown) else [""] * len(frame)
 
 
 def floats(frame: pd.DataFrame, columns: Sequence[str]) -> np.ndarray:
