@@ -239,11 +239,14 @@ def _strategies(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> pd.DataFrame:
 def _exposure_changes(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> pd.DataFrame:
     """Per book: the underlyings whose exposures at the prior state moved most since the previous archived night,
     ranked by the larger of |change of delta cash| / 100 (a 1 % move's P&L) and |change of vega per vol point|."""
+    previous = con.execute("SELECT max(as_of) FROM runs WHERE as_of < ?", [as_of]).fetchone()
+    # the two dates as values, so the scan reads only their row groups
+    dates = [as_of, previous[0] if previous and previous[0] is not None else as_of]
     return _frame(con, """
         WITH prev AS (SELECT max(as_of) AS d FROM runs WHERE as_of < ?),
              x AS (SELECT as_of, book, underlying, sum(delta_cash) AS dc, sum(gamma_cash_1pct) AS g,
                           sum(vega_per_vol_point) AS v, sum(theta_per_calendar_day) AS t
-                   FROM position_pnl WHERE as_of = ? OR as_of = (SELECT d FROM prev) GROUP BY ALL),
+                   FROM position_pnl WHERE as_of IN (?, ?) GROUP BY ALL),
              n AS (SELECT * FROM x WHERE as_of = ?), o AS (SELECT * FROM x WHERE as_of <> ?),
              j AS (SELECT coalesce(n.book, o.book) AS book, coalesce(n.underlying, o.underlying) AS underlying,
                           coalesce(o.dc, 0) AS delta_cash_before, coalesce(n.dc, 0) AS delta_cash,
@@ -259,7 +262,7 @@ def _exposure_changes(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> pd.Data
         WHERE m.moved >= cut.least
         QUALIFY row_number() OVER (PARTITION BY m.book ORDER BY m.moved DESC, m.underlying) <= ?
         ORDER BY m.book, m.moved DESC, m.underlying""",
-                  [as_of, as_of, as_of, as_of, as_of, TOP_EXPOSURE_CHANGES, TOP_EXPOSURE_CHANGES])
+                  [as_of, *dates, as_of, as_of, as_of, TOP_EXPOSURE_CHANGES, TOP_EXPOSURE_CHANGES])
 
 
 
