@@ -262,7 +262,7 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     schedule = schedule_frame(as_of, prior_as_of, clean1.dividends, clean0.dividends, pairs, clean1.curves, basis)
     positions = cash_rows(positions, clean1, config.reporting_currency, log, books)
     watch.lap("explain")
-    positions["limit_state"] = position_limit_states(positions, config)
+    positions["limit_state"] = pd.Series(position_limit_states(positions, config), index=positions.index, dtype=object)
     ledger = position_books(raw0, raw1, log.frame(keyless=True))
     rejected = rejected_positions(ledger)
     exceptions = ledger.drop(columns="position")

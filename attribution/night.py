@@ -273,7 +273,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         ((has_prior & market0.rolled()[i0]) | (~expired & market1.rolled()[i1]), "mark_rolled"),
     ], n)
 
-    frame = pd.DataFrame({
+    values: dict[str, object] = {
         "as_of": pd.Timestamp(as_of), "prior_as_of": pd.Timestamp(prior_as_of),
         "book": legs.book, "trade_id": legs.trade_id, "instrument_id": legs.instrument_id,
         "underlying": market1.underlying[i1], "currency": market1.currency[i1], "status": status, "flags": flags,
@@ -292,12 +292,27 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         "div_pv_prior": np.where(has_prior, market0.dividend_pv[i0], np.nan),
         "div_pv_run": np.where(expired, np.nan, market1.dividend_pv[i1]),
         **cols,
-        "limit_state": "within",
+        "limit_state": np.full(n, "within", dtype=object),
         "kind": _names(kind, KIND_NAMES),
         "exercise": np.where(option, np.where(american, "american", "european"), None).astype(object),
         "strategy": _strategy(legs, prior, run),
-    })
-    return frame[[name for name, _ in POSITION_PNL]]
+    }
+    return position_frame(values, n)
+
+
+def position_frame(values: dict[str, object], n: int) -> pd.DataFrame:
+    """The ``position_pnl`` frame of ``values`` (name -> array or scalar), in the archive's column order.
+
+    Built once, without copies: every array becomes its own column as it is (nothing is consolidated or
+    reordered afterwards), and text columns stay Python objects (no conversion of a million strings
+    into another string type: the archive converts them once, dictionary-encoded).
+    """
+    def column(value: object) -> object:
+        if isinstance(value, np.ndarray) and value.dtype == object:
+            return pd.Series(value, dtype=object, copy=False)
+        return value
+
+    return pd.DataFrame({name: column(values[name]) for name, _ in POSITION_PNL}, index=pd.RangeIndex(n), copy=False)
 
 
 def _strategy(legs: Legs, prior: CleanNight, run: CleanNight) -> NDArray[np.object_]:
@@ -356,18 +371,21 @@ def reject_non_finite(frame: pd.DataFrame, prior_file: str, run_file: str, log: 
     rate, an underflow from a denormal spot) leave the night with a ``rejected`` row keyed by the
     trade_id, naming the columns and the inputs to check; nothing non-finite reaches the archive."""
     amounts = [c for c in (*PNL_COLUMNS, *EXPOSURE_COLUMNS, *V2_AMOUNT_COLUMNS) if c in frame.columns]
-    values = frame[amounts].to_numpy(dtype=float)
-    bad_cell = ~np.isfinite(values)
     unpriced = (frame["status"] == NEW_UNPRICED).to_numpy()  # no trade price: pnl_new_trade is NULL by design
+    suspect = _non_finite_rows(frame, amounts, unpriced)  # column by column: no copy of the whole table
+    if not suspect.any():
+        return frame
+    rows = frame.loc[suspect]
+    values = rows[amounts].to_numpy(dtype=float)
+    bad_cell = ~np.isfinite(values)
+    unpriced = (rows["status"] == NEW_UNPRICED).to_numpy()
     bad_cell[:, amounts.index("pnl_new_trade")] &= ~(unpriced & np.isnan(values[:, amounts.index("pnl_new_trade")]))
-    reval = frame[list(REVAL_COLUMNS)].to_numpy(dtype=float)
+    reval = rows[list(REVAL_COLUMNS)].to_numpy(dtype=float)
     bad_reval = np.isinf(reval) | (np.isnan(reval) & ~np.isnan(reval).all(axis=1, keepdims=True))
     bad = bad_cell.any(axis=1) | bad_reval.any(axis=1)
-    if not bad.any():
-        return frame
     names = np.array(amounts + list(REVAL_COLUMNS), dtype=object)
     cells = np.concatenate([bad_cell, bad_reval], axis=1)[bad]
-    rows = frame.loc[bad]
+    rows = rows.loc[bad]
     detail = [f"{', '.join(names[c][:4])}{' ...' if c.sum() > 4 else ''} not finite; inputs: multiplier {m:.6g}, "
               f"fx_rate {f:.6g}, spot {s0:.6g} -> {s1:.6g}, price {p0:.6g} -> {p1:.6g}"
               for c, m, f, s0, s1, p0, p1 in zip(cells, rows["multiplier"], rows["fx_rate"], rows["spot_prior"],
@@ -377,4 +395,24 @@ def reject_non_finite(frame: pd.DataFrame, prior_file: str, run_file: str, log: 
     trades = rows["trade_id"].to_numpy(dtype=object)
     for file, mine in ((prior_file, on_prior), (run_file, ~on_prior)):
         log.add(file, trades[mine], "P&L is not a finite number", detail_arr[mine])
-    return frame.loc[~bad].reset_index(drop=True)
+    return frame.loc[~frame.index.isin(rows.index)].reset_index(drop=True)
+
+
+def _non_finite_rows(frame: pd.DataFrame, amounts: list[str], unpriced: NDArray[np.bool_]) -> NDArray[np.bool_]:
+    """Rows with an amount or a revaluation share that is not finite (a NaN share only when the row has another)."""
+    bad = np.zeros(len(frame), dtype=bool)
+    for name in amounts:
+        values = frame[name].to_numpy(dtype=float)
+        cell = ~np.isfinite(values)
+        if name == "pnl_new_trade":
+            cell &= ~(unpriced & np.isnan(values))
+        bad |= cell
+    nan_share = np.zeros(len(frame), dtype=bool)
+    all_nan = np.ones(len(frame), dtype=bool)
+    for name in REVAL_COLUMNS:
+        values = frame[name].to_numpy(dtype=float)
+        bad |= np.isinf(values)
+        nan_share |= np.isnan(values)
+        all_nan &= np.isnan(values)
+    return bad | (nan_share & ~all_nan)
+

@@ -184,14 +184,22 @@ def value_and_greeks(strike: FloatArray, cp: FloatArray, state: MarketState, ame
 
 
 def _delta_one_shares(kind: NDArray[np.int8], strike: FloatArray, pairs: list[tuple[FloatArray, FloatArray]],
-                      pv: tuple[FloatArray, FloatArray], rows: NDArray[np.intp]) -> FloatArray:
-    """Shapley shares (factors x rows) of delta-one rows: their 32 states valued by :func:`delta_one`."""
-    by_state = np.empty((N_STATES, rows.size))
+                      pv: tuple[FloatArray, FloatArray], rows: NDArray[np.intp],
+                      group: NDArray[np.intp] | None = None) -> FloatArray:
+    """Shapley shares (factors x rows) of delta-one rows: their 32 states valued by :func:`delta_one`
+    (once per ``group``: rows of one group share both states), split over every row."""
+    if group is None:
+        first, inverse = np.arange(rows.size), None
+    else:
+        first, inverse = _distinct(rows, group, ())
+    u = rows[first]
+    by_state = np.empty((N_STATES, u.size))
     for state in range(N_STATES):
-        spot, _vol, tau, rate, div = (pair[state >> f & 1][rows] for f, pair in enumerate(pairs))
-        escrowed = spot - pv[state >> 4 & 1][rows]  # the dividends' value moves with the dividend factor
-        by_state[state] = delta_one(kind[rows], spot, escrowed, strike[rows], tau, rate, div)[0]
-    return shapley_allocate(by_state)
+        spot, _vol, tau, rate, div = (pair[state >> f & 1][u] for f, pair in enumerate(pairs))
+        escrowed = spot - pv[state >> 4 & 1][u]  # the dividends' value moves with the dividend factor
+        by_state[state] = delta_one(kind[u], spot, escrowed, strike[u], tau, rate, div)[0]
+    # the split itself runs over every row, as it always has (its sums depend on where a row sits in the array)
+    return shapley_allocate(by_state if inverse is None else by_state[:, inverse])
 
 
 def _european_shares(strike: FloatArray, cp: FloatArray, state0: MarketState, state1: MarketState,
@@ -225,10 +233,11 @@ def revaluation_shares(strike: FloatArray, cp: FloatArray, state0: MarketState, 
     if not d1.size:
         shares = _european_shares(strike, cp, state0, state1, None)
     else:  # the European kernel refuses a delta-one row's terms (no strike, no vol): options alone go there
-        shares = _european_shares(strike, cp, state0, state1, np.setdiff1d(np.arange(strike.size), d1))
+        options = np.flatnonzero(np.asarray(kind)[: strike.size] == OPTION)  # every row but d1, in order
+        shares = _european_shares(strike, cp, state0, state1, options)
         pairs = [(getattr(state0, f), getattr(state1, f)) for f in ("spot", "vol", "tau_years", "rate", "div_yield")]
         pv = (np.asarray(state0.div_pv, dtype=float), np.asarray(state1.div_pv, dtype=float))
-        one = _delta_one_shares(np.asarray(kind), strike, pairs, pv, d1)
+        one = _delta_one_shares(np.asarray(kind), strike, pairs, pv, d1, group)
         out = [getattr(shares, name) for name in FACTOR_NAMES]
         for f in range(len(FACTOR_NAMES)):
             out[f][d1] = one[f]

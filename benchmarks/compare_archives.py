@@ -2,6 +2,7 @@
 such runs column by column (and their report pages byte by byte, run identifiers masked).
 
     python benchmarks/compare_archives.py run OUT [--days 261] [--nights 3]
+    python benchmarks/compare_archives.py synthetic OUT [--positions 1000000] [--books 1000] ...
     python benchmarks/compare_archives.py compare OUT_BEFORE OUT_AFTER
 
 ``run`` builds the demo desk's data (``--days`` business days, the demo's default seed) in
@@ -10,6 +11,10 @@ such runs column by column (and their report pages byte by byte, run identifiers
 line and ``build_demo``, so the same script runs on the code before and after a change (for the
 code of another commit: ``git archive <commit> | tar -x -C DIR``, then run from ``DIR`` with
 ``PYTHONPATH=DIR``).
+
+``synthetic`` writes ``attribution bench``'s synthetic night (:mod:`attribution.synthetic`: the same
+seed, so the same files on both sides; hedges and American options included) of the given size in
+``OUT/data`` and runs its night with the command line into ``OUT/archive.duckdb`` and ``OUT/reports``.
 
 ``compare`` prints, per archive table, the rows on each side and every column whose values differ
 (exactly: the same floats, the same texts, the same NULLs); the run record's clock, identity and
@@ -56,6 +61,21 @@ def run(out: Path, days: int, nights: int) -> None:
     if done.returncode not in (0, 3):
         sys.exit(f"backfill failed ({done.returncode}): {done.stderr}")
     print(f"archived {nights} night(s) {dates[-nights]} .. {dates[-1]} into {out / 'archive.duckdb'}")
+
+
+def run_synthetic(out: Path, positions: int, books: int, instruments: int, underlyings: int) -> None:
+    """Write the bench's synthetic night and run it through the command line."""
+    from attribution.synthetic import write_synthetic_night
+
+    out.mkdir(parents=True, exist_ok=True)
+    night = write_synthetic_night(out / "data", positions, books, instruments, underlyings)
+    cmd = [sys.executable, "-m", "attribution.cli", "run", "--as-of", night.run.isoformat(),
+           "--data", str(out / "data"), "--archive", str(out / "archive.duckdb"), "--reports", str(out / "reports")]
+    done = subprocess.run(cmd, capture_output=True, text=True, check=False)
+    print(done.stdout)
+    if done.returncode not in (0, 3):
+        sys.exit(f"run failed ({done.returncode}): {done.stderr}")
+    print(f"archived the synthetic night {night.run} ({positions:,} positions) into {out / 'archive.duckdb'}")
 
 
 def _table(con: duckdb.DuckDBPyConnection, name: str) -> pd.DataFrame:
@@ -142,12 +162,22 @@ def main() -> int:
     p.add_argument("out", type=Path, nargs="?")
     p.add_argument("--days", type=int, default=261)
     p.add_argument("--nights", type=int, default=3)
+    p = sub.add_parser("synthetic")
+    p.add_argument("out", type=Path, nargs="?")
+    p.add_argument("--positions", type=int, default=1_000_000)
+    p.add_argument("--books", type=int, default=1_000)
+    p.add_argument("--instruments", type=int, default=20_000)
+    p.add_argument("--underlyings", type=int, default=500)
     p = sub.add_parser("compare")
     p.add_argument("before", type=Path)
     p.add_argument("after", type=Path)
     args = parser.parse_args()
     if args.command == "run":
         run(args.out or Path(tempfile.mkdtemp(prefix="archive-")), args.days, args.nights)
+        return 0
+    if args.command == "synthetic":
+        run_synthetic(args.out or Path(tempfile.mkdtemp(prefix="archive-")), args.positions, args.books,
+                      args.instruments, args.underlyings)
         return 0
     problems = compare_archives(args.before / "archive.duckdb", args.after / "archive.duckdb")
     problems += compare_reports(args.before / "reports", args.after / "reports")
