@@ -112,12 +112,14 @@ def conservation(raw0: RawNight, raw1: RawNight, archived: pd.Series,
     ids = []
     keyless = 0
     for raw in (raw0, raw1):
-        tid = raw.tables["positions.parquet"]["trade_id"]
-        ids.append(tid[tid.notna()].astype(str))
-        keyless += int(tid.isna().sum())
-    universe = pd.Index(pd.concat(ids).unique())
-    accounted = pd.Index(archived.astype(str)).union(pd.Index(rejected["position"].astype(str)))
-    missing = universe.difference(accounted)
+        tid = raw.tables["positions.parquet"]["trade_id"].to_numpy(dtype=object)
+        null = pd.isna(tid)
+        ids.append(tid[~null])
+        keyless += int(null.sum())
+    # trade ids are text (the loader reads them as strings): hashed as they are, once, no sorted index built
+    universe = pd.unique(np.concatenate(ids))
+    accounted = np.concatenate([archived.to_numpy(dtype=object), rejected["position"].to_numpy(dtype=object)])
+    missing = np.sort(universe[~pd.Index(universe, dtype=object).isin(accounted)])  # normally none
     return len(universe) + keyless, tuple(missing[:20].tolist())
 
 
@@ -130,11 +132,14 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
     ``rejected_sizes``: :func:`rejected_size`'s rows (a book without one left out nothing: zeros).
     """
     amounts = list(PNL_COLUMNS) + list(REVAL_COLUMNS) + list(EXPOSURE_COLUMNS) + list(V2_AMOUNT_COLUMNS)
-    grouped = positions.groupby("book", sort=True)
-    sums = grouped[amounts].sum(min_count=0)
+    # the books sorted, hashed once: every per-book figure below is a bincount or a sum over these codes
+    book_code, book_names = pd.factorize(positions["book"].to_numpy(dtype=object), sort=True)
+    grouped = positions[amounts].groupby(book_code, sort=True)
+    sums = grouped.sum(min_count=0)
     for column in REVAL_COLUMNS:  # NULL when the method is off
         sums[column] = grouped[column].sum(min_count=1)
-    counts = pd.crosstab(positions["book"], positions["status"]).reindex(columns=list(STATUSES), fill_value=0)
+    sums.index = pd.Index(book_names[sums.index], dtype=object, name="book")
+    counts = _status_counts(book_code, positions["status"].to_numpy(dtype=object), sums.index)
     rejected_books = rejected["book"].value_counts()
     warn = exceptions[exceptions["severity"] == WARNING]
     keys = warn["key"].unique()  # a warning touches a book through one of its instruments or trades
@@ -158,8 +163,9 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
     states, applied = book_states(frame["pnl_residual"], frame["pnl_actual"],
                                   [x.residual_abs for x in limits], [x.residual_rel for x in limits],
                                   [x.relative_floor for x in limits], [x.watch_fraction for x in limits])
-    breaches = (positions["limit_state"] == BREACH).groupby(positions["book"]).sum().reindex(books, fill_value=0)
-    frame["position_breaches"] = breaches.to_numpy()
+    in_breach = (positions["limit_state"] == BREACH).to_numpy(dtype=bool)
+    breaches = pd.Series(np.bincount(book_code[in_breach], minlength=len(sums)), index=sums.index)
+    frame["position_breaches"] = breaches.reindex(books, fill_value=0).to_numpy()
     frame["residual_limit"] = applied
     frame["limit_state"] = np.where((states == "within") & (frame["position_breaches"] > 0), WATCH, states)
     frame["as_of"], frame["prior_as_of"] = pd.Timestamp(as_of), pd.Timestamp(prior_as_of)
@@ -174,10 +180,19 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
     return frame[[name for name, _ in BOOK_PNL]]
 
 
+def _status_counts(book_code: np.ndarray, status: np.ndarray, books: pd.Index) -> pd.DataFrame:
+    """Positions per book (rows, in ``books``' order: the codes' order) and status (columns: STATUSES)."""
+    status_code = pd.Index(STATUSES).get_indexer(status)
+    known = status_code >= 0  # a status outside STATUSES (a book's cash row) is no position
+    cells = np.bincount(book_code[known] * len(STATUSES) + status_code[known],
+                        minlength=len(books) * len(STATUSES)).reshape(len(books), len(STATUSES))
+    return pd.DataFrame(cells.astype(np.int64), index=books, columns=list(STATUSES))
+
+
 def position_limit_states(positions: pd.DataFrame, config: JobConfig) -> np.ndarray:
     """Each position's residual limit state under its book's position limit and watch fraction."""
-    limits = [config.limits_for(b) for b in pd.unique(positions["book"])]
-    by_book = dict(zip(pd.unique(positions["book"]), limits, strict=True))
-    position_limit = positions["book"].map({b: x.position_abs for b, x in by_book.items()}).to_numpy(float)
-    fraction = positions["book"].map({b: x.watch_fraction for b, x in by_book.items()}).to_numpy(float)
+    code, books = pd.factorize(positions["book"].to_numpy(dtype=object), use_na_sentinel=False)
+    limits = [config.limits_for(b) for b in books]
+    position_limit = np.array([x.position_abs for x in limits], dtype=float)[code]
+    fraction = np.array([x.watch_fraction for x in limits], dtype=float)[code]
     return position_states(positions["pnl_residual"], position_limit, fraction)
