@@ -9,7 +9,7 @@ import jinja2
 import markupsafe
 
 from attribution.report import charts, svg
-from attribution.report.pages import BookPage, NightView, State
+from attribution.report.pages import BookPage, MethodRow, NightView, State
 
 EXCEPTIONS_SHOWN = 50  # rows listed on a book page; the night's exceptions page lists them all
 
@@ -32,6 +32,31 @@ def badge(state: State) -> markupsafe.Markup:
     esc = markupsafe.escape
     return markupsafe.Markup(f'<span class="state state-{esc(state.tone)}"><span class="mark"></span>'
                              f"{esc(state.word)}</span>")
+
+
+def _raw(value: float | None) -> str:
+    return "" if charts.is_missing(value) else repr(float(value))  # type: ignore[arg-type]
+
+
+def method_rows(methods: Sequence[MethodRow]) -> markupsafe.Markup:
+    """The factor rows of the two methods' table: each method's amount with its exact value, the difference
+    and the paired bars (a cross line's revaluation is shared into spot and vol; a missing one not computed)."""
+    esc, amount = markupsafe.escape, charts.format_amount
+    rows = []
+    for m in methods:
+        if m.key == "cross" and not charts.is_missing(m.revaluation):
+            reval: str = '<span class="sub">in spot and vol</span>'
+        elif charts.is_missing(m.revaluation):
+            reval = '<span class="sub">not computed</span>'
+        else:
+            reval = esc(amount(m.revaluation))
+        key = esc(m.key)
+        rows.append(f'<tr><td class="t">{esc(m.label)} <span class="sub small">{esc(m.taylor_terms)}</span></td>'
+                    f'<td id="m-{key}-taylor" data-value="{_raw(m.taylor)}">{esc(amount(m.taylor))}</td>'
+                    f'<td id="m-{key}-reval" data-value="{_raw(m.revaluation)}">{reval}</td>'
+                    f'<td id="m-{key}-diff" data-value="{_raw(m.difference)}">{esc(amount(m.difference))}</td>'
+                    f'<td class="t">{svg.pair(m.bar)}</td></tr>\n')
+    return markupsafe.Markup("".join(rows))
 
 
 def _format_quantity(value: float | None) -> str:
@@ -58,12 +83,13 @@ def make_environment(bytecode_cache: jinja2.BytecodeCache | None = None) -> jinj
     env.filters["percent"] = charts.format_percent
     env.filters["ratio"] = lambda v: charts.format_amount(v, 3)
     env.filters["fx_rate"] = lambda v: charts.MISSING if charts.is_missing(v) else f"{float(v):.6g}"  # 0.00667 JPY
-    env.filters["raw"] = lambda v: "" if charts.is_missing(v) else repr(float(v))
+    env.filters["raw"] = _raw
     env.filters["quantity"] = _format_quantity
     env.filters["amount_cells"] = amount_cells
     env.filters["file_name"] = lambda path: str(path).replace("\\", "/").rsplit("/", 1)[-1]
     env.globals["missing"] = charts.is_missing
     env.globals["badge"] = badge
+    env.globals["method_rows"] = method_rows
     env.globals["chart"] = svg  # chart.waterfall, chart.lines, chart.pair: SVG markup written in Python
     env.globals["exceptions_shown"] = EXCEPTIONS_SHOWN
     return env
