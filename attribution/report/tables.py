@@ -90,10 +90,14 @@ def underlying_rows(frame: pd.DataFrame, terms: Sequence[str]) -> dict[str, Rows
     return by_book(frame, rows)
 
 
-def _quantity(value: float) -> str:
-    if value != value:
-        return charts.MISSING
-    return charts.format_amount(value, 0 if value.is_integer() else 2)
+def _quantities(values: np.ndarray) -> list[str]:
+    """Quantities as cells: whole contracts without decimals, fractions with two (vectorised where whole)."""
+    whole = np.isnan(values) | (values == np.rint(values))
+    out = cells(np.where(whole, values, np.nan))
+    for i in np.flatnonzero(~whole.all(axis=1)).tolist():
+        out[i] = "".join(f"<td>{charts.format_amount(v, 0 if v.is_integer() else 2)}</td>" if v == v
+                         else f"<td>{charts.MISSING}</td>" for v in values[i].tolist())
+    return out
 
 
 def position_rows(frame: pd.DataFrame, text: Sequence[str], values: Sequence[str]) -> dict[str, Rows]:
@@ -108,18 +112,19 @@ def position_rows(frame: pd.DataFrame, text: Sequence[str], values: Sequence[str
     for i in unpriced:
         new_trade[i] = "<td>unpriced</td>"
     after = cells(numbers[:, 3 + _NEW_TRADE_AT:])
-    quantities = [f"<td>{_quantity(a)}</td><td>{_quantity(b)}</td>" for a, b in numbers[:, :2].tolist()]
-    trade = escaped(frame, "trade_id")
-    instrument, underlying, status, flags, limit = (texts(frame, c) for c in text)
-    esc = markupsafe.escape
-    rows = []
-    for i, (lim, flag) in enumerate(zip(limit, flags, strict=True)):
-        limit_word = f" &middot; <strong>{esc(lim)}</strong>" if lim and lim != "within" else ""
-        flag_line = f'<br><span class="sub small">{esc(flag.replace(",", ", "))}</span>' if flag else ""
-        rows.append(f'<tr class="row-{esc(lim)}"><td class="t">{trade[i]}</td><td class="t">{esc(instrument[i])}</td>'
-                    f'<td class="t">{esc(underlying[i])}</td>'
-                    f'<td class="t wrap">{esc(status[i])}{limit_word}{flag_line}</td>'
-                    f"{quantities[i]}{before[i]}{new_trade[i]}{after[i]}</tr>\n")
+    quantities = _quantities(numbers[:, :2])
+    instrument_col, underlying_col, status_col, flags_col, limit_col = text
+    instrument, underlying, status = (escaped(frame, c) for c in (instrument_col, underlying_col, status_col))
+    flag_lines = [f'<br><span class="sub small">{t}</span>' if t else "" for t in
+                  escaped(frame.assign(shown_flags=texts(frame, flags_col)).assign(
+                      shown_flags=lambda f: f["shown_flags"].str.replace(",", ", ", regex=False)), "shown_flags")]
+    limit = escaped(frame, limit_col)
+    limit_words = [f" &middot; <strong>{t}</strong>" if t and t != "within" else "" for t in limit]
+    rows = [f'<tr class="row-{lim}"><td class="t">{trade}</td><td class="t">{ins}</td><td class="t">{und}</td>'
+            f'<td class="t wrap">{st}{word}{flag}</td>{q}{a}{b}{c}</tr>\n'
+            for lim, trade, ins, und, st, word, flag, q, a, b, c in zip(
+                limit, escaped(frame, "trade_id"), instrument, underlying, status, limit_words, flag_lines,
+                quantities, before, new_trade, after, strict=True)]
     return by_book(frame, rows)
 
 
