@@ -101,8 +101,11 @@ class InstrumentMarket:
 
 def take(values: NDArray[np.generic], index: NDArray[np.intp], fill: object) -> NDArray[np.generic]:
     """``values[index]``, with ``fill`` where ``index`` is -1 (safe when ``values`` is empty)."""
+    dtype = np.result_type(values.dtype, np.asarray(fill).dtype)
     found = index >= 0
-    out = np.full(len(index), fill, dtype=np.result_type(values.dtype, np.asarray(fill).dtype))
+    if found.all():  # the usual case: one gather, no fill array (a million object slots cost more than the gather)
+        return values[index].astype(dtype, copy=False)
+    out = np.full(len(index), fill, dtype=dtype)
     out[found] = values[index[found]]
     return out
 
