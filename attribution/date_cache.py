@@ -39,7 +39,7 @@ import pandas as pd
 from attribution.config import CheckSettings
 from attribution.contract import CleanNight, clean_holdings
 from attribution.exceptions_log import ExceptionLog
-from attribution.loading import RawNight, folder_stamp, read_night
+from attribution.loading import RawNight, available_dates, folder_stamp, read_night
 from attribution.market import InstrumentMarket
 
 Parts = tuple[pd.DataFrame, ...]
@@ -84,6 +84,18 @@ class DateCache:
     keep: int = 2
     reused: dict[str, int] = field(default_factory=lambda: {"read": 0, "validate": 0, "market": 0})
     _dates: dict[dt.date, _Date] = field(default_factory=dict)
+    _listing: tuple[Path, int, list[dt.date]] | None = None
+
+    def available_dates(self, data_root: Path) -> list[dt.date]:
+        """:func:`attribution.loading.available_dates`, listed again only when the data folder changed
+        (a folder added, removed or renamed changes its modification time)."""
+        try:
+            changed = data_root.stat().st_mtime_ns
+        except OSError:
+            return available_dates(data_root)  # raises the usual message
+        if self._listing is None or self._listing[:2] != (data_root, changed):
+            self._listing = (data_root, changed, available_dates(data_root))
+        return list(self._listing[2])
 
     def read(self, data_root: Path, as_of: dt.date) -> RawNight:
         """The date's files (:func:`attribution.loading.read_night`), read again when any of them changed."""

@@ -143,10 +143,12 @@ def warn_missing_days(config: JobConfig, basis: TimeBasis, prior_as_of: dt.date,
                 WARNING)
 
 
-def resolve_prior(config: JobConfig, as_of: dt.date, prior: dt.date | None) -> dt.date:
-    """The prior date given, checked to be before the run date; else the latest data folder before it."""
+def resolve_prior(config: JobConfig, as_of: dt.date, prior: dt.date | None,
+                  listed: list[dt.date] | None = None) -> dt.date:
+    """The prior date given, checked to be before the run date; else the latest data folder before it
+    (``listed``: the data folder's dates when already known)."""
     if prior is None:
-        return prior_date(config.data_root, as_of)
+        return prior_date(config.data_root, as_of, listed)
     if prior >= as_of:
         raise ConfigError(f"--prior: prior date {prior} must be before the run date {as_of}")
     return prior
@@ -199,7 +201,8 @@ def _market(config: JobConfig, basis: TimeBasis, clean: CleanNight, terms: pd.Da
         return build()
     as_of = clean.raw.as_of
     sources = tuple((d, folder_stamp(config.data_root, d))
-                    for d in roll_dates(config.data_root, as_of, basis, config.checks.mark_roll_days))
+                    for d in roll_dates(config.data_root, as_of, basis, config.checks.mark_roll_days,
+                                        shared.available_dates(config.data_root)))
     key = (basis, config.checks, config.american_precision, config.reporting_currency, config.data_root, sources)
     return shared.market(clean, terms, key, log, build)
 
@@ -216,8 +219,9 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     and market state computed for the previous night are reused where they are the same work.
     """
     watch = Stopwatch(progress)
-    prior_as_of = resolve_prior(config, as_of, prior)
     shared = cache if books is None else None  # a part of a night (one group of books) is never shared
+    prior_as_of = resolve_prior(config, as_of, prior, None if shared is None else
+                                shared.available_dates(config.data_root))
     if shared is None:
         raw0 = read_night(config.data_root, prior_as_of, books, keep_null_books)
         raw1 = read_night(config.data_root, as_of, books, keep_null_books)

@@ -108,9 +108,9 @@ def available_dates(data_root: Path) -> list[dt.date]:
     return sorted(dates)
 
 
-def prior_date(data_root: Path, as_of: dt.date) -> dt.date:
-    """The latest ``as_of`` folder strictly before ``as_of``."""
-    earlier = [d for d in available_dates(data_root) if d < as_of]
+def prior_date(data_root: Path, as_of: dt.date, listed: list[dt.date] | None = None) -> dt.date:
+    """The latest ``as_of`` folder strictly before ``as_of`` (``listed``: the folder's dates when known)."""
+    earlier = [d for d in (available_dates(data_root) if listed is None else listed) if d < as_of]
     if not earlier:
         raise InputFileError(f"{data_root}: no as_of folder before {as_of} to serve as the prior date")
     return earlier[-1]

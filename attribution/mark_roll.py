@@ -82,8 +82,10 @@ def roll_marks(market: InstrumentMarket, terms: pd.DataFrame, config: JobConfig,
                                usable=reason == "", reason=reason, mark_rolled=rolled)
 
 
-def roll_dates(data_root: object, as_of: object, basis: TimeBasis, max_days: int) -> list:
-    """Folders before ``as_of`` within ``max_days`` business days of it, latest first."""
+def roll_dates(data_root: object, as_of: object, basis: TimeBasis, max_days: int, listed: list | None = None) -> list:
+    """Folders before ``as_of`` within ``max_days`` business days of it, latest first (``listed``: the data
+    folder's dates when already known)."""
     holidays = np.array(basis.holidays, dtype="datetime64[D]")
-    earlier = [d for d in available_dates(data_root) if d < as_of]  # type: ignore[arg-type, operator]
+    dates = available_dates(data_root) if listed is None else listed  # type: ignore[arg-type]
+    earlier = [d for d in dates if d < as_of]  # type: ignore[operator]
     return [d for d in reversed(earlier) if np.busday_count(d, as_of, holidays=holidays) <= max_days]

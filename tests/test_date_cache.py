@@ -100,3 +100,15 @@ def test_backfill_archive_equals_single_runs(desk, tmp_path):
     a, b = _tables(filled.archive_path), _tables(single.archive_path)
     for name in a:
         pd.testing.assert_frame_equal(a[name], b[name], check_exact=True, obj=name)
+
+
+def test_folder_listing_is_read_again_when_a_folder_is_added(tmp_path):
+    """The data folder's dates (README, "Input files": one `as_of=` folder per date) are listed again when a
+    folder is added or removed during a backfill, so a later night finds its new prior."""
+    cache = DateCache()
+    (tmp_path / "as_of=2026-11-02").mkdir()
+    assert cache.available_dates(tmp_path) == [dt.date(2026, 11, 2)]
+    (tmp_path / "as_of=2026-11-03").mkdir()
+    assert cache.available_dates(tmp_path) == [dt.date(2026, 11, 2), dt.date(2026, 11, 3)]
+    (tmp_path / "as_of=2026-11-02").rmdir()
+    assert cache.available_dates(tmp_path) == [dt.date(2026, 11, 3)]
