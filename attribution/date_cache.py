@@ -84,13 +84,15 @@ class DateCache:
     keep: int = 2
     reused: dict[str, int] = field(default_factory=lambda: {"read": 0, "validate": 0, "market": 0})
     _dates: dict[dt.date, _Date] = field(default_factory=dict)
-    _listing: tuple[Path, int, list[dt.date]] | None = None
+    _listing: tuple[Path, tuple[int, int, int], list[dt.date]] | None = None
 
     def available_dates(self, data_root: Path) -> list[dt.date]:
         """:func:`attribution.loading.available_dates`, listed again only when the data folder changed
-        (a folder added, removed or renamed changes its modification time)."""
+        (a folder added, removed or renamed changes its modification time and, added or removed, its
+        link count)."""
         try:
-            changed = data_root.stat().st_mtime_ns
+            st = data_root.stat()
+            changed = (st.st_mtime_ns, st.st_nlink, st.st_ino)  # a sub-folder added or removed changes the count
         except OSError:
             return available_dates(data_root)  # raises the usual message
         if self._listing is None or self._listing[:2] != (data_root, changed):
