@@ -347,7 +347,7 @@ def _option_holdings(desk: DeskSpec, market: MarketPaths, store: ListedInstrumen
     codes = [c.code for c in desk.currencies]
     ccy = np.array([codes.index(u.currency) for u in desk.underlyings])[und]
     no = np.zeros(inst.size, dtype=bool)
-    return Holdings(trade=trade_ids[night.rows], book=trades.book[night.rows], und=und, ccy=ccy,
+    return Holdings(trade=trade_ids[night.rows], key=night.rows, book=trades.book[night.rows], und=und, ccy=ccy,
                     quantity=night.quantity, multiplier=desk.param("multiplier")[und] * split[inst], value=value,
                     future=no, share=no)
 
@@ -370,9 +370,13 @@ def _official(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, tra
                                        corrected.get(d, {})), hedges.holdings[d]]) for d, night in enumerate(nights)]
     events = DeskEvents(hedges.activity, hedges.cash_flows, schedule.und, schedule.ex_date, schedule.amount)
     ratio = [np.ones(len(desk.underlyings))] + [b / a for a, b in zip(hedge_splits, hedge_splits[1:], strict=False)]
+    key_of = {t: k for k, t in enumerate(trade_ids.tolist())}
+    for h in hedges.holdings:  # the hedges (a few dozen) and the delivered shares
+        key_of.update(zip(h.trade.tolist(), h.key.tolist(), strict=True))
     official = desk_pnl(holdings, events, market.dates, market.fx_to_reporting, ratio,
-                        [c.code for c in desk.currencies], books)
-    late = late_booking(holdings, hedges.activity, market.fx_to_reporting, LATE_BOOKING_AT, 4 * OFFICIAL_BREAK_LIMIT)
+                        [c.code for c in desk.currencies], books, key_of)
+    late = late_booking(holdings, hedges.activity, market.fx_to_reporting, LATE_BOOKING_AT, 4 * OFFICIAL_BREAK_LIMIT,
+                        key_of)
     planted = []
     if late is not None:
         day, after = market.dates[late.night].item(), market.dates[late.night + 1].item()

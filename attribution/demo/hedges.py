@@ -205,8 +205,8 @@ def hedge_book(desk: DeskSpec, market: MarketPaths, store: ListedInstruments, tr
                           "quantity": pa.array(rows["quantity"]), "trade_date": pa.array(trade_date, pa.date32()),
                           "trade_price": pa.array(trade_price, pa.float64(), mask=np.isnan(trade_price))})
         u_rows = np.append(cells[:, 1], und)[:n_rows]
-        holdings.append(Holdings(trade=rows["trade_id"], book=np.append(cells[:, 0], exercise.book if exercise
-                                                                          else 0)[:n_rows],
+        book_rows = np.append(cells[:, 0], exercise.book if exercise else 0)[:n_rows]
+        holdings.append(Holdings(trade=rows["trade_id"], key=trade_ids.size + np.arange(n_rows), book=book_rows,
                                  und=u_rows, ccy=ccy[u_rows], quantity=rows["quantity"],
                                  multiplier=night_multiplier[u_rows], value=hedge_value[u_rows],
                                  future=is_future[u_rows], share=kinds[u_rows] == "underlying"))

@@ -21,7 +21,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
 from numpy.typing import NDArray
 
@@ -33,6 +32,7 @@ class Holdings:
     """Positions held at one close, as the desk values them (one element per trade)."""
 
     trade: NDArray[np.str_]
+    key: IntArray            # the trade as an integer (see :func:`keys_of`)
     book: IntArray
     und: IntArray
     ccy: IntArray            # currency (index into the desk's currencies)
@@ -63,8 +63,13 @@ def _column(table: dict[str, pa.Array], name: str) -> np.ndarray:
     return np.asarray(table[name].to_numpy(zero_copy_only=False))
 
 
+def keys_of(trades: np.ndarray, key_of: dict[str, int]) -> IntArray:
+    """Integer keys of trade ids (a few hundred a night: a dict look-up each)."""
+    return np.fromiter((key_of[t] for t in trades.tolist()), dtype=np.int64, count=len(trades))
+
+
 def _night(h0: Holdings, h1: Holdings, fx0: FloatArray, fx1: FloatArray, ratio: FloatArray,
-           activity: dict[str, pa.Array] | None, n_books: int) -> FloatArray:
+           activity: dict[str, pa.Array] | None, key_of: dict[str, int], n_books: int) -> FloatArray:
     """Per book: run-date value - prior value - purchases + sales and settlements (no cash flows or dividends)."""
     def total(books: IntArray, amounts: FloatArray) -> FloatArray:
         return np.bincount(books, weights=amounts, minlength=n_books)
@@ -72,17 +77,16 @@ def _night(h0: Holdings, h1: Holdings, fx0: FloatArray, fx1: FloatArray, ratio: 
     value1 = h1.quantity * h1.multiplier * h1.value * fx1[h1.ccy]
     value0 = h0.quantity * h0.multiplier * h0.value * np.where(h0.future, fx1[h0.ccy], fx0[h0.ccy])
     pnl = total(h1.book, value1) - total(h0.book, value0)
-    known = pd.Index(np.concatenate([h1.trade, h0.trade]))
-    first = ~known.duplicated()
-    lookup = pd.Index(known[first])
+    keys, first = np.unique(np.concatenate([h1.key, h0.key]), return_index=True)  # the run date's row first
     book = np.concatenate([h1.book, h0.book])[first]
     multiplier = np.concatenate([h1.multiplier, h0.multiplier * ratio[h0.und]])[first]
-    value = np.concatenate([h1.value, np.full(len(h0.trade), np.nan)])[first]
+    value = np.concatenate([h1.value, np.full(h0.key.size, np.nan)])[first]
     rate = np.concatenate([fx1[h1.ccy], fx1[h0.ccy]])[first]
-    moved = np.zeros(len(lookup), dtype=bool)
+    moved = np.zeros(keys.size, dtype=bool)
     if activity is not None:
-        at = lookup.get_indexer(_column(activity, "trade_id"))
-        if (at < 0).any():
+        wanted = keys_of(_column(activity, "trade_id"), key_of)
+        at = np.minimum(np.searchsorted(keys, wanted), keys.size - 1)
+        if (keys[at] != wanted).any():
             raise RuntimeError("demo: an activity of a trade the desk does not hold on either night")
         kind = _column(activity, "kind")
         price = _column(activity, "price").astype(float)
@@ -90,13 +94,13 @@ def _night(h0: Holdings, h1: Holdings, fx0: FloatArray, fx1: FloatArray, ratio: 
         quantity = _column(activity, "quantity").astype(float)
         pnl -= total(book[at], quantity * multiplier[at] * price * rate[at])
         moved[at] = True
-    gone = ~pd.Index(h0.trade).isin(pd.Index(h1.trade)) & ~moved[lookup.get_indexer(h0.trade)]
+    gone = ~np.isin(h0.key, h1.key) & ~moved[np.searchsorted(keys, h0.key)]
     settled = h0.quantity * h0.multiplier * h0.value * fx1[h0.ccy]  # expired: settled at its last value
     return pnl + total(h0.book[gone], settled[gone])
 
 
 def desk_pnl(holdings: list[Holdings], events: DeskEvents, dates: NDArray[np.datetime64], fx: FloatArray,
-             unit_ratio: list[FloatArray], codes: list[str], books: list[str]) -> FloatArray:
+             unit_ratio: list[FloatArray], codes: list[str], books: list[str], key_of: dict[str, int]) -> FloatArray:
     """The desk's reported P&L, nights x books (row 0, the first date, is NaN: it has no prior night).
 
     ``fx``: nights x currencies; ``unit_ratio[d]``: per underlying, new units per old unit from night d - 1 to d
@@ -105,7 +109,7 @@ def desk_pnl(holdings: list[Holdings], events: DeskEvents, dates: NDArray[np.dat
     out = np.full((len(holdings), n_books), np.nan)
     for d in range(1, len(holdings)):
         h0, h1 = holdings[d - 1], holdings[d]
-        pnl = _night(h0, h1, fx[d - 1], fx[d], unit_ratio[d], events.activity[d], n_books)
+        pnl = _night(h0, h1, fx[d - 1], fx[d], unit_ratio[d], events.activity[d], key_of, n_books)
         ex = (events.dividend_ex > dates[d - 1]) & (events.dividend_ex <= dates[d])
         if ex.any():  # shares held over an ex-date earn the dividend (per unit, in new units)
             amount = np.zeros(unit_ratio[d].size)
@@ -116,7 +120,7 @@ def desk_pnl(holdings: list[Holdings], events: DeskEvents, dates: NDArray[np.dat
         flows = events.cash[d]
         if flows is not None:  # the desk's ledger rounds each commission to the whole unit of its currency
             ccy = np.array([codes.index(c) for c in _column(flows, "currency")], dtype=np.int64)
-            book = pd.Index(books).get_indexer(_column(flows, "book"))
+            book = np.array([books.index(b) for b in _column(flows, "book").tolist()], dtype=np.int64)
             amount = np.round(_column(flows, "amount").astype(float))
             pnl += np.bincount(book, weights=amount * fx[d][ccy], minlength=n_books)
         out[d] = np.round(pnl)  # reported to the whole unit of the reporting currency
@@ -135,8 +139,15 @@ class LateBooking:
     day_one_pnl: float       # in the reporting currency: the break it makes on its night (and about minus it next)
 
 
+def _position(keys: IntArray, wanted: IntArray) -> IntArray:
+    """Where each of ``wanted`` is in ``keys`` (unsorted, unique), -1 where absent."""
+    order = np.argsort(keys)
+    at = np.minimum(np.searchsorted(keys, wanted, sorter=order), keys.size - 1)
+    return np.where(keys[order[at]] == wanted, order[at], -1)
+
+
 def late_booking(holdings: list[Holdings], activity: list[dict[str, pa.Array] | None], fx: FloatArray,
-                 target: float, least: float) -> LateBooking | None:
+                 target: float, least: float, key_of: dict[str, int]) -> LateBooking | None:
     """The priced new trade with the largest day-one P&L on the night nearest ``target`` (a share of the year)
     where that P&L is above ``least``, and which the next night still holds unchanged (None if there is none)."""
     n = len(holdings)
@@ -146,9 +157,10 @@ def late_booking(holdings: list[Holdings], activity: list[dict[str, pa.Array] | 
             continue
         kind, price = _column(act, "kind"), _column(act, "price").astype(float)
         trade, quantity = _column(act, "trade_id"), _column(act, "quantity").astype(float)
-        new = (kind == "new") & ~np.isnan(price) & ~pd.Index(trade).isin(pd.Index(_column(after, "trade_id")))
+        keys = keys_of(trade, key_of)
+        new = (kind == "new") & ~np.isnan(price) & ~np.isin(keys, keys_of(_column(after, "trade_id"), key_of))
         h1, h2 = holdings[d], holdings[d + 1]
-        at1, at2 = pd.Index(h1.trade).get_indexer(trade), pd.Index(h2.trade).get_indexer(trade)
+        at1, at2 = _position(h1.key, keys), _position(h2.key, keys)
         new &= (at1 >= 0) & (at2 >= 0) & ~h1.share[at1] & ~h1.future[at1]
         new &= np.where(at2 >= 0, h2.quantity[at2], np.nan) == np.where(at1 >= 0, h1.quantity[at1], np.nan)
         day_one = np.where(new, quantity * h1.multiplier[at1] * (h1.value[at1] - price) * fx[d][h1.ccy[at1]], 0.0)
