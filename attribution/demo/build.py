@@ -141,7 +141,10 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments
     codes = [c.code for c in desk.currencies]
     ccy = np.array([codes.index(u.currency) for u in desk.underlyings])[und]
     names = np.array([u.name for u in desk.underlyings])
-    pv = present_values(market, d, dividends, names, und, np.array(codes)[ccy], store.expiry[live], np.array(codes))
+    payers = np.isin(names[und], dividends["underlying"].unique())  # the others have no dividend to discount
+    pv = np.zeros(live.size)
+    pv[payers] = present_values(market, d, dividends, names, und[payers], np.array(codes)[ccy[payers]],
+                                store.expiry[live][payers], np.array(codes))
     spot, div = market.spot[d, und] - pv, market.dividend_yield[d, und]  # the spot the options are valued on
     rate = np.zeros(live.size)
     for c in range(len(codes)):
