@@ -141,7 +141,7 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments
     codes = [c.code for c in desk.currencies]
     ccy = np.array([codes.index(u.currency) for u in desk.underlyings])[und]
     names = np.array([u.name for u in desk.underlyings])
-    payers = np.isin(names[und], dividends["underlying"].unique())  # the others have no dividend to discount
+    payers = np.isin(names, dividends["underlying"].unique())[und]  # the others have no dividend to discount
     pv = np.zeros(live.size)
     pv[payers] = present_values(market, d, dividends, names, und[payers], np.array(codes)[ccy[payers]],
                                 store.expiry[live][payers], np.array(codes))
