@@ -63,7 +63,8 @@ def _reject(log: ExceptionLog, file: str, trade_ids: NDArray[np.object_], bad: N
 def _reject_by_reason(log: ExceptionLog, file: str, trade_ids: NDArray[np.object_], bad: NDArray[np.bool_],
                       rule: str, reason: NDArray[np.object_]) -> None:
     """Like ``_reject``, but a position in an option already expired gets its own rule."""
-    lapsed = bad & pd.Series(reason, dtype=object).astype(str).str.startswith("the option expired").to_numpy()
+    lapsed = np.zeros(len(bad), dtype=bool)  # the texts of the rejected rows only
+    lapsed[bad] = pd.Series(reason[bad], dtype=object).astype(str).str.startswith("the option expired").to_numpy()
     _reject(log, file, trade_ids, lapsed, "active position on an expired option", reason)
     _reject(log, file, trade_ids, bad & ~lapsed, rule, reason)
 
@@ -76,10 +77,14 @@ def _leg_reason(night: CleanNight, market: InstrumentMarket, inst_ids: NDArray[n
     borrowed from the other date are only for settling trades this date no longer holds.
     """
     as_of = night.raw.as_of
-    in_file = pd.Series(inst_ids, dtype=object).isin(night.raw.tables["instruments.parquet"]["instrument_id"])
-    absent = np.where(in_file.to_numpy(), f"its row in instruments.parquet of {as_of} breaks a rule (see that row)",
-                      f"instrument_id not in instruments.parquet of {as_of}").astype(object)
-    return np.where(take(market.listed, idx, False), take(market.reason, idx, ""), absent).astype(object)
+    reason = take(market.reason, idx, "").astype(object, copy=False)
+    absent = ~take(market.listed, idx, False)  # only these rows need the file's list (texts made for them alone)
+    if absent.any():
+        in_file = pd.Series(inst_ids[absent], dtype=object).isin(
+            night.raw.tables["instruments.parquet"]["instrument_id"]).to_numpy()
+        reason[absent] = np.where(in_file, f"its row in instruments.parquet of {as_of} breaks a rule (see that row)",
+                                  f"instrument_id not in instruments.parquet of {as_of}").astype(object)
+    return reason
 
 
 def _terms_changed(market0: InstrumentMarket, market1: InstrumentMarket, instruments_file: str,
@@ -162,8 +167,10 @@ def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, ma
     moved0 = ok0 & take(moved, i0, False)
     moved1 = ok1 & (j0 < 0) & take(moved, market0.locate(inst_p1), False)
     for file, ids, inst, bad in ((file0, ids0, inst_p0, moved0), (file1, ids1, inst_p1, moved1)):  # two dates
-        _reject(log, file, ids, bad, "instrument terms changed between dates",
-                "the terms of " + inst.astype(str) + " differ between the two instruments files (see that row)")
+        detail = np.full(len(inst), "", dtype=object)  # texts for the rejected rows only
+        detail[bad] = ("the terms of " + inst[bad].astype(str)
+                       + " differ between the two instruments files (see that row)")
+        _reject(log, file, ids, bad, "instrument terms changed between dates", detail)
     ok0 &= ~moved0
     ok1 &= ~moved1
 
@@ -210,8 +217,10 @@ def _settle_checks(prior: CleanNight, run: CleanNight, market1: InstrumentMarket
     settle_on_run = ok0 & expired & (expiry0 > np.datetime64(prior.raw.as_of, "D"))
     terms_bad = take(market1.terms_rejected, i1_of_p0, True)
     bad_exp = settle_on_run & (terms_bad | ~take(market1.spot_known, i1_of_p0, False))
-    detail = np.where(terms_bad, f"its row in instruments.parquet of {run.raw.as_of} breaks a rule (see that row)",
-                      f"its underlying has no spot on {run.raw.as_of}").astype(object)
+    detail = np.full(len(ids0), "", dtype=object)  # texts for the rejected rows only
+    detail[bad_exp] = np.where(terms_bad[bad_exp],
+                               f"its row in instruments.parquet of {run.raw.as_of} breaks a rule (see that row)",
+                               f"its underlying has no spot on {run.raw.as_of}")
     _reject(log, file0, ids0, bad_exp, "expired position cannot be settled", detail)
     return bad_closed | bad_exp
 
@@ -222,19 +231,21 @@ def _assemble(p0: pd.DataFrame, p1: pd.DataFrame, ids0: NDArray[np.object_], ids
               i1_of_p0: NDArray[np.intp], i1_of_p1: NDArray[np.intp], run: CleanNight) -> Legs:
     from_prior = np.flatnonzero(ok0)
     new_rows = np.flatnonzero(ok1 & (j0 < 0))
-    status_prior = np.where(expired[from_prior], EXPIRED, np.where(j1[from_prior] >= 0, CARRIED, CLOSED))
+    # statuses as codes into one table of the status texts (no million-row text arrays built and converted)
+    names = np.array([CARRIED, CLOSED, EXPIRED, SETTLED, NEW, NEW_UNPRICED], dtype=object)
+    code_prior = np.where(expired[from_prior], 2, np.where(j1[from_prior] >= 0, 0, 1))
     priced = ~np.isnan(p1["trade_price"].to_numpy(dtype=float)[new_rows])
-    status_new = np.where(priced, NEW, NEW_UNPRICED)
-    row1_prior = np.where(status_prior == CARRIED, j1[from_prior], -1)
-    row1_prior = np.where((status_prior == EXPIRED) & (j1[from_prior] >= 0), j1[from_prior], row1_prior)
-    status_prior = np.where(settled[from_prior], SETTLED, status_prior)
+    status_new = names[np.where(priced, 4, 5)]
+    row1_prior = np.where(code_prior == 0, j1[from_prior], -1)
+    row1_prior = np.where((code_prior == 2) & (j1[from_prior] >= 0), j1[from_prior], row1_prior)
+    status_prior = names[np.where(settled[from_prior], 3, code_prior)]
     return Legs(
         trade_id=np.concatenate([ids0[from_prior], ids1[new_rows]]),
         book=np.concatenate([p0["book"].to_numpy(dtype=object)[from_prior],
                              p1["book"].to_numpy(dtype=object)[new_rows]]),
         instrument_id=np.concatenate([p0["instrument_id"].to_numpy(dtype=object)[from_prior],
                                       p1["instrument_id"].to_numpy(dtype=object)[new_rows]]),
-        status=np.concatenate([status_prior, status_new]).astype(object),
+        status=np.concatenate([status_prior, status_new]),
         row0=np.concatenate([from_prior, np.full(len(new_rows), -1)]).astype(np.intp),
         row1=np.concatenate([row1_prior, new_rows]).astype(np.intp),
         inst0=np.concatenate([i0[from_prior], np.full(len(new_rows), -1)]).astype(np.intp),
