@@ -205,6 +205,8 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
                                         group=pair)
             for factor in FACTOR_NAMES:
                 cols[f"reval_{factor}"][k] = units0[k] * getattr(shares, factor)
+            del shares
+        del ex, prior_greeks, s0, s1  # a million rows of states, greeks and terms: freed before the next steps
 
     expiring_option = (status == EXPIRED) & option
     _explain_expiring(cols, np.flatnonzero(expiring_option), market0, market1, i0, i1, strike, cp, units0, price0,
