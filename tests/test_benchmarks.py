@@ -56,3 +56,16 @@ def test_compare_archives_finds_two_runs_identical_and_names_a_changed_column(tm
     con.close()
     out = _run("compare_archives.py", "compare", str(first), str(second), expect=1)
     assert "pnl_theta" in out, out
+
+
+def test_compare_archives_runs_the_bench_night_and_finds_it_identical_to_itself(tmp_path: Path) -> None:
+    """The synthetic mode archives the bench's night (every kind in it); two runs of the same code compare identical."""
+    sizes = ("--positions", "3000", "--books", "6", "--instruments", "150", "--underlyings", "8")
+    first, second = tmp_path / "first", tmp_path / "second"
+    for out in (first, second):
+        assert "archived the synthetic night" in _run("compare_archives.py", "synthetic", str(out), *sizes)
+    con = duckdb.connect(str(first / "archive.duckdb"), read_only=True)
+    kinds = {r[0] for r in con.execute("SELECT DISTINCT coalesce(exercise, kind) FROM position_pnl").fetchall()}
+    con.close()
+    assert kinds == {"american", "european", "underlying", "future", "forward"}
+    assert "IDENTICAL" in _run("compare_archives.py", "compare", str(first), str(second))
