@@ -121,16 +121,6 @@ def _add_missing_columns(con: duckdb.DuckDBPyConnection, table: str, columns: tu
             con.execute(f"ALTER TABLE {table} ADD COLUMN {column}")
 
 
-def _strings(values: np.ndarray) -> pa.Array:
-    """Text of Python objects (None or NaN: NULL) as Arrow: dictionary-encoded when values repeat
-    (a book, a status, an underlying: hashed once, each distinct text converted once), else plain."""
-    codes, uniques = pd.factorize(values, use_na_sentinel=True)
-    if len(uniques) * 2 > len(values):  # mostly distinct (trade ids): a dictionary would not pay
-        return pa.array(values, type=pa.string(), from_pandas=True)
-    indices = pa.array(codes.astype(np.int32), mask=codes < 0)
-    return pa.DictionaryArray.from_arrays(indices, pa.array(np.asarray(uniques, dtype=object), type=pa.string()))
-
-
 def _floats(values: np.ndarray) -> pa.Array:
     """float64 as Arrow without copying the numbers: NaN becomes NULL through a validity bitmap."""
     values = np.ascontiguousarray(values)
@@ -142,21 +132,20 @@ def _floats(values: np.ndarray) -> pa.Array:
 
 
 def _column(series: pd.Series) -> pa.Array:
-    """One frame column as Arrow with the values ``pa.Table.from_pandas`` gives, built with fewer copies."""
-    if series.dtype == object:
-        try:
-            return _strings(series.to_numpy())
-        except (pa.ArrowInvalid, pa.ArrowTypeError):  # not all text: let Arrow infer the type, as from_pandas does
-            return pa.Array.from_pandas(series)
+    """One column that is not Python objects as Arrow, with the values ``pa.Table.from_pandas`` gives."""
     if series.dtype == np.float64:
         return _floats(series.to_numpy())
     return pa.Array.from_pandas(series)
 
 
 def arrow_table(frame: pd.DataFrame, table: str) -> pa.Table:
-    """``frame``'s columns in the order of the archive ``table``, as one Arrow table (no pandas copy between)."""
+    """``frame``'s columns in the order of the archive ``table``, as one Arrow table (no pandas copy between):
+    numbers without a copy, text converted by Arrow over every core."""
     names = [name for name, _ in TABLES[table]]
-    return pa.Table.from_arrays([_column(frame[name]) for name in names], names=names)
+    text = [name for name in names if frame[name].dtype == object]
+    converted = pa.Table.from_pandas(frame, columns=text, preserve_index=False) if text else None
+    return pa.Table.from_arrays([converted.column(name) if name in text and converted is not None
+                                 else _column(frame[name]) for name in names], names=names)
 
 
 def _insert(con: duckdb.DuckDBPyConnection, table: str, frame: pd.DataFrame) -> None:
