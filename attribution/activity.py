@@ -5,8 +5,11 @@
   ``decrease`` or ``close`` puts quantity x (run-date mark - price) into ``pnl_amendment`` (at the
   mark, flagged, when it has no price); ``correction`` and ``cancel`` restate the prior quantity
   without P&L; an ``exercise`` or ``assignment`` that takes the whole position makes the trade
-  ``exercised``, explained like a close to its intrinsic value at the run-date spot (a partial one
-  is a change priced at that intrinsic value). Every trade is reconciled: prior quantity + activity
+  ``exercised``, explained like a close to its intrinsic value at the run-date spot; the option is
+  then handed over for the underlying with no cash, so its intrinsic value leaves it in
+  ``pnl_amendment`` (quantity x intrinsic) and reaches the book once, in the delivered underlying
+  priced at the strike by its own ``new`` activity (a partial exercise: the part given up is valued
+  against the run-date mark). Every trade is reconciled: prior quantity + activity
   = run-date quantity, else a ``position break`` warning.
 * Cash flows (``cash_flows.parquet``) go to ``pnl_cash``: a flow naming a trade of its book to
   that trade's row, any other flow to one row of status ``cash`` per book.
@@ -48,6 +51,7 @@ class LegActivity:
     restated: FloatArray    # sum of correction and cancel quantities (contracts)
     fill_value: FloatArray  # sum of quantity x (run-date mark - price) over priced changes (contracts x price)
     exercise_value: FloatArray  # sum of quantity x (run-date mark - intrinsic value) over exercises and assignments
+    given_up: FloatArray    # sum of quantity x intrinsic value over exercises and assignments (handed over, no cash)
     at_mark: BoolArray      # a change without a price (valued at the mark)
     priced_new: BoolArray   # a ``new`` activity with a price
     exercised: FloatArray   # sum of exercise and assignment quantities (contracts)
@@ -70,6 +74,7 @@ def leg_activity(activity: pd.DataFrame, legs: Legs, market0: InstrumentMarket,
     exercise = np.isin(kind, EXERCISES)
     value = np.where(change & ~np.isnan(price), qty * (mark1 - price), 0.0)
     by_exercise = np.where(exercise, qty * (mark1 - intrinsic), 0.0)
+    given_up = np.where(exercise, qty * intrinsic, 0.0)
 
     def total(values: FloatArray) -> FloatArray:
         return np.bincount(leg, weights=values, minlength=n).astype(float)
@@ -80,6 +85,7 @@ def leg_activity(activity: pd.DataFrame, legs: Legs, market0: InstrumentMarket,
     return LegActivity(any=some(np.ones(len(leg), dtype=bool)), moved=total(qty),
                        restated=total(np.where(np.isin(kind, UNPRICED_ACTIVITY), qty, 0.0)),
                        fill_value=total(value), exercise_value=total(by_exercise),
+                       given_up=total(given_up),
                        at_mark=some(change & np.isnan(price) & (kind != "new")),
                        priced_new=some((kind == "new") & ~np.isnan(price)),
                        exercised=total(np.where(exercise, qty, 0.0)))

@@ -90,14 +90,17 @@ def _names(codes: NDArray[np.int8], names: dict[int, str]) -> NDArray[np.object_
 def _activity_lines(cols: dict[str, object], activity: LegActivity, status: NDArray[np.object_], scale: FloatArray,
                     qty0: FloatArray, qty1: FloatArray) -> tuple[NDArray[np.bool_], NDArray[np.bool_]]:
     """Lifecycle lines from the run date's activity: a priced ``new`` activity prices the new trade (over
-    positions.trade_price), every change is valued at its execution price, a partial exercise at intrinsic
-    value. ``scale`` is multiplier x FX. Returns the ``amended`` and ``amended_at_mark`` flags."""
+    positions.trade_price), every change is valued at its execution price, an exercised quantity at 0 (handed over
+    for the underlying). ``scale`` is multiplier x FX. Returns the ``amended`` and ``amended_at_mark`` flags."""
     is_new = np.isin(status, [NEW, NEW_UNPRICED])
     cols["pnl_new_trade"] = np.where(is_new & activity.priced_new, scale * activity.fill_value, cols["pnl_new_trade"])
     changed = np.isin(status, [CARRIED, CLOSED, EXERCISED])
     exercised = status == EXERCISED
+    # An exercise hands the option over for the underlying with no cash: the exercised part leaves at 0 (its
+    # intrinsic value goes to the delivered underlying, a new trade priced at the strike), so the pair's P&L
+    # is N (intrinsic - prior mark), counted once. A whole exercise is already explained to intrinsic.
     value = activity.fill_value + np.where(exercised, 0.0, activity.exercise_value)
-    cols["pnl_amendment"] = np.where(changed, scale * value, 0.0)
+    cols["pnl_amendment"] = np.where(changed, scale * (value + activity.given_up), 0.0)
     amended = changed & (((qty1 != qty0) & ~exercised) | (value != 0))
     return amended, changed & activity.at_mark
 

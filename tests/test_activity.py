@@ -104,8 +104,10 @@ def test_official_break_within_its_limit_is_no_finding(tmp_path):
 
 
 def test_assignment_is_exercised_and_its_shares_are_new_at_the_strike(tmp_path):
-    """An assigned short put is `exercised`: N (intrinsic at the run-date spot - prior mark); the shares bought
-    at the strike are a new trade worth N (spot - strike) on the night (plain arithmetic)."""
+    """An assigned short put is `exercised`: explained to N (intrinsic at the run-date spot - prior mark) and handed
+    over for the shares with no cash (pnl_amendment = -N x intrinsic); the shares bought at the strike are a new
+    trade worth N (spot - strike) on the night. The pair's P&L is N (intrinsic - prior mark), counted once: the
+    short put's holder is paid the strike for shares worth the spot (plain arithmetic, README "Statuses")."""
     data = tmp_path / "data"
     write_hedged_desk(data)
     positions = [r for r in read_rows(data, RUN, "positions") if r["trade_id"] != "T2"]
@@ -125,11 +127,39 @@ def test_assignment_is_exercised_and_its_shares_are_new_at_the_strike(tmp_path):
     assert put["status"] == "exercised" and put["price_run"] == 120.0 - 103.0
     assert_allclose(put["pnl_actual"], -5 * 100 * ((120.0 - 103.0) - put["price_prior"]), rtol=1e-12)
     assert_allclose(put["pnl_explained"] + put["pnl_residual"], put["pnl_actual"], rtol=1e-12)
-    assert put["pnl_amendment"] == 0.0
+    assert_allclose(put["pnl_amendment"], 5 * 100 * (120.0 - 103.0), rtol=1e-12)  # -N x intrinsic, N = -500
     shares = rows.loc["T2-SHR"]
     assert shares["status"] == "new" and shares["pnl_new_trade"] == 500 * (103.0 - 120.0)
+    pair = put["pnl_total"] + shares["pnl_total"]
+    assert_allclose(pair, -5 * 100 * ((120.0 - 103.0) - put["price_prior"]), rtol=1e-12)
     assert t["book_pnl"].set_index("book").at["Index vol", "exercised"] == 1
     assert not (t["input_exceptions"]["rule"] == "position break").any()
+
+
+def test_partial_assignment_hands_the_assigned_contracts_over_at_no_cash(tmp_path):
+    """Two of five short puts assigned: the trade stays (carried, three short), the two assigned contracts leave at
+    0 against the run-date mark (pnl_amendment = quantity x multiplier x mark, README "Trade activity"), and with the
+    200 shares bought at the strike the night's P&L is the three kept puts' move plus the two assigned puts'
+    N (intrinsic - prior mark), counted once (plain arithmetic)."""
+    data = tmp_path / "data"
+    write_hedged_desk(data)
+    positions = [dict(r, quantity=-3.0) if r["trade_id"] == "T2" else r for r in read_rows(data, RUN, "positions")]
+    positions.append({"trade_id": "T2-SHR", "book": "Index vol", "instrument_id": "ZEN-SHR", "quantity": 200.0,
+                      "trade_date": RUN, "trade_price": None})
+    write_folder(data, RUN, {"positions": positions, "trade_activity": [
+        {"activity_id": "X1", "trade_id": "T2", "kind": "assignment", "quantity": 2.0, "price": None},
+        {"activity_id": "X2", "trade_id": "T2-SHR", "kind": "new", "quantity": 200.0, "price": 120.0}]})
+    _run(tmp_path)
+    rows = _tables(tmp_path)["position_pnl"].set_index("trade_id")
+    put, shares = rows.loc["T2"], rows.loc["T2-SHR"]
+    assert put["status"] == "carried" and put["quantity"] == -5.0  # the prior quantity explained
+    assert_allclose(put["pnl_amendment"], 2 * 100 * put["price_run"], rtol=1e-12)
+    assert_allclose(shares["pnl_new_trade"], 200 * (103.0 - 120.0), rtol=1e-12)
+    kept = -3 * 100 * (put["price_run"] - put["price_prior"])
+    assigned = -2 * 100 * ((120.0 - 103.0) - put["price_prior"])
+    assert_allclose(put["pnl_total"] + shares["pnl_total"], kept + assigned, rtol=1e-9)
+    ledger = _tables(tmp_path)["input_exceptions"]
+    assert not ((ledger["rule"] == "position break") & ledger["key"].isin(["T2", "T2-SHR"])).any()
 
 
 def test_correction_restates_without_pnl_and_a_break_is_warned(tmp_path):

@@ -87,8 +87,8 @@ def test_planted_faults_are_caught(demo, tmp_path):
 def test_official_pnl_reconciles_except_the_planted_breaks(demo, tmp_path):
     """The desk's own P&L (official_pnl.parquet, from its books of record) meets the job's total within the demo's
     official_break limit on every book and night but the planted breaks: the late-booked trade's night and the next
-    (opposite signs), the fat-finger night of its book, and the early exercise's night of its book (the job counts the
-    exercised intrinsic value in the option and again in the shares delivered at the strike; see README, "Demo")."""
+    (opposite signs) and the fat-finger night of its book. The early exercise's night reconciles: the exercised option
+    is handed over for the shares with no cash, so its intrinsic value is counted once (README, "Statuses")."""
     from attribution.demo.build import OFFICIAL_BREAK_LIMIT
 
     into, _ = demo
@@ -98,7 +98,7 @@ def test_official_pnl_reconciles_except_the_planted_breaks(demo, tmp_path):
         if fault.kind == "late_booking":
             after = summary.dates[summary.dates.index(fault.as_of) + 1]
             expected |= {(fault.as_of, fault.book), (after, fault.book)}
-        elif fault.kind in ("official_break", "early_exercise"):
+        elif fault.kind == "official_break":
             expected.add((fault.as_of, fault.book))
     con = duckdb.connect(str(into / "archive.duckdb"), read_only=True)
     rows = con.execute("SELECT as_of, book, official_pnl, official_break FROM book_pnl ORDER BY as_of, book").fetchall()
