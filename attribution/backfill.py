@@ -1,17 +1,35 @@
-"""Running a range of nights in order, with one progress display and one closing line."""
+"""Running a range of nights in order, with one progress display and one closing line.
+
+A night's tables depend only on the files of its two dates (and earlier folders for rolled marks),
+never on the archive, so a long local backfill computes them in worker processes, one per core,
+each taking a block of consecutive nights (its dates' shared work reused within the block) while
+this process archives, tests quality and reports every night in date order, as one process would.
+The archived values are the same: every night is computed by the same code on the same files.
+"""
 
 from __future__ import annotations
 
+import collections
+import concurrent.futures as cf
+import contextlib
 import dataclasses
 import datetime as dt
-from collections.abc import Callable
+import multiprocessing as mp
+import os
+import sys
+from collections.abc import Callable, Iterator
+from typing import Any
 
 from attribution.config import JobConfig
 from attribution.console import ProgressLine, summary
 from attribution.date_cache import DateCache
-from attribution.engine import EXIT_FINDINGS, EXIT_OK, NightOutcome, open_archive
+from attribution.engine import EXIT_FINDINGS, EXIT_OK, NightOutcome, PreparedNight, open_archive, prepare_night
+from attribution.engine import run_night as run_prepared_night
 from attribution.loading import InputFileError, available_dates
+from attribution.pricing import _available_cores
 from attribution.runner import cluster, run_night
+
+BLOCK_NIGHTS = 16  # consecutive nights computed by one worker in one go (each block reads one date twice)
 
 
 def nights_between(config: JobConfig, start: dt.date, end: dt.date) -> list[dt.date]:
@@ -29,17 +47,15 @@ def backfill(config: JobConfig, start: dt.date, end: dt.date, reports_last: int 
     if not nights:
         raise InputFileError(f"{config.data_root}: no run date between {start} and {end} with a prior folder")
     progress = ProgressLine(len(nights))
-    outcomes: list[NightOutcome] = []
     # The archive is held for the whole range (no other run slips in between nights), and with
     # engine = "dask" one cluster serves every night. Each date's reading, row rules and market state
     # serve both nights that use it (as run date, then as the next night's prior): one cache per range.
     shared = DateCache()
+    processes = worker_processes(config, len(nights))
     with open_archive(config) as session, cluster(config) as client:
-        for k, night in enumerate(nights):
-            with_reports = config.write_reports and (reports_last < 0 or k >= len(nights) - reports_last)
-            outcomes.append(run_night(dataclasses.replace(config, write_reports=with_reports), night,
-                                      session=session, client=client, cache=shared))
-            progress.step(str(night))
+        prepared = _prepared_elsewhere(config, nights, processes)
+        with contextlib.closing(prepared):  # the workers are stopped however the range ends
+            outcomes = _run_in_order(config, nights, reports_last, prepared, session, client, shared, progress)
     progress.close()
     last = outcomes[-1]
     echo(summary(last, config))
@@ -47,3 +63,114 @@ def backfill(config: JobConfig, start: dt.date, end: dt.date, reports_last: int 
     echo(f"Backfilled {len(outcomes)} night(s) {nights[0]} .. {nights[-1]}; "
          f"{findings} with rejected rows or limit breaches.")
     return EXIT_FINDINGS if findings else EXIT_OK
+
+
+def _run_in_order(config: JobConfig, nights: list[dt.date], reports_last: int, prepared: Iterator[PreparedNight],
+                  session: Any, client: Any, shared: DateCache, progress: ProgressLine) -> list[NightOutcome]:
+    """Archive (and report) every night in date order; a night no worker computed is computed here."""
+    outcomes: list[NightOutcome] = []
+    for k, night in enumerate(nights):
+        night_config = dataclasses.replace(
+            config, write_reports=config.write_reports and (reports_last < 0 or k >= len(nights) - reports_last))
+        ready = next(prepared, None)
+        if ready is None:  # one process only, or a worker could not compute this night
+            outcomes.append(run_night(night_config, night, session=session, client=client, cache=shared))
+        else:
+            outcomes.append(run_prepared_night(night_config, night, session=session, prepare=_given(ready)))
+        progress.step(str(night))
+    return outcomes
+
+
+def worker_processes(config: JobConfig, nights: int) -> int:
+    """Worker processes for a backfill of ``nights``: the job's ``backfill_processes`` (0: one per available core),
+    never more than its blocks of nights; 1 (or the Dask engine, which has its own workers) computes in this process."""
+    if config.engine != "local":
+        return 1
+    wanted = config.backfill_processes or _available_cores()
+    return max(1, min(wanted, nights // BLOCK_NIGHTS))
+
+
+def _given(night: PreparedNight) -> Callable[..., PreparedNight]:
+    """A prepare step that hands over a night computed by a worker."""
+    def prepare(*_: Any, **__: Any) -> PreparedNight:
+        return night
+    return prepare
+
+
+_WORKER_CACHE: DateCache | None = None
+
+
+@contextlib.contextmanager
+def _main_not_inherited() -> Iterator[None]:
+    """Workers started meanwhile do not run the caller's main script again (a fresh interpreter otherwise
+    imports it, which re-runs a script without an ``if __name__ == "__main__"`` guard); they need only this
+    package."""
+    main = sys.modules.get("__main__")
+    saved = {name: main.__dict__.pop(name) for name in ("__file__", "__spec__") if main is not None
+             and name in main.__dict__}
+    if main is not None:
+        main.__spec__ = None  # type: ignore[assignment]
+    try:
+        yield
+    finally:
+        if main is not None:
+            main.__dict__.pop("__spec__", None)
+            main.__dict__.update(saved)
+
+
+def _start_worker(cores: list[int], counter: Any) -> None:
+    """Each worker keeps to one core of its own (its numpy threads too), so workers do not contend."""
+    global _WORKER_CACHE
+    _WORKER_CACHE = DateCache()
+    with counter.get_lock():
+        slot = counter.value
+        counter.value += 1
+    if hasattr(os, "sched_setaffinity") and cores:
+        os.sched_setaffinity(0, {cores[slot % len(cores)]})
+
+
+def _prepare_block(config: JobConfig, nights: list[dt.date]) -> list[PreparedNight]:
+    """The tables of consecutive ``nights``, up to the first night that fails (which this process leaves
+    to the backfill's own process to run again, so its error reaches the user as in a one-process run)."""
+    cache = _WORKER_CACHE if _WORKER_CACHE is not None else DateCache()
+    done: list[PreparedNight] = []
+    for night in nights:
+        try:
+            done.append(prepare_night(config, night, cache=cache))
+        except Exception:  # noqa: BLE001 - re-raised by the backfill's process when it runs this night itself
+            break
+    return done
+
+
+def _prepared_elsewhere(config: JobConfig, nights: list[dt.date], processes: int) -> Iterator[PreparedNight]:
+    """Every night's tables in date order, computed by ``processes`` workers a block at a time (at most one block
+    ahead per worker is kept). Stops early at a night a worker could not compute, or if the workers are lost.
+    With one process it yields nothing: every night is computed by the backfill's own process."""
+    if processes <= 1:
+        return
+    blocks = [nights[i:i + BLOCK_NIGHTS] for i in range(0, len(nights), BLOCK_NIGHTS)]
+    context = mp.get_context("spawn")  # a clean interpreter: no inherited threads or open archive
+    counter = context.Value("i", 0)
+    cores = sorted(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else []
+    pool = cf.ProcessPoolExecutor(max_workers=processes, mp_context=context, initializer=_start_worker,
+                                  initargs=(cores, counter))
+    try:
+        pending: collections.deque[cf.Future[list[PreparedNight]]] = collections.deque()
+        queued = 0
+        with _main_not_inherited():  # the workers start on these first submissions
+            while queued < len(blocks) and len(pending) < 2 * processes:
+                pending.append(pool.submit(_prepare_block, config, blocks[queued]))
+                queued += 1
+        for block in blocks:
+            try:
+                done = pending.popleft().result()
+            except cf.process.BrokenProcessPool:
+                return
+            if queued < len(blocks):
+                pending.append(pool.submit(_prepare_block, config, blocks[queued]))
+                queued += 1
+            yield from done
+            if len(done) < len(block):
+                return
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)

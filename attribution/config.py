@@ -129,6 +129,7 @@ class JobConfig:
     revaluation: bool = True
     american_precision: str = "standard"
     write_reports: bool = True
+    backfill_processes: int = 0  # worker processes computing a backfill's nights (0: one per available core)
     history_nights: int = 60
     smile: SmileSettings = field(default_factory=SmileSettings)
     vol_time: VolTimeSettings = field(default_factory=VolTimeSettings)
@@ -155,6 +156,7 @@ SECTIONS = ("job", "time", "limits", "checks", "smile", "vol_time", "report")
 JOB_KEYS: dict[str, type] = {  # [job] key -> the TOML type it must have
     "data_root": str, "archive": str, "reports": str, "reporting_currency": str, "engine": str,
     "scheduler": str, "revaluation": bool, "write_reports": bool, "history_nights": int, "american_precision": str,
+    "backfill_processes": int,
 }
 TIME_KEYS: dict[str, type] = {"basis": str, "holidays": list}
 _TYPE_WORDS = {str: "a string", bool: "true or false", int: "a whole number", float: "a number",
@@ -307,6 +309,7 @@ def load_job(path: Path) -> JobConfig:
         revaluation=job.get("revaluation", defaults.revaluation),
         american_precision=job.get("american_precision", defaults.american_precision),
         write_reports=job.get("write_reports", defaults.write_reports),
+        backfill_processes=job.get("backfill_processes", defaults.backfill_processes),
         history_nights=history_nights,
         smile=smile,
         vol_time=vol_time,
@@ -322,6 +325,9 @@ def validate(config: JobConfig, source: str = "options") -> JobConfig:
     if config.american_precision not in AMERICAN_PRECISIONS:
         raise ConfigError(f"{source}: american_precision {config.american_precision!r} is not one of "
                           f"{', '.join(AMERICAN_PRECISIONS)}")
+    if config.backfill_processes < 0:
+        raise ConfigError(f"{source}: backfill_processes must be 0 (one per available core) or more, "
+                          f"got {config.backfill_processes}")
     if config.engine not in ENGINES:
         raise ConfigError(f"{source}: engine {config.engine!r} is not one of {', '.join(ENGINES)}")
     if len(config.reporting_currency) != 3 or not config.reporting_currency.isalpha():

@@ -1,0 +1,114 @@
+"""A backfill's nights computed by worker processes archive exactly what the backfill's own process does
+(README, "Commands": `attribution backfill` and the job key `backfill_processes`)."""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import sys
+from pathlib import Path
+
+import duckdb
+import pandas as pd
+import pytest
+
+import attribution.backfill as backfill_module
+from attribution.backfill import backfill, worker_processes
+from attribution.config import ConfigError, JobConfig, validate
+from attribution.demo import build_demo
+from attribution.loading import InputFileError
+
+
+@pytest.fixture(scope="module")
+def desk(tmp_path_factory: pytest.TempPathFactory) -> tuple[JobConfig, list[dt.date]]:
+    """The demo desk's first six business days: five nights, its planted faults on the last ones."""
+    root = tmp_path_factory.mktemp("backfill")
+    summary = build_demo(root / "data", business_days=6)
+    config = JobConfig(data_root=root / "data", archive_path=root / "archive.duckdb", reports_dir=root / "reports",
+                       holidays=summary.holidays, write_reports=False)
+    return config, list(summary.dates)
+
+
+def _tables(path: Path) -> dict[str, pd.DataFrame]:
+    con = duckdb.connect(str(path), read_only=True)
+    try:
+        out = {}
+        for name in ("position_pnl", "book_pnl", "book_quality", "input_exceptions", "dividend_schedule"):
+            frame = con.execute(f"SELECT * FROM {name}").df()  # names from this list, not from input
+            out[name] = frame.drop(columns=[c for c in frame.columns if c == "run_id"])
+        out["runs"] = con.execute("SELECT as_of, prior_as_of, positions_in, positions_archived, positions_rejected, "
+                                  "warnings, book_breaches, position_breaches, exit_code FROM runs").df()
+        return out
+    finally:
+        con.close()
+
+
+def test_worker_processes_archive_what_one_process_does(desk, tmp_path, monkeypatch):
+    """Five nights in blocks of two over two worker processes: every archived table equal, row order included,
+    to the last bit, and the same closing lines, as the backfill computing every night itself."""
+    config, dates = desk
+    monkeypatch.setattr(backfill_module, "BLOCK_NIGHTS", 2)
+    from_workers = []
+    computed_elsewhere = backfill_module._prepared_elsewhere
+
+    def counted(*args, **kwargs):
+        for night in computed_elsewhere(*args, **kwargs):
+            from_workers.append(night.as_of)
+            yield night
+
+    monkeypatch.setattr(backfill_module, "_prepared_elsewhere", counted)
+    lines: dict[int, list[str]] = {1: [], 2: []}
+    for processes in (1, 2):
+        run = dataclasses.replace(config, archive_path=tmp_path / f"p{processes}.duckdb", backfill_processes=processes)
+        assert worker_processes(run, len(dates) - 1) == processes
+        backfill(run, dates[1], dates[-1], reports_last=0, echo=lines[processes].append)
+    assert from_workers == dates[1:]  # every night of the second backfill came from a worker, in date order
+    one, two = _tables(tmp_path / "p1.duckdb"), _tables(tmp_path / "p2.duckdb")
+    assert len(one["runs"]) == len(dates) - 1
+    for name in one:
+        pd.testing.assert_frame_equal(one[name], two[name], check_exact=True, obj=name)
+    assert [line.split("  seconds")[0] for line in lines[1]] == [line.split("  seconds")[0] for line in lines[2]]
+
+
+def test_a_night_a_worker_cannot_compute_fails_as_in_one_process(desk, tmp_path, monkeypatch):
+    """A damaged file on the fourth date: the nights before it are archived and the backfill stops with the
+    same message as without workers (the backfill's own process runs that night again)."""
+    config, dates = desk
+    data = tmp_path / "data"
+    for folder in config.data_root.iterdir():
+        (data / folder.name).mkdir(parents=True)
+        for f in folder.iterdir():
+            (data / folder.name / f.name).write_bytes(f.read_bytes())
+    (data / f"as_of={dates[3].isoformat()}" / "positions.parquet").write_bytes(b"not a parquet file")
+    monkeypatch.setattr(backfill_module, "BLOCK_NIGHTS", 2)
+    messages = {}
+    for processes in (1, 2):
+        run = dataclasses.replace(config, data_root=data, archive_path=tmp_path / f"p{processes}.duckdb",
+                                  backfill_processes=processes)
+        with pytest.raises(InputFileError) as failure:
+            backfill(run, dates[1], dates[-1], reports_last=0, echo=lambda _: None)
+        messages[processes] = str(failure.value)
+        assert list(_tables(run.archive_path)["runs"]["as_of"].dt.date) == dates[1:3]
+    assert messages[1] == messages[2] and "positions.parquet" in messages[1]
+
+
+def test_how_many_workers(desk):
+    """One per available core by default, never more than the blocks of nights; none for a short range, with
+    backfill_processes = 1, or on the Dask engine; a negative count is refused naming the key."""
+    config, _ = desk
+    blocks = backfill_module.BLOCK_NIGHTS
+    assert worker_processes(config, blocks - 1) == 1
+    assert worker_processes(dataclasses.replace(config, backfill_processes=1), 100 * blocks) == 1
+    assert worker_processes(dataclasses.replace(config, backfill_processes=3), 2 * blocks) == 2
+    assert worker_processes(dataclasses.replace(config, engine="dask"), 100 * blocks) == 1
+    with pytest.raises(ConfigError, match="backfill_processes"):
+        validate(dataclasses.replace(config, backfill_processes=-1))
+
+
+def test_workers_do_not_run_the_callers_main_script_again():
+    """While workers start, the caller's main module has no file or spec to re-run; both come back after."""
+    main = sys.modules["__main__"]
+    before = (main.__dict__.get("__file__"), main.__dict__.get("__spec__"))
+    with backfill_module._main_not_inherited():
+        assert getattr(main, "__file__", None) is None and main.__spec__ is None
+    assert (main.__dict__.get("__file__"), main.__dict__.get("__spec__")) == before
