@@ -17,7 +17,7 @@ from typing import Any
 
 TIME_BASES = ("ACT/365F", "BUS/252")
 ENGINES = ("local", "dask")
-AMERICAN_PRECISIONS = ("standard", "precise")
+AMERICAN_PRECISIONS = ("standard", "precise", "fast")
 SMILE_DYNAMICS = ("sticky strike", "sticky moneyness")
 
 

@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 
-from attribution.american import PRECISE, STANDARD, TWO_BOUNDARY_RULE, Scheme, american_price_unchecked
+from attribution.american import FAST, PRECISE, STANDARD, TWO_BOUNDARY_RULE, Scheme, american_price_unchecked
 from attribution.american_greeks import NOT_IDENTIFIABLE_RULE, american_implied_vol
 from attribution.arrays import FloatArray
 from attribution.config import CheckSettings
@@ -123,7 +123,7 @@ def _first_reason(reason: NDArray[np.object_], bad: NDArray[np.bool_], text: str
     reason[fill] = text[fill] if isinstance(text, np.ndarray) else text
 
 
-AMERICAN_SCHEMES = {"standard": STANDARD, "precise": PRECISE}
+AMERICAN_SCHEMES = {"standard": STANDARD, "precise": PRECISE, "fast": FAST}
 
 
 def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, checks: CheckSettings,

@@ -61,7 +61,7 @@ def test_defaults_without_a_job_file():
     ("[limits]\nresidual_abz = 5\n", "unknown key(s) residual_abz"),
     ("[time]\nholidays = ['2026-12-25']\n", "TOML date"),
     ("[job\n", "not valid TOML"),
-    ("[job]\namerican_precision = 'high'\n", "american_precision 'high' is not one of standard, precise"),
+    ("[job]\namerican_precision = 'high'\n", "american_precision 'high' is not one of standard, precise, fast"),
     ("[report]\nexpiry_buckets = ['1M', '1W']\n", "expiry_buckets must increase"),
     ("[report]\nexpiry_buckets = ['3 months']\n", "'3 months' is not a tenor"),
     ("[report]\nbuckets = ['1M']\n", "unknown key(s) buckets"),

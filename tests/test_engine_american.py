@@ -153,3 +153,26 @@ def test_two_boundary_case_is_rejected_by_name(night) -> None:
     assert "A5" not in rows.index
     assert (exceptions["rule"] == TWO_BOUNDARY_RULE).any()
     assert (exceptions["key"] == "A5").any()
+
+
+def test_fast_mode_prices_the_night_within_its_published_error(tmp_path, night) -> None:
+    """[job] american_precision = "fast" (README, American exercise): the same night's model P&L is QuantLib's
+    within the fast mode's max error (2.8e-3 per 100 of strike on each of the two prices, with margin: 3e-3)."""
+    _write(tmp_path / "data")
+    job = tmp_path / "job.toml"
+    job.write_text('[job]\namerican_precision = "fast"\nwrite_reports = false\n')
+    main(["run", "--as-of", RUN.isoformat(), "--job", str(job), "--data", str(tmp_path / "data"), "--archive",
+          str(tmp_path / "a.duckdb")])
+    con = duckdb.connect(str(tmp_path / "a.duckdb"), read_only=True)
+    rows = con.execute("SELECT * FROM position_pnl WHERE as_of = ? ORDER BY trade_id", [RUN]).df().set_index("trade_id")
+    settings = con.execute("SELECT job_settings FROM runs").fetchone()[0]
+    con.close()
+    assert '"american_precision": "fast"' in settings
+    standard = night[1]
+    assert (rows.loc[["A1", "A3"], "pnl_model"] - standard.loc[["A1", "A3"], "pnl_model"]).abs().max() > 1e-6
+    for trade, inst, qty in POSITIONS[:3]:
+        _, kind, strike, _ = next(o for o in OPTIONS if o[0] == inst)
+        p0 = ql_american(kind, strike, PRIOR, SPOT[PRIOR], VOL[PRIOR], RATE[PRIOR], DIV)
+        p1 = ql_american(kind, strike, RUN, SPOT[RUN], VOL[RUN], RATE[RUN], DIV)
+        units = qty * 100.0
+        assert rows.loc[trade, "pnl_model"] == pytest.approx(units * (p1 - p0), abs=abs(units) * 2 * 3e-5 * strike)
