@@ -14,14 +14,16 @@ import concurrent.futures as cf
 import contextlib
 import dataclasses
 import datetime as dt
+import logging
 import multiprocessing as mp
 import os
 import sys
+import warnings
 from collections.abc import Callable, Iterator
 from typing import Any
 
 from attribution.config import JobConfig
-from attribution.console import ProgressLine, summary
+from attribution.console import LOG_FORMAT, ProgressLine, summary, warning_to_log
 from attribution.date_cache import DateCache
 from attribution.engine import EXIT_FINDINGS, EXIT_OK, NightOutcome, PreparedNight, open_archive, prepare_night
 from attribution.engine import run_night as run_prepared_night
@@ -118,10 +120,13 @@ def _main_not_inherited() -> Iterator[None]:
             main.__dict__.update(saved)
 
 
-def _start_worker(cores: list[int], counter: Any) -> None:
-    """Each worker keeps to one core of its own (its numpy threads too), so workers do not contend."""
+def _start_worker(cores: list[int], counter: Any, log_level: int) -> None:
+    """Each worker keeps to one core of its own (its numpy threads too), so workers do not contend. It logs as
+    the command does (stderr, the same verbosity), library warnings going to the debug log, not the terminal."""
     global _WORKER_CACHE
     _WORKER_CACHE = DateCache()
+    logging.basicConfig(level=log_level, stream=sys.stderr, format=LOG_FORMAT)
+    warnings.showwarning = warning_to_log
     with counter.get_lock():
         slot = counter.value
         counter.value += 1
@@ -153,7 +158,7 @@ def _prepared_elsewhere(config: JobConfig, nights: list[dt.date], processes: int
     counter = context.Value("i", 0)
     cores = sorted(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else []
     pool = cf.ProcessPoolExecutor(max_workers=processes, mp_context=context, initializer=_start_worker,
-                                  initargs=(cores, counter))
+                                  initargs=(cores, counter, logging.getLogger().getEffectiveLevel()))
     try:
         pending: collections.deque[cf.Future[list[PreparedNight]]] = collections.deque()
         queued = 0

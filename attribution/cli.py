@@ -20,7 +20,7 @@ from pathlib import Path
 
 from attribution import __version__
 from attribution.config import ConfigError, JobConfig, load_job, validate
-from attribution.console import ProgressLine, printable, summary
+from attribution.console import LOG_FORMAT, ProgressLine, printable, summary, warning_to_log
 from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE, JobFailure
 
 log = logging.getLogger("attribution")
@@ -312,17 +312,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     except SystemExit as exc:
         return EXIT_USAGE if exc.code not in (0, None) else EXIT_OK
     level = [logging.WARNING, logging.INFO, logging.DEBUG][min(args.verbose, 2)]
-    logging.basicConfig(level=level, stream=sys.stderr, format="%(asctime)s %(levelname)s %(message)s")
+    logging.basicConfig(level=level, stream=sys.stderr, format=LOG_FORMAT)
     with warnings.catch_warnings():
         # Library warnings (numpy overflow, ...) name source lines, which tell a user nothing: the rows they
         # concern are rejected by rule in the exception ledger. They go to the debug log (-vv) instead.
-        warnings.showwarning = _warning_to_log
+        warnings.showwarning = warning_to_log
         return _dispatch(args)
-
-
-def _warning_to_log(message: Warning | str, category: type[Warning], filename: str, lineno: int,
-                    file: object = None, line: str | None = None) -> None:
-    log.debug("%s: %s (%s:%s)", category.__name__, message, filename, lineno)
 
 
 def _dispatch(args: argparse.Namespace) -> int:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import logging
 import sys
 from typing import TYPE_CHECKING
 
@@ -69,3 +70,13 @@ def summary(outcome: NightOutcome, config: JobConfig) -> str:
     if outcome.index_path:
         lines.append(f"  report      {outcome.index_path}")
     return "\n".join(lines)
+
+
+LOG_FORMAT = "%(asctime)s %(levelname)s %(message)s"
+
+
+def warning_to_log(message: Warning | str, category: type[Warning], filename: str, lineno: int,
+                   file: object = None, line: str | None = None) -> None:
+    """``warnings.showwarning`` of the command: a library warning (numpy overflow, ...) names source lines, which
+    tell a user nothing (the rows it concerns are rejected by rule in the ledger), so it goes to the debug log."""
+    logging.getLogger("attribution").debug("%s: %s (%s:%s)", category.__name__, message, filename, lineno)
