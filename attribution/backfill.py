@@ -22,6 +22,9 @@ import warnings
 from collections.abc import Callable, Iterator
 from typing import Any
 
+import pyarrow as pa
+import pyarrow.parquet as pq
+
 from attribution.config import JobConfig
 from attribution.console import LOG_FORMAT, ProgressLine, summary, warning_to_log
 from attribution.date_cache import DateCache
@@ -32,6 +35,8 @@ from attribution.pricing import _available_cores
 from attribution.runner import cluster, run_night
 
 BLOCK_NIGHTS = 16  # consecutive nights computed by one worker in one go (each block reads one date twice)
+BLOCK_POSITIONS = 400_000  # positions of a block's nights at most (they wait in memory to be archived)
+LARGEST_NIGHT = 200_000  # nights with more positions are computed one at a time by the backfill's own process
 
 
 def nights_between(config: JobConfig, start: dt.date, end: dt.date) -> list[dt.date]:
@@ -53,9 +58,9 @@ def backfill(config: JobConfig, start: dt.date, end: dt.date, reports_last: int 
     # engine = "dask" one cluster serves every night. Each date's reading, row rules and market state
     # serve both nights that use it (as run date, then as the next night's prior): one cache per range.
     shared = DateCache()
-    processes = worker_processes(config, len(nights))
+    processes, block = worker_plan(config, nights)
     with open_archive(config) as session, cluster(config) as client:
-        prepared = _prepared_elsewhere(config, nights, processes)
+        prepared = _prepared_elsewhere(config, nights, processes, block)
         with contextlib.closing(prepared):  # the workers are stopped however the range ends
             outcomes = _run_in_order(config, nights, reports_last, prepared, session, client, shared, progress)
     progress.close()
@@ -83,13 +88,27 @@ def _run_in_order(config: JobConfig, nights: list[dt.date], reports_last: int, p
     return outcomes
 
 
-def worker_processes(config: JobConfig, nights: int) -> int:
-    """Worker processes for a backfill of ``nights``: the job's ``backfill_processes`` (0: one per available core),
-    never more than its blocks of nights; 1 (or the Dask engine, which has its own workers) computes in this process."""
-    if config.engine != "local":
-        return 1
+def worker_plan(config: JobConfig, nights: list[dt.date]) -> tuple[int, int]:
+    """(worker processes, nights per block) of a backfill of ``nights``: the job's ``backfill_processes`` (0: one per
+    available core), never more than its blocks of nights. A block holds at most ``BLOCK_POSITIONS`` positions (its
+    nights wait in memory to be archived); nights of more than ``LARGEST_NIGHT`` positions (the last night's file
+    tells) are computed one at a time in this process, as are those of the Dask engine (it has its own workers)."""
+    if config.engine != "local" or not nights:
+        return 1, BLOCK_NIGHTS
+    rows = _positions_rows(config, nights[-1])
+    if rows is None or rows > LARGEST_NIGHT:
+        return 1, BLOCK_NIGHTS
+    block = max(1, min(BLOCK_NIGHTS, BLOCK_POSITIONS // max(rows, 1)))
     wanted = config.backfill_processes or _available_cores()
-    return max(1, min(wanted, nights // BLOCK_NIGHTS))
+    return max(1, min(wanted, len(nights) // block)), block
+
+
+def _positions_rows(config: JobConfig, night: dt.date) -> int | None:
+    """Rows of a date's positions file from its footer (None when it cannot be read: the night says why)."""
+    try:
+        return int(pq.read_metadata(config.data_root / f"as_of={night.isoformat()}" / "positions.parquet").num_rows)
+    except (OSError, pa.ArrowException):
+        return None
 
 
 def _given(night: PreparedNight) -> Callable[..., PreparedNight]:
@@ -147,13 +166,14 @@ def _prepare_block(config: JobConfig, nights: list[dt.date]) -> list[PreparedNig
     return done
 
 
-def _prepared_elsewhere(config: JobConfig, nights: list[dt.date], processes: int) -> Iterator[PreparedNight]:
+def _prepared_elsewhere(config: JobConfig, nights: list[dt.date], processes: int,
+                        block_nights: int) -> Iterator[PreparedNight]:
     """Every night's tables in date order, computed by ``processes`` workers a block at a time (at most one block
-    ahead per worker is kept). Stops early at a night a worker could not compute, or if the workers are lost.
+    ahead of the workers is kept). Stops early at a night a worker could not compute, or if the workers are lost.
     With one process it yields nothing: every night is computed by the backfill's own process."""
     if processes <= 1:
         return
-    blocks = [nights[i:i + BLOCK_NIGHTS] for i in range(0, len(nights), BLOCK_NIGHTS)]
+    blocks = [nights[i:i + block_nights] for i in range(0, len(nights), block_nights)]
     context = mp.get_context("spawn")  # a clean interpreter: no inherited threads or open archive
     counter = context.Value("i", 0)
     cores = sorted(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else []
@@ -163,7 +183,7 @@ def _prepared_elsewhere(config: JobConfig, nights: list[dt.date], processes: int
         pending: collections.deque[cf.Future[list[PreparedNight]]] = collections.deque()
         queued = 0
         with _main_not_inherited():  # the workers start on these first submissions
-            while queued < len(blocks) and len(pending) < 2 * processes:
+            while queued < len(blocks) and len(pending) < processes + 1:
                 pending.append(pool.submit(_prepare_block, config, blocks[queued]))
                 queued += 1
         for block in blocks:

@@ -13,7 +13,7 @@ import pandas as pd
 import pytest
 
 import attribution.backfill as backfill_module
-from attribution.backfill import backfill, worker_processes
+from attribution.backfill import backfill, worker_plan
 from attribution.config import ConfigError, JobConfig, validate
 from attribution.demo import build_demo
 from attribution.loading import InputFileError
@@ -60,7 +60,7 @@ def test_worker_processes_archive_what_one_process_does(desk, tmp_path, monkeypa
     lines: dict[int, list[str]] = {1: [], 2: []}
     for processes in (1, 2):
         run = dataclasses.replace(config, archive_path=tmp_path / f"p{processes}.duckdb", backfill_processes=processes)
-        assert worker_processes(run, len(dates) - 1) == processes
+        assert worker_plan(run, dates[1:]) == (processes, 2)
         backfill(run, dates[1], dates[-1], reports_last=0, echo=lines[processes].append)
     assert from_workers == dates[1:]  # every night of the second backfill came from a worker, in date order
     one, two = _tables(tmp_path / "p1.duckdb"), _tables(tmp_path / "p2.duckdb")
@@ -92,15 +92,24 @@ def test_a_night_a_worker_cannot_compute_fails_as_in_one_process(desk, tmp_path,
     assert messages[1] == messages[2] and "positions.parquet" in messages[1]
 
 
-def test_how_many_workers(desk):
+def test_how_many_workers(desk, tmp_path, monkeypatch):
     """One per available core by default, never more than the blocks of nights; none for a short range, with
-    backfill_processes = 1, or on the Dask engine; a negative count is refused naming the key."""
-    config, _ = desk
+    backfill_processes = 1, or on the Dask engine; blocks hold at most BLOCK_POSITIONS positions, and nights above
+    LARGEST_NIGHT positions are computed in the backfill's own process; a negative count is refused naming the key."""
+    config, dates = desk
     blocks = backfill_module.BLOCK_NIGHTS
-    assert worker_processes(config, blocks - 1) == 1
-    assert worker_processes(dataclasses.replace(config, backfill_processes=1), 100 * blocks) == 1
-    assert worker_processes(dataclasses.replace(config, backfill_processes=3), 2 * blocks) == 2
-    assert worker_processes(dataclasses.replace(config, engine="dask"), 100 * blocks) == 1
+    last = dates[-1]
+    assert worker_plan(config, [last] * (blocks - 1))[0] == 1
+    assert worker_plan(dataclasses.replace(config, backfill_processes=1), [last] * 100 * blocks)[0] == 1
+    assert worker_plan(dataclasses.replace(config, backfill_processes=3), [last] * 2 * blocks) == (2, blocks)
+    assert worker_plan(dataclasses.replace(config, engine="dask"), [last] * 100 * blocks)[0] == 1
+    rows = len(pd.read_parquet(config.data_root / f"as_of={last.isoformat()}" / "positions.parquet"))
+    monkeypatch.setattr(backfill_module, "BLOCK_POSITIONS", 3 * rows)
+    assert worker_plan(dataclasses.replace(config, backfill_processes=2), [last] * 100) == (2, 3)
+    monkeypatch.setattr(backfill_module, "LARGEST_NIGHT", rows - 1)
+    assert worker_plan(dataclasses.replace(config, backfill_processes=2), [last] * 100)[0] == 1
+    unreadable = dataclasses.replace(config, data_root=tmp_path, backfill_processes=2)
+    assert worker_plan(unreadable, [last] * 100)[0] == 1  # the night itself reports the missing folder
     with pytest.raises(ConfigError, match="backfill_processes"):
         validate(dataclasses.replace(config, backfill_processes=-1))
 
