@@ -15,18 +15,14 @@ import pytest
 import attribution.backfill as backfill_module
 from attribution.backfill import backfill, worker_plan
 from attribution.config import ConfigError, JobConfig, validate
-from attribution.demo import build_demo
 from attribution.loading import InputFileError
+from tests.demo_week import demo_week
 
 
 @pytest.fixture(scope="module")
 def desk(tmp_path_factory: pytest.TempPathFactory) -> tuple[JobConfig, list[dt.date]]:
-    """The demo desk's first six business days: five nights, its planted faults on the last ones."""
-    root = tmp_path_factory.mktemp("backfill")
-    summary = build_demo(root / "data", business_days=6)
-    config = JobConfig(data_root=root / "data", archive_path=root / "archive.duckdb", reports_dir=root / "reports",
-                       holidays=summary.holidays, write_reports=False)
-    return config, list(summary.dates)
+    """The demo desk's first six business days (tests/demo_week.py)."""
+    return demo_week(tmp_path_factory.mktemp("backfill"))
 
 
 def _tables(path: Path) -> dict[str, pd.DataFrame]:

@@ -15,20 +15,16 @@ import pytest
 from attribution.backfill import backfill
 from attribution.config import JobConfig
 from attribution.date_cache import DateCache
-from attribution.demo import build_demo
 from attribution.engine import PreparedNight, prepare_night
 from attribution.runner import run_night
 from tests.contract_files import put_rows, read_rows
+from tests.demo_week import demo_week
 
 
 @pytest.fixture(scope="module")
 def desk(tmp_path_factory: pytest.TempPathFactory) -> tuple[JobConfig, list[dt.date]]:
-    """The demo desk's first six business days (a weekend inside; its planted faults on the last nights)."""
-    root = tmp_path_factory.mktemp("shared")
-    summary = build_demo(root / "data", business_days=6)
-    config = JobConfig(data_root=root / "data", archive_path=root / "archive.duckdb", reports_dir=root / "reports",
-                       holidays=summary.holidays, write_reports=False)
-    return config, list(summary.dates)
+    """The demo desk's first six business days (tests/demo_week.py)."""
+    return demo_week(tmp_path_factory.mktemp("shared"))
 
 
 def assert_same_night(shared: PreparedNight, fresh: PreparedNight) -> None:

@@ -99,15 +99,22 @@ def test_american_positions_are_explained_and_archived_as_american(night) -> Non
     assert (rows["status"] == "carried").all()
 
 
-def test_model_pnl_is_the_american_revaluation(night) -> None:
-    """pnl_model = N (American(state1) - American(state0)), QuantLib's prices at 1.5e-3 per 100 of strike."""
-    _, rows, _ = night
+def _assert_model_pnl_is_quantlibs(rows: pd.DataFrame, error_per_100: float) -> None:
+    """pnl_model of the three priced trades = N (QuantLib(state1) - QuantLib(state0)) within ``error_per_100`` of
+    strike on each of the two prices."""
     for trade, inst, qty in POSITIONS[:3]:
         _, kind, strike, _ = next(o for o in OPTIONS if o[0] == inst)
         p0 = ql_american(kind, strike, PRIOR, SPOT[PRIOR], VOL[PRIOR], RATE[PRIOR], DIV)
         p1 = ql_american(kind, strike, RUN, SPOT[RUN], VOL[RUN], RATE[RUN], DIV)
         units = qty * 100.0
-        assert rows.loc[trade, "pnl_model"] == pytest.approx(units * (p1 - p0), abs=abs(units) * 2 * 1.5e-5 * strike)
+        tolerance = abs(units) * 2 * error_per_100 / 100.0 * strike
+        assert rows.loc[trade, "pnl_model"] == pytest.approx(units * (p1 - p0), abs=tolerance)
+
+
+def test_model_pnl_is_the_american_revaluation(night) -> None:
+    """pnl_model = N (American(state1) - American(state0)), QuantLib's prices at 1.5e-3 per 100 of strike."""
+    _, rows, _ = night
+    _assert_model_pnl_is_quantlibs(rows, 1.5e-3)
 
 
 def test_null_american_vol_is_solved_with_the_american_model(night) -> None:
@@ -170,9 +177,4 @@ def test_fast_mode_prices_the_night_within_its_published_error(tmp_path, night) 
     assert '"american_precision": "fast"' in settings
     standard = night[1]
     assert (rows.loc[["A1", "A3"], "pnl_model"] - standard.loc[["A1", "A3"], "pnl_model"]).abs().max() > 1e-6
-    for trade, inst, qty in POSITIONS[:3]:
-        _, kind, strike, _ = next(o for o in OPTIONS if o[0] == inst)
-        p0 = ql_american(kind, strike, PRIOR, SPOT[PRIOR], VOL[PRIOR], RATE[PRIOR], DIV)
-        p1 = ql_american(kind, strike, RUN, SPOT[RUN], VOL[RUN], RATE[RUN], DIV)
-        units = qty * 100.0
-        assert rows.loc[trade, "pnl_model"] == pytest.approx(units * (p1 - p0), abs=abs(units) * 2 * 3e-5 * strike)
+    _assert_model_pnl_is_quantlibs(rows, 3e-3)
