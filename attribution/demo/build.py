@@ -31,7 +31,6 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
@@ -126,7 +125,7 @@ class DemoSummary:
 
 
 def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments,
-           dividends: pd.DataFrame, split: FloatArray, clock: VarianceClock,
+           schedule: Schedule, split: FloatArray, clock: VarianceClock,
            rng: np.random.Generator) -> tuple[Night, Pool]:
     """The desk's close of every live instrument tonight (on the escrowed spot, strikes adjusted for the split by
     ``split``, per instrument), and the pool open for new trades (at clean prices).
@@ -141,10 +140,9 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments
     codes = [c.code for c in desk.currencies]
     ccy = np.array([codes.index(u.currency) for u in desk.underlyings])[und]
     names = np.array([u.name for u in desk.underlyings])
-    payers = np.isin(names, dividends["underlying"].unique())[und]  # the others have no dividend to discount
+    payers = np.isin(np.arange(names.size), schedule.und)[und]  # the others have no dividend to discount
     pv = np.zeros(live.size)
-    pv[payers] = present_values(market, d, dividends, names, und[payers], np.array(codes)[ccy[payers]],
-                                store.expiry[live][payers], np.array(codes))
+    pv[payers] = present_values(market, d, schedule, und[payers], ccy[payers], store.expiry[live][payers])
     spot, div = market.spot[d, und] - pv, market.dividend_yield[d, und]  # the spot the options are valued on
     rate = np.zeros(live.size)
     for c in range(len(codes)):
@@ -539,7 +537,6 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
     store, trades, nights = ListedInstruments(), Trades(), []
     clock = variance_clock(desk, dates[0], expiries[-1] + 800)
     before_split = 0  # instruments listed before the split day: their strikes and multipliers are adjusted
-    every_dividend = schedule.frame(dates[0] - np.timedelta64(1, "D"), np.array(names))
     for d in range(dates.size):
         if dates[d] < schedule.split_day:
             before_split = store.und.size
@@ -548,7 +545,7 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
             store.strike = store.strike / split  # listed in tonight's units, so no strike is listed twice
             list_instruments(desk, market, d, store, expiries, clean, list_rng)
             store.strike[: split.size] *= split
-        night, pool = _marks(desk, market, d, store, every_dividend, _split(schedule, store, before_split, dates[d]),
+        night, pool = _marks(desk, market, d, store, schedule, _split(schedule, store, before_split, dates[d]),
                              clock, fault_rng)
         _trade(trade_rng, desk, d, market, store, trades, pool, targets)
         night.rows, night.quantity = trades.live.copy(), trades.quantity[trades.live]

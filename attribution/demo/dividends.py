@@ -14,18 +14,15 @@ carries the split on every date.
 from __future__ import annotations
 
 import dataclasses
-import datetime as dt
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
 from numpy.typing import NDArray
 
 from attribution.demo.desk import DeskSpec
 from attribution.demo.market import MarketPaths
-from attribution.dividends import schedule_pv
 from attribution.pricing import FloatArray
-from attribution.timebasis import TimeBasis
+from attribution.timebasis import DAYS_PER_YEAR_CALENDAR
 
 PAYMENTS_PER_YEAR = 4
 DAYS_BETWEEN = 91
@@ -63,12 +60,6 @@ class Schedule:
         """Per instrument: what its listed strike is divided by (and its multiplier multiplied by) on ``day``."""
         hit = (und == self.split_und) & listed_before & (day >= self.split_day)
         return np.where(hit, SPLIT_RATIO, 1.0)
-
-    def frame(self, day: np.datetime64, names: NDArray[np.str_]) -> pd.DataFrame:
-        """dividends.parquet rows known on ``day``: the payments with an ex-date after it."""
-        ahead = self.ex_date > day
-        return pd.DataFrame({"underlying": names[self.und[ahead]].astype(object),
-                             "ex_date": self.ex_date[ahead].astype("datetime64[s]"), "amount": self.amount[ahead]})
 
 
 def plan(desk: DeskSpec, market: MarketPaths, horizon: np.datetime64) -> Schedule:
@@ -114,15 +105,24 @@ def apply(desk: DeskSpec, market: MarketPaths, schedule: Schedule) -> MarketPath
     return dataclasses.replace(market, spot=spot, dividend_yield=q)
 
 
-def present_values(market: MarketPaths, d: int, every: pd.DataFrame, names: NDArray[np.str_], und: NDArray[np.int64],
-                   currency: NDArray[np.str_], expiry: NDArray[np.datetime64], codes: NDArray[np.str_]) -> FloatArray:
-    """Present value on date ``d`` of each instrument's dividends up to its expiry (the job's own formula).
+def present_values(market: MarketPaths, d: int, schedule: Schedule, und: NDArray[np.int64], ccy: NDArray[np.int64],
+                   expiry: NDArray[np.datetime64]) -> FloatArray:
+    """Present value on date ``d`` of each instrument's dividends up to its expiry: the job's own formula
+    (:func:`attribution.dividends.schedule_pv`, ACT/365F) with the same arithmetic, so the same bits.
 
-    ``every``: all payments (:meth:`Schedule.frame` of a day before them all); the window is applied here.
+    ``und``, ``ccy``: per instrument, the underlying and the currency (indices into the desk's lists). Each
+    payment ``as_of < ex_date <= expiry`` is discounted at the currency's zero rate at its ex-date and the
+    payments are added in ex-date order; done per (underlying, currency), a handful, on cumulative sums.
     """
     day = market.dates[d]
-    curves = pd.DataFrame({"currency": np.repeat(codes, market.tenors_years.size).astype(object),
-                           "tenor_years": np.tile(market.tenors_years, codes.size),
-                           "zero_rate": market.zero_rates[d].ravel()})
-    return schedule_pv(day.astype(dt.date), names[und].astype(object), currency.astype(object), expiry, every,
-                       curves, TimeBasis())
+    pv = np.zeros(und.size)
+    years = (schedule.ex_date - day).astype("timedelta64[D]").astype(float) / DAYS_PER_YEAR_CALENDAR
+    for j in np.unique(und):
+        mine = np.flatnonzero((schedule.und == j) & (schedule.ex_date > day))
+        mine = mine[np.argsort(schedule.ex_date[mine], kind="stable")]
+        for c in np.unique(ccy[und == j]):
+            rate = np.interp(years[mine], market.tenors_years, market.zero_rates[d, c])
+            total = np.concatenate([[0.0], np.cumsum(schedule.amount[mine] * np.exp(-rate * years[mine]))])
+            at = (und == j) & (ccy == c)
+            pv[at] = total[np.searchsorted(schedule.ex_date[mine], expiry[at], side="right")]
+    return pv
