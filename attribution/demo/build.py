@@ -27,6 +27,7 @@ value. The same seed gives the same tables, byte for byte.
 from __future__ import annotations
 
 import datetime as dt
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -69,7 +70,7 @@ from attribution.demo.market import (
 from attribution.demo.nights import Night, PlantedFault, Pool, Trades
 from attribution.demo.official import DeskEvents, Holdings, LateBooking, desk_pnl, join, late_booking
 from attribution.loading import CONTRACT_SCHEMAS, CONTRACT_SCHEMAS_V2
-from attribution.pricing import bsm_greeks, bsm_price
+from attribution.pricing import _available_cores, bsm_greeks, bsm_price
 
 DEFAULT_START = dt.date(2025, 11, 3)
 # The contract's files; positions carry the optional strategy column (contract version 2).
@@ -124,25 +125,47 @@ class DemoSummary:
 
 
 
-def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments,
-           schedule: Schedule, split: FloatArray, clock: VarianceClock,
-           rng: np.random.Generator) -> tuple[Night, Pool]:
-    """The desk's close of every live instrument tonight (on the escrowed spot, strikes adjusted for the split by
-    ``split``, per instrument), and the pool open for new trades (at clean prices).
+@dataclass(frozen=True, slots=True)
+class _Close:
+    """Tonight's clean close of every live instrument (the desk's model price, before its errors), and its state."""
+
+    live: IntArray
+    und: IntArray
+    strike: FloatArray
+    is_call: NDArray[np.bool_]
+    expiry: NDArray[np.datetime64]
+    tau: FloatArray
+    spot: FloatArray
+    rate: FloatArray
+    div: FloatArray
+    vol: FloatArray
+    price: FloatArray
+    lower: FloatArray
+    upper: FloatArray
+    floor: FloatArray
+    delta: FloatArray
+    american: NDArray[np.bool_]
+    exercised: NDArray[np.bool_]
+
+
+def _clean_close(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments, listed: int,
+                 schedule: Schedule, split: FloatArray, clock: VarianceClock) -> _Close:
+    """The desk's clean close on date ``d`` of the first ``listed`` instruments of ``store`` that are live (on the
+    escrowed spot, strikes adjusted for the split by ``split``, per instrument). It draws no random number, so
+    the nights' closes can be computed ahead, in any order and on any thread.
 
     The desk prices on its variance clock: the smile vol over the weighted time to expiry, quoted as the
-    ACT/365F vol that gives the same price (``implied_vol``). Its close then carries a shared error of the
-    time value per underlying and a small one per option, inside the no-arbitrage bounds."""
+    ACT/365F vol that gives the same price (``implied_vol``)."""
     day = market.dates[d]
-    live = np.flatnonzero(store.expiry >= day)
+    live = np.flatnonzero(store.expiry[:listed] >= day)
     und, strike, is_call = store.und[live], store.strike[live] / split[live], store.is_call[live]
-    tau = (store.expiry[live] - day).astype(float) / DAYS_PER_YEAR
+    expiry = store.expiry[live]
+    tau = (expiry - day).astype(float) / DAYS_PER_YEAR
     codes = [c.code for c in desk.currencies]
     ccy = np.array([codes.index(u.currency) for u in desk.underlyings])[und]
-    names = np.array([u.name for u in desk.underlyings])
-    payers = np.isin(np.arange(names.size), schedule.und)[und]  # the others have no dividend to discount
+    payers = np.isin(np.arange(len(desk.underlyings)), schedule.und)[und]  # the others have no dividend to discount
     pv = np.zeros(live.size)
-    pv[payers] = present_values(market, d, schedule, und[payers], ccy[payers], store.expiry[live][payers])
+    pv[payers] = present_values(market, d, schedule, und[payers], ccy[payers], expiry[payers])
     spot, div = market.spot[d, und] - pv, market.dividend_yield[d, und]  # the spot the options are valued on
     rate = np.zeros(live.size)
     for c in range(len(codes)):
@@ -150,7 +173,7 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments
     p = desk.param
     smile = smile_vol(market.atm_vol[d, und], p("skew")[und], p("smile_curvature")[und], p("term_slope")[und],
                       np.log(strike / spot), tau)
-    weighted = clock.years(np.full(live.size, market.dates[d]), store.expiry[live])
+    weighted = clock.years(np.full(live.size, market.dates[d]), expiry)
     vol = smile * np.sqrt(np.where(tau > 0, weighted / np.where(tau > 0, tau, 1.0), 1.0))
     price = bsm_price(spot, strike, tau, vol, rate, div, is_call)
     sign = np.where(is_call, 1.0, -1.0)
@@ -161,30 +184,43 @@ def _marks(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstruments
     if american.any():  # listed single-stock options: the American price and its wider bounds
         a = np.flatnonzero(american)
         price[a], exercised[a] = american_price_and_exercised_unchecked(
-            spot[a], strike[a], tau[a], vol[a], rate[a], div[a], np.where(is_call[a], 1.0, -1.0))
+            spot[a], strike[a], tau[a], vol[a], rate[a], div[a], np.where(is_call[a], 1.0, -1.0), threads=1)
         lower[a] = np.maximum(lower[a], sign[a] * (spot[a] - strike[a]))
         upper[a] = np.where(is_call[a], spot[a], strike[a])
     floor = lower + desk.min_time_value_share * spot
     price = np.where(tau > 0, np.maximum(price, floor), price)
     delta = bsm_greeks(spot, strike, tau, vol, rate, div, is_call).delta
+    return _Close(live=live, und=und, strike=strike, is_call=is_call, expiry=expiry, tau=tau, spot=spot, rate=rate,
+                  div=div, vol=vol, price=price, lower=lower, upper=upper, floor=floor, delta=delta,
+                  american=american, exercised=exercised)
+
+
+def _marks(desk: DeskSpec, store: ListedInstruments, clean: _Close, rng: np.random.Generator) -> tuple[Night, Pool]:
+    """The desk's close of every live instrument tonight, and the pool open for new trades (at clean prices).
+
+    The close is the clean close (:func:`_clean_close`) with a shared error of the time value per underlying and
+    a small one per option, inside the no-arbitrage bounds."""
+    live, und, strike, is_call, tau, spot, vol, price = (clean.live, clean.und, clean.strike, clean.is_call,
+                                                         clean.tau, clean.spot, clean.vol, clean.price)
     noise = desk.marks.common_noise * rng.standard_normal(len(desk.underlyings))[und] \
         + desk.marks.idio_noise * rng.standard_normal(live.size)
-    close = np.where(tau > 0, np.clip(price + noise * (price - lower), floor, upper * (1 - 1e-9)), price)
+    close = np.where(tau > 0, np.clip(price + noise * (price - clean.lower), clean.floor, clean.upper * (1 - 1e-9)),
+                     price)
     # An American mark far from the money hardly moves with vol (or sits in its exercise region) and does not
     # identify one (README, American exercise): the desk gives its vol; only marks within a standard deviation
     # of the money leave it to the job.
     near = np.abs(np.log(strike / spot)) < vol * np.sqrt(tau)
-    null_vol = store.null_vol[live] & ~(american & (exercised | ~near))
+    null_vol = store.null_vol[live] & ~(clean.american & (clean.exercised | ~near))
     night = Night(live=live, price=close, vol=np.where(null_vol, np.nan, vol),
-                   keep=np.ones(live.size, bool), tau=tau, lower=lower, upper=upper,
-                   rows=np.zeros(0, np.int64), quantity=np.zeros(0), spot=spot, rate=rate, div=div,
-                   clean_price=price.copy(), delta=delta, exercise_region=exercised)
+                   keep=np.ones(live.size, bool), tau=tau, lower=clean.lower, upper=clean.upper,
+                   rows=np.zeros(0, np.int64), quantity=np.zeros(0), spot=spot, rate=clean.rate, div=clean.div,
+                   clean_price=price.copy(), delta=clean.delta, exercise_region=clean.exercised)
     open_ = tau * DAYS_PER_YEAR >= desk.trading.min_days_to_expiry_new
     z = np.log(strike / spot) / (vol * np.sqrt(np.maximum(tau, 1e-9)))
-    series = series_key(und, store.expiry[live]) * 2 + is_call
+    series = series_key(und, clean.expiry) * 2 + is_call
     pool = Pool(instrument=live[open_], und=und[open_], series=series[open_],
                  is_call=is_call[open_], log_strike=np.log(strike[open_]), spot=spot[open_], tau=tau[open_],
-                 vol=vol[open_], rate=rate[open_], div=div[open_], price=price[open_],
+                 vol=vol[open_], rate=clean.rate[open_], div=clean.div[open_], price=price[open_],
                  weight=(np.exp(-0.5 * (z / 0.8) ** 2) / (1.0 + 2.0 * tau))[open_])
     return night, pool
 
@@ -510,6 +546,27 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
             pq.write_table(pa.Table.from_arrays(columns, schema=SCHEMAS[name]), folder / f"{name}.parquet")
 
 
+def _listings(desk: DeskSpec, market: MarketPaths, schedule: Schedule, store: ListedInstruments,
+              expiries: NDArray[np.datetime64], clean: NDArray[np.bool_],
+              rng: np.random.Generator) -> tuple[IntArray, IntArray, int]:
+    """List every night's instruments into ``store`` (the listing draws only ``rng`` and reads only the market, so
+    it runs ahead of the marks and trades): per night, how many instruments are listed by then and how many of
+    them were listed before the split day; and that count at the end."""
+    dates = market.dates
+    before_split = 0  # instruments listed before the split day: their strikes and multipliers are adjusted
+    listed, before = np.zeros(dates.size, np.int64), np.zeros(dates.size, np.int64)
+    for d in range(dates.size):
+        if dates[d] < schedule.split_day:
+            before_split = store.und.size
+        if d % desk.trading.listing_every_days == 0:
+            split = _split(schedule, store, before_split, dates[d])
+            store.strike = store.strike / split  # listed in tonight's units, so no strike is listed twice
+            list_instruments(desk, market, d, store, expiries, clean, rng)
+            store.strike[: split.size] *= split  # back in listed units: x / 2 * 2 == x exactly
+        listed[d], before[d] = store.und.size, before_split
+    return listed, before, before_split
+
+
 def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, business_days: int = 261,
                positions_target: int = 2000, definition: Path | None = None) -> DemoSummary:
     """Write the demo desk's nightly input folders for ``business_days`` business days from ``start``."""
@@ -536,20 +593,20 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
     targets = np.ceil(positions_target * weights / weights.sum()).astype(np.int64)
     store, trades, nights = ListedInstruments(), Trades(), []
     clock = variance_clock(desk, dates[0], expiries[-1] + 800)
-    before_split = 0  # instruments listed before the split day: their strikes and multipliers are adjusted
-    for d in range(dates.size):
-        if dates[d] < schedule.split_day:
-            before_split = store.und.size
-        if d % desk.trading.listing_every_days == 0:
-            split = _split(schedule, store, before_split, dates[d])
-            store.strike = store.strike / split  # listed in tonight's units, so no strike is listed twice
-            list_instruments(desk, market, d, store, expiries, clean, list_rng)
-            store.strike[: split.size] *= split
-        night, pool = _marks(desk, market, d, store, schedule, _split(schedule, store, before_split, dates[d]),
-                             clock, fault_rng)
-        _trade(trade_rng, desk, d, market, store, trades, pool, targets)
-        night.rows, night.quantity = trades.live.copy(), trades.quantity[trades.live]
-        nights.append(night)
+    listed, before, before_split = _listings(desk, market, schedule, store, expiries, clean, list_rng)
+
+    def close(d: int) -> _Close:
+        return _clean_close(desk, market, d, store, int(listed[d]), schedule,
+                            _split(schedule, store, int(before[d]), dates[d]), clock)
+
+    # The clean closes (mostly the American prices) are computed ahead on worker threads while this thread draws
+    # the errors and trades night by night: numpy releases the GIL in its loops.
+    with ThreadPoolExecutor(max_workers=_available_cores()) as workers:
+        for d, closed in enumerate(workers.map(close, range(dates.size))):
+            night, pool = _marks(desk, store, closed, fault_rng)
+            _trade(trade_rng, desk, d, market, store, trades, pool, targets)
+            night.rows, night.quantity = trades.live.copy(), trades.quantity[trades.live]
+            nights.append(night)
     ids, trade_ids = _ids(desk, store, trades.book.size)
     faults: list[PlantedFault] = []
     for b, book in enumerate(desk.books):
