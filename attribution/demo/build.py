@@ -27,7 +27,7 @@ value. The same seed gives the same tables, byte for byte.
 from __future__ import annotations
 
 import datetime as dt
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -497,53 +497,60 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
     books = [pa.array([b.name for b in desk.books], pa.string()), pa.array([b.desk for b in desk.books], pa.string())]
     n_tenor = market.tenors_years.size
     actions = schedule.actions(names)
-    for d, night in enumerate(nights):
-        folder = root / f"as_of={market.dates[d]}"
-        folder.mkdir(exist_ok=True)
-        held, quantity = booked.take(pa.array(night.rows)), night.quantity
-        if late is not None and d == late.night:  # booked by the desk tonight, in the files only tomorrow
-            keep = trade_ids[night.rows] != late.trade
-            held, quantity = held.filter(pa.array(keep)), quantity[keep]
-        options = pa.Table.from_arrays([held["trade_id"], held["book"], held["instrument_id"], pa.array(quantity),
-                                        held["trade_date"], held["trade_price"], held["strategy"]],
-                                       schema=SCHEMAS["positions"])
-        split = _split(schedule, store, before_split, market.dates[d])[night.live]
-        options_listed = pa.Table.from_arrays(_terms(instruments.take(pa.array(night.live)), split),
-                                              schema=instruments.schema)
-        at = hedge_instruments.schema.get_field_index("multiplier")
-        hedge_listed = hedge_instruments.set_column(at, "multiplier", pa.array(hedges.multipliers[d], pa.float64()))
-        listed = pa.concat_tables([options_listed, hedge_listed])
-        hedge_rows = {**hedges.positions[d], "strategy": ["delta hedge"] * len(hedges.positions[d]["trade_id"])}
-        parts = [options, pa.Table.from_pydict(hedge_rows, schema=SCHEMAS["positions"])]
-        if d in booked_wrong:
-            parts.append(pa.Table.from_pydict(booked_wrong[d], schema=SCHEMAS["positions"]))
-        events = {"positions": pa.concat_tables(parts),
-                  "instruments": listed,
-                  "future_marks": pa.Table.from_pydict(hedges.future_marks[d], schema=SCHEMAS["future_marks"])}
-        for name, parts in (("trade_activity", hedges.activity[d]), ("cash_flows", hedges.cash_flows[d])):
-            if parts is not None:
-                events[name] = pa.Table.from_pydict(parts, schema=SCHEMAS[name])
-        if late is not None and d in (late.night, late.night + 1):
-            events["trade_activity"] = _late_activity(events["trade_activity"], late, d == late.night)
-        if d > 0:
-            events["official_pnl"] = pa.Table.from_arrays([books[0], pa.array(official[d], pa.float64())],
-                                                          schema=SCHEMAS["official_pnl"])
-        for name, table in events.items():
-            pq.write_table(table, folder / f"{name}.parquet")
-        tables = {
-            "option_marks": [instrument_id.take(pa.array(night.live[night.keep])), pa.array(night.price[night.keep]),
-                             pa.array(night.vol[night.keep], mask=np.isnan(night.vol[night.keep]))],
-            "underlying_marks": [pa.array(names, pa.string()), pa.array(market.spot[d]),
-                                 pa.array(market.dividend_yield[d])],
-            "rate_curves": [pa.array(codes.repeat(n_tenor), pa.string()),
-                            pa.array(np.tile(market.tenors_years, codes.size)), pa.array(market.zero_rates[d].ravel())],
-            "fx_rates": [pa.array(codes, pa.string()), pa.array(market.fx_to_reporting[d])],
-            "dividends": schedule.columns(market.dates[d], names),
-            "corporate_actions": actions,
-            "books": books,
-        }
-        for name, columns in tables.items():
-            pq.write_table(pa.Table.from_arrays(columns, schema=SCHEMAS[name]), folder / f"{name}.parquet")
+    written: list[Future[None]] = []  # the files are independent; pyarrow encodes them without the GIL
+    with ThreadPoolExecutor(max_workers=_available_cores()) as writers:
+        for d, night in enumerate(nights):
+            folder = root / f"as_of={market.dates[d]}"
+            folder.mkdir(exist_ok=True)
+            held, quantity = booked.take(pa.array(night.rows)), night.quantity
+            if late is not None and d == late.night:  # booked by the desk tonight, in the files only tomorrow
+                keep = trade_ids[night.rows] != late.trade
+                held, quantity = held.filter(pa.array(keep)), quantity[keep]
+            options = pa.Table.from_arrays([held["trade_id"], held["book"], held["instrument_id"], pa.array(quantity),
+                                            held["trade_date"], held["trade_price"], held["strategy"]],
+                                           schema=SCHEMAS["positions"])
+            split = _split(schedule, store, before_split, market.dates[d])[night.live]
+            options_listed = pa.Table.from_arrays(_terms(instruments.take(pa.array(night.live)), split),
+                                                  schema=instruments.schema)
+            at = hedge_instruments.schema.get_field_index("multiplier")
+            hedge_listed = hedge_instruments.set_column(at, "multiplier", pa.array(hedges.multipliers[d], pa.float64()))
+            listed = pa.concat_tables([options_listed, hedge_listed])
+            hedge_rows = {**hedges.positions[d], "strategy": ["delta hedge"] * len(hedges.positions[d]["trade_id"])}
+            parts = [options, pa.Table.from_pydict(hedge_rows, schema=SCHEMAS["positions"])]
+            if d in booked_wrong:
+                parts.append(pa.Table.from_pydict(booked_wrong[d], schema=SCHEMAS["positions"]))
+            events = {"positions": pa.concat_tables(parts),
+                      "instruments": listed,
+                      "future_marks": pa.Table.from_pydict(hedges.future_marks[d], schema=SCHEMAS["future_marks"])}
+            for name, parts in (("trade_activity", hedges.activity[d]), ("cash_flows", hedges.cash_flows[d])):
+                if parts is not None:
+                    events[name] = pa.Table.from_pydict(parts, schema=SCHEMAS[name])
+            if late is not None and d in (late.night, late.night + 1):
+                events["trade_activity"] = _late_activity(events["trade_activity"], late, d == late.night)
+            if d > 0:
+                events["official_pnl"] = pa.Table.from_arrays([books[0], pa.array(official[d], pa.float64())],
+                                                              schema=SCHEMAS["official_pnl"])
+            for name, table in events.items():
+                written.append(writers.submit(pq.write_table, table, folder / f"{name}.parquet"))
+            tables = {
+                "option_marks": [instrument_id.take(pa.array(night.live[night.keep])),
+                                 pa.array(night.price[night.keep]),
+                                 pa.array(night.vol[night.keep], mask=np.isnan(night.vol[night.keep]))],
+                "underlying_marks": [pa.array(names, pa.string()), pa.array(market.spot[d]),
+                                     pa.array(market.dividend_yield[d])],
+                "rate_curves": [pa.array(codes.repeat(n_tenor), pa.string()),
+                                pa.array(np.tile(market.tenors_years, codes.size)),
+                                pa.array(market.zero_rates[d].ravel())],
+                "fx_rates": [pa.array(codes, pa.string()), pa.array(market.fx_to_reporting[d])],
+                "dividends": schedule.columns(market.dates[d], names),
+                "corporate_actions": actions,
+                "books": books,
+            }
+            for name, columns in tables.items():
+                written.append(writers.submit(pq.write_table, pa.Table.from_arrays(columns, schema=SCHEMAS[name]),
+                                              folder / f"{name}.parquet"))
+    for future in written:
+        future.result()  # a file that could not be written raises here
 
 
 def _listings(desk: DeskSpec, market: MarketPaths, schedule: Schedule, store: ListedInstruments,
