@@ -471,10 +471,42 @@ def _terms(instruments: pa.Table, split: FloatArray) -> list[pa.ChunkedArray]:
             for n in instruments.column_names]
 
 
+def _write_market(root: Path, desk: DeskSpec, market: MarketPaths, schedule: Schedule,
+                  writers: ThreadPoolExecutor) -> list[Future[None]]:
+    """Each night's folder and its files that depend on the market alone (written while the trades' files are
+    still being made): underlying marks, curves, FX, dividends, corporate actions, books."""
+    names = np.array([u.name for u in desk.underlyings])
+    codes = np.array([c.code for c in desk.currencies])
+    books = [pa.array([b.name for b in desk.books], pa.string()), pa.array([b.desk for b in desk.books], pa.string())]
+    n_tenor = market.tenors_years.size
+    actions = schedule.actions(names)
+    written = []
+    for d, day in enumerate(market.dates):
+        folder = root / f"as_of={day}"
+        folder.mkdir(exist_ok=True)
+        tables = {
+            "underlying_marks": [pa.array(names, pa.string()), pa.array(market.spot[d]),
+                                 pa.array(market.dividend_yield[d])],
+            "rate_curves": [pa.array(codes.repeat(n_tenor), pa.string()),
+                            pa.array(np.tile(market.tenors_years, codes.size)), pa.array(market.zero_rates[d].ravel())],
+            "fx_rates": [pa.array(codes, pa.string()), pa.array(market.fx_to_reporting[d])],
+            "dividends": schedule.columns(day, names),
+            "corporate_actions": actions,
+            "books": books,
+        }
+        for name, columns in tables.items():
+            written.append(writers.submit(pq.write_table, pa.Table.from_arrays(columns, schema=SCHEMAS[name]),
+                                          folder / f"{name}.parquet"))
+    return written
+
+
 def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: Trades,
            nights: list[Night], ids: NDArray[np.str_], trade_ids: NDArray[np.str_], schedule: Schedule,
            before_split: int, hedges: HedgeBook, booked_wrong: dict[int, dict[str, list[object]]],
-           official: FloatArray, late: LateBooking | None) -> None:
+           official: FloatArray, late: LateBooking | None, writers: ThreadPoolExecutor,
+           written: list[Future[None]]) -> None:
+    """Each night's positions, instruments, marks and events; the files go to ``writers`` (``written``: their
+    futures so far, waited for here)."""
     names = np.array([u.name for u in desk.underlyings])
     codes = np.array([c.code for c in desk.currencies])
     ccy = np.array([list(codes).index(u.currency) for u in desk.underlyings])
@@ -495,60 +527,43 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
         pa.array(np.array(STRATEGIES, dtype=object)[trades.strategy], pa.string())],
         names=["trade_id", "book", "instrument_id", "trade_date", "trade_price", "strategy"])
     books = [pa.array([b.name for b in desk.books], pa.string()), pa.array([b.desk for b in desk.books], pa.string())]
-    n_tenor = market.tenors_years.size
-    actions = schedule.actions(names)
-    written: list[Future[None]] = []  # the files are independent; pyarrow encodes them without the GIL
-    with ThreadPoolExecutor(max_workers=_available_cores()) as writers:
-        for d, night in enumerate(nights):
-            folder = root / f"as_of={market.dates[d]}"
-            folder.mkdir(exist_ok=True)
-            held, quantity = booked.take(pa.array(night.rows)), night.quantity
-            if late is not None and d == late.night:  # booked by the desk tonight, in the files only tomorrow
-                keep = trade_ids[night.rows] != late.trade
-                held, quantity = held.filter(pa.array(keep)), quantity[keep]
-            options = pa.Table.from_arrays([held["trade_id"], held["book"], held["instrument_id"], pa.array(quantity),
-                                            held["trade_date"], held["trade_price"], held["strategy"]],
-                                           schema=SCHEMAS["positions"])
-            split = _split(schedule, store, before_split, market.dates[d])[night.live]
-            options_listed = pa.Table.from_arrays(_terms(instruments.take(pa.array(night.live)), split),
-                                                  schema=instruments.schema)
-            at = hedge_instruments.schema.get_field_index("multiplier")
-            hedge_listed = hedge_instruments.set_column(at, "multiplier", pa.array(hedges.multipliers[d], pa.float64()))
-            listed = pa.concat_tables([options_listed, hedge_listed])
-            hedge_rows = {**hedges.positions[d], "strategy": ["delta hedge"] * len(hedges.positions[d]["trade_id"])}
-            parts = [options, pa.Table.from_pydict(hedge_rows, schema=SCHEMAS["positions"])]
-            if d in booked_wrong:
-                parts.append(pa.Table.from_pydict(booked_wrong[d], schema=SCHEMAS["positions"]))
-            events = {"positions": pa.concat_tables(parts),
-                      "instruments": listed,
-                      "future_marks": pa.Table.from_pydict(hedges.future_marks[d], schema=SCHEMAS["future_marks"])}
-            for name, parts in (("trade_activity", hedges.activity[d]), ("cash_flows", hedges.cash_flows[d])):
-                if parts is not None:
-                    events[name] = pa.Table.from_pydict(parts, schema=SCHEMAS[name])
-            if late is not None and d in (late.night, late.night + 1):
-                events["trade_activity"] = _late_activity(events["trade_activity"], late, d == late.night)
-            if d > 0:
-                events["official_pnl"] = pa.Table.from_arrays([books[0], pa.array(official[d], pa.float64())],
-                                                              schema=SCHEMAS["official_pnl"])
-            for name, table in events.items():
-                written.append(writers.submit(pq.write_table, table, folder / f"{name}.parquet"))
-            tables = {
-                "option_marks": [instrument_id.take(pa.array(night.live[night.keep])),
-                                 pa.array(night.price[night.keep]),
-                                 pa.array(night.vol[night.keep], mask=np.isnan(night.vol[night.keep]))],
-                "underlying_marks": [pa.array(names, pa.string()), pa.array(market.spot[d]),
-                                     pa.array(market.dividend_yield[d])],
-                "rate_curves": [pa.array(codes.repeat(n_tenor), pa.string()),
-                                pa.array(np.tile(market.tenors_years, codes.size)),
-                                pa.array(market.zero_rates[d].ravel())],
-                "fx_rates": [pa.array(codes, pa.string()), pa.array(market.fx_to_reporting[d])],
-                "dividends": schedule.columns(market.dates[d], names),
-                "corporate_actions": actions,
-                "books": books,
-            }
-            for name, columns in tables.items():
-                written.append(writers.submit(pq.write_table, pa.Table.from_arrays(columns, schema=SCHEMAS[name]),
-                                              folder / f"{name}.parquet"))
+    for d, night in enumerate(nights):
+        folder = root / f"as_of={market.dates[d]}"
+        held, quantity = booked.take(pa.array(night.rows)), night.quantity
+        if late is not None and d == late.night:  # booked by the desk tonight, in the files only tomorrow
+            keep = trade_ids[night.rows] != late.trade
+            held, quantity = held.filter(pa.array(keep)), quantity[keep]
+        options = pa.Table.from_arrays([held["trade_id"], held["book"], held["instrument_id"], pa.array(quantity),
+                                        held["trade_date"], held["trade_price"], held["strategy"]],
+                                       schema=SCHEMAS["positions"])
+        split = _split(schedule, store, before_split, market.dates[d])[night.live]
+        options_listed = pa.Table.from_arrays(_terms(instruments.take(pa.array(night.live)), split),
+                                              schema=instruments.schema)
+        at = hedge_instruments.schema.get_field_index("multiplier")
+        hedge_listed = hedge_instruments.set_column(at, "multiplier", pa.array(hedges.multipliers[d], pa.float64()))
+        listed = pa.concat_tables([options_listed, hedge_listed])
+        hedge_rows = {**hedges.positions[d], "strategy": ["delta hedge"] * len(hedges.positions[d]["trade_id"])}
+        parts = [options, pa.Table.from_pydict(hedge_rows, schema=SCHEMAS["positions"])]
+        if d in booked_wrong:
+            parts.append(pa.Table.from_pydict(booked_wrong[d], schema=SCHEMAS["positions"]))
+        events = {"positions": pa.concat_tables(parts),
+                  "instruments": listed,
+                  "future_marks": pa.Table.from_pydict(hedges.future_marks[d], schema=SCHEMAS["future_marks"])}
+        for name, parts in (("trade_activity", hedges.activity[d]), ("cash_flows", hedges.cash_flows[d])):
+            if parts is not None:
+                events[name] = pa.Table.from_pydict(parts, schema=SCHEMAS[name])
+        if late is not None and d in (late.night, late.night + 1):
+            events["trade_activity"] = _late_activity(events["trade_activity"], late, d == late.night)
+        if d > 0:
+            events["official_pnl"] = pa.Table.from_arrays([books[0], pa.array(official[d], pa.float64())],
+                                                          schema=SCHEMAS["official_pnl"])
+        for name, table in events.items():
+            written.append(writers.submit(pq.write_table, table, folder / f"{name}.parquet"))
+        marks = pa.Table.from_arrays([instrument_id.take(pa.array(night.live[night.keep])),
+                                      pa.array(night.price[night.keep]),
+                                      pa.array(night.vol[night.keep], mask=np.isnan(night.vol[night.keep]))],
+                                     schema=SCHEMAS["option_marks"])
+        written.append(writers.submit(pq.write_table, marks, folder / "option_marks.parquet"))
     for future in written:
         future.result()  # a file that could not be written raises here
 
@@ -614,25 +629,29 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
             _trade(trade_rng, desk, d, market, store, trades, pool, targets)
             night.rows, night.quantity = trades.live.copy(), trades.quantity[trades.live]
             nights.append(night)
-    ids, trade_ids = _ids(desk, store, trades.book.size)
-    faults: list[PlantedFault] = []
-    for b, book in enumerate(desk.books):
-        if book.marks == "planted_faults":
-            faults += mark_faults(desk, market, store, trades, nights, ids, b)
-        elif book.marks == "noisy":
-            faults += noisy_marks(desk, market, store, nights, b, fault_rng)
-    splits = [_split(schedule, store, before_split, day) for day in dates]
-    names_und = np.arange(len(desk.underlyings))
-    hedge_splits = [schedule.split_factor(names_und, np.ones(names_und.size, bool), day) for day in dates]
-    exercise = plan_exercise(desk, market, store, trades, nights, splits)
-    hedges = hedge_book(desk, market, store, trades, nights, trade_ids, hedge_rng, splits, hedge_splits, exercise)
-    booked_wrong, fault = _booking_error(desk, market, nights, ids, trades)
-    faults.append(fault)
-    official, late, events = _official(desk, market, store, trades, nights, ids, trade_ids, hedges, schedule, splits,
-                                       hedge_splits, faults, exercise)
-    faults += events
-    _write(root, desk, market, store, trades, nights, ids, trade_ids, schedule, before_split, hedges, booked_wrong,
-           official, late)
+    # The Parquet files are independent: written on worker threads (pyarrow encodes them without the GIL), the
+    # market's while this thread makes the faults, hedges and the desk's P&L.
+    with ThreadPoolExecutor(max_workers=_available_cores()) as writers:
+        written = _write_market(root, desk, market, schedule, writers)
+        ids, trade_ids = _ids(desk, store, trades.book.size)
+        faults: list[PlantedFault] = []
+        for b, book in enumerate(desk.books):
+            if book.marks == "planted_faults":
+                faults += mark_faults(desk, market, store, trades, nights, ids, b)
+            elif book.marks == "noisy":
+                faults += noisy_marks(desk, market, store, nights, b, fault_rng)
+        splits = [_split(schedule, store, before_split, day) for day in dates]
+        names_und = np.arange(len(desk.underlyings))
+        hedge_splits = [schedule.split_factor(names_und, np.ones(names_und.size, bool), day) for day in dates]
+        exercise = plan_exercise(desk, market, store, trades, nights, splits)
+        hedges = hedge_book(desk, market, store, trades, nights, trade_ids, hedge_rng, splits, hedge_splits, exercise)
+        booked_wrong, fault = _booking_error(desk, market, nights, ids, trades)
+        faults.append(fault)
+        official, late, events = _official(desk, market, store, trades, nights, ids, trade_ids, hedges, schedule,
+                                           splits, hedge_splits, faults, exercise)
+        faults += events
+        _write(root, desk, market, store, trades, nights, ids, trade_ids, schedule, before_split, hedges,
+               booked_wrong, official, late, writers, written)
     counts = np.array([night.rows.size for night in nights])
     if late is not None:
         counts[late.night] -= 1  # the late-booked trade is in that night's files only the next night
