@@ -27,14 +27,12 @@ value. The same seed gives the same tables, byte for byte.
 from __future__ import annotations
 
 import datetime as dt
-from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-import pyarrow.parquet as pq
 from numpy.typing import NDArray
 
 from attribution.american import american_price_and_exercised_unchecked
@@ -54,6 +52,7 @@ from attribution.demo.dividends import plan as plan_dividends
 from attribution.demo.exercise import Exercise, plan_exercise
 from attribution.demo.faults import mark_faults, noisy_marks
 from attribution.demo.hedges import HedgeBook, hedge_book
+from attribution.demo.helpers import FromBothEnds, ParquetFiles
 from attribution.demo.market import (
     IntArray,
     ListedInstruments,
@@ -70,7 +69,7 @@ from attribution.demo.market import (
 from attribution.demo.nights import Night, PlantedFault, Pool, Trades
 from attribution.demo.official import DeskEvents, Holdings, LateBooking, desk_pnl, join, late_booking
 from attribution.loading import CONTRACT_SCHEMAS, CONTRACT_SCHEMAS_V2
-from attribution.pricing import _available_cores, bsm_greeks, bsm_price
+from attribution.pricing import bsm_greeks, bsm_price
 
 DEFAULT_START = dt.date(2025, 11, 3)
 # The contract's files; positions carry the optional strategy column (contract version 2).
@@ -472,7 +471,7 @@ def _terms(instruments: pa.Table, split: FloatArray) -> list[pa.ChunkedArray]:
 
 
 def _write_market(root: Path, desk: DeskSpec, market: MarketPaths, schedule: Schedule,
-                  writers: ThreadPoolExecutor) -> list[Future[None]]:
+                  files: ParquetFiles) -> None:
     """Each night's folder and its files that depend on the market alone (written while the trades' files are
     still being made): underlying marks, curves, FX, dividends, corporate actions, books."""
     names = np.array([u.name for u in desk.underlyings])
@@ -480,7 +479,6 @@ def _write_market(root: Path, desk: DeskSpec, market: MarketPaths, schedule: Sch
     books = [pa.array([b.name for b in desk.books], pa.string()), pa.array([b.desk for b in desk.books], pa.string())]
     n_tenor = market.tenors_years.size
     actions = schedule.actions(names)
-    written = []
     for d, day in enumerate(market.dates):
         folder = root / f"as_of={day}"
         folder.mkdir(exist_ok=True)
@@ -495,18 +493,14 @@ def _write_market(root: Path, desk: DeskSpec, market: MarketPaths, schedule: Sch
             "books": books,
         }
         for name, columns in tables.items():
-            written.append(writers.submit(pq.write_table, pa.Table.from_arrays(columns, schema=SCHEMAS[name]),
-                                          folder / f"{name}.parquet"))
-    return written
+            files.put(pa.Table.from_arrays(columns, schema=SCHEMAS[name]), folder / f"{name}.parquet")
 
 
 def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstruments, trades: Trades,
            nights: list[Night], ids: NDArray[np.str_], trade_ids: NDArray[np.str_], schedule: Schedule,
            before_split: int, hedges: HedgeBook, booked_wrong: dict[int, dict[str, list[object]]],
-           official: FloatArray, late: LateBooking | None, writers: ThreadPoolExecutor,
-           written: list[Future[None]]) -> None:
-    """Each night's positions, instruments, marks and events; the files go to ``writers`` (``written``: their
-    futures so far, waited for here)."""
+           official: FloatArray, late: LateBooking | None, files: ParquetFiles) -> None:
+    """Each night's positions, instruments, marks and events, handed to ``files``."""
     names = np.array([u.name for u in desk.underlyings])
     codes = np.array([c.code for c in desk.currencies])
     ccy = np.array([list(codes).index(u.currency) for u in desk.underlyings])
@@ -558,14 +552,12 @@ def _write(root: Path, desk: DeskSpec, market: MarketPaths, store: ListedInstrum
             events["official_pnl"] = pa.Table.from_arrays([books[0], pa.array(official[d], pa.float64())],
                                                           schema=SCHEMAS["official_pnl"])
         for name, table in events.items():
-            written.append(writers.submit(pq.write_table, table, folder / f"{name}.parquet"))
+            files.put(table, folder / f"{name}.parquet")
         marks = pa.Table.from_arrays([instrument_id.take(pa.array(night.live[night.keep])),
                                       pa.array(night.price[night.keep]),
                                       pa.array(night.vol[night.keep], mask=np.isnan(night.vol[night.keep]))],
                                      schema=SCHEMAS["option_marks"])
-        written.append(writers.submit(pq.write_table, marks, folder / "option_marks.parquet"))
-    for future in written:
-        future.result()  # a file that could not be written raises here
+        files.put(marks, folder / "option_marks.parquet")
 
 
 def _listings(desk: DeskSpec, market: MarketPaths, schedule: Schedule, store: ListedInstruments,
@@ -621,18 +613,19 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
         return _clean_close(desk, market, d, store, int(listed[d]), schedule,
                             _split(schedule, store, int(before[d]), dates[d]), clock)
 
-    # The clean closes (mostly the American prices) are computed ahead on worker threads while this thread draws
-    # the errors and trades night by night: numpy releases the GIL in its loops.
-    with ThreadPoolExecutor(max_workers=_available_cores()) as workers:
-        for d, closed in enumerate(workers.map(close, range(dates.size))):
-            night, pool = _marks(desk, store, closed, fault_rng)
-            _trade(trade_rng, desk, d, market, store, trades, pool, targets)
-            night.rows, night.quantity = trades.live.copy(), trades.quantity[trades.live]
-            nights.append(night)
-    # The Parquet files are independent: written on worker threads (pyarrow encodes them without the GIL), the
-    # market's while this thread makes the faults, hedges and the desk's P&L.
-    with ThreadPoolExecutor(max_workers=_available_cores()) as writers:
-        written = _write_market(root, desk, market, schedule, writers)
+    # The clean closes (mostly the American prices) are shared with a helper thread, which takes them from the last
+    # night backwards, while this thread draws the errors and trades night by night.
+    closes = FromBothEnds(dates.size, close)
+    for d in range(dates.size):
+        night, pool = _marks(desk, store, closes.get(d), fault_rng)
+        _trade(trade_rng, desk, d, market, store, trades, pool, targets)
+        night.rows, night.quantity = trades.live.copy(), trades.quantity[trades.live]
+        nights.append(night)
+    closes.close()
+    # The Parquet files are independent: written by a helper thread, the market's while this thread makes the faults,
+    # hedges and the desk's P&L.
+    with ParquetFiles() as files:
+        _write_market(root, desk, market, schedule, files)
         ids, trade_ids = _ids(desk, store, trades.book.size)
         faults: list[PlantedFault] = []
         for b, book in enumerate(desk.books):
@@ -651,7 +644,7 @@ def build_demo(root: Path, *, seed: int = 7, start: dt.date = DEFAULT_START, bus
                                            splits, hedge_splits, faults, exercise)
         faults += events
         _write(root, desk, market, store, trades, nights, ids, trade_ids, schedule, before_split, hedges,
-               booked_wrong, official, late, writers, written)
+               booked_wrong, official, late, files)
     counts = np.array([night.rows.size for night in nights])
     if late is not None:
         counts[late.night] -= 1  # the late-booked trade is in that night's files only the next night
