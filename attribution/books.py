@@ -130,44 +130,51 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
 
     ``desks``: the run date's desk per book (books.parquet); a book it does not list is ``(unassigned)``.
     ``rejected_sizes``: :func:`rejected_size`'s rows (a book without one left out nothing: zeros).
+    The columns are gathered as arrays and the frame is made once (a night has a handful of books: column by
+    column frame edits cost more than the sums).
     """
     amounts = list(PNL_COLUMNS) + list(REVAL_COLUMNS) + list(EXPOSURE_COLUMNS) + list(V2_AMOUNT_COLUMNS)
     # the books sorted, hashed once: every per-book figure below is a bincount or a sum over these codes
     book_code, book_names = pd.factorize(positions["book"].to_numpy(dtype=object), sort=True)
     grouped = positions[amounts].groupby(book_code, sort=True)
     sums = grouped.sum(min_count=0)
-    for column in REVAL_COLUMNS:  # NULL when the method is off
-        sums[column] = grouped[column].sum(min_count=1)
-    sums.index = pd.Index(book_names[sums.index], dtype=object, name="book")
-    counts = _status_counts(book_code, positions["status"].to_numpy(dtype=object), sums.index)
+    reval_sums = grouped[list(REVAL_COLUMNS)].sum(min_count=1)  # NULL when the method is off
+    names = pd.Index(book_names[sums.index], dtype=object, name="book")
     rejected_books = rejected["book"].value_counts()
-    warn = exceptions[exceptions["severity"] == WARNING]
-    keys = warn["key"].unique()  # a warning touches a book through one of its instruments or trades
-    by_instrument = positions.loc[positions["instrument_id"].isin(keys), ["book", "instrument_id"]]
-    by_trade = positions.loc[positions["trade_id"].isin(keys), ["book", "trade_id"]]
-    touched = pd.concat([by_instrument.rename(columns={"instrument_id": "key"}),
-                         by_trade.rename(columns={"trade_id": "key"})]).drop_duplicates()
-    warnings = touched.merge(warn[["key"]], on="key").groupby("book").size()
-    books = sums.index.union(rejected_books.index)
-    frame = sums.reindex(books, fill_value=0.0)
-    for column in REVAL_COLUMNS:
-        frame[column] = sums[column].reindex(books)
-    frame = frame.reset_index(names="book")
-    counts = counts.reindex(books, fill_value=0)
-    for status in STATUSES:
-        frame[status] = counts[status].to_numpy()
-    frame["positions"] = counts.sum(axis=1).to_numpy()
-    frame["rejected"] = rejected_books.reindex(books, fill_value=0).to_numpy()
-    frame["warnings"] = warnings.reindex(books, fill_value=0).to_numpy()
-    limits = [config.limits_for(b) for b in frame["book"]]
-    states, applied = book_states(frame["pnl_residual"], frame["pnl_actual"],
+    books = names.union(rejected_books.index)
+    row = names.get_indexer(books)  # each book's row among the sums; -1: a book with rejected rows only
+    found = row >= 0
+    at = np.where(found, row, 0)
+
+    def per_book(values: np.ndarray, fill: float | int) -> np.ndarray:
+        return np.where(found, values[at], fill) if len(values) else np.full(len(books), fill)
+
+    columns: dict[str, object] = {"book": books.to_numpy(dtype=object)}
+    summed = sums[amounts].to_numpy(dtype=float)
+    for j, column in enumerate(amounts):
+        columns[column] = per_book(summed[:, j], 0.0)
+    summed = reval_sums[list(REVAL_COLUMNS)].to_numpy(dtype=float)
+    for j, column in enumerate(REVAL_COLUMNS):
+        columns[column] = per_book(summed[:, j], np.nan)
+    status_code = pd.Index(STATUSES).get_indexer(positions["status"].to_numpy(dtype=object))
+    known = status_code >= 0  # a status outside STATUSES (a book's cash row) is no position
+    cells = np.bincount(book_code[known] * len(STATUSES) + status_code[known],
+                        minlength=len(names) * len(STATUSES)).reshape(len(names), len(STATUSES)).astype(np.int64)
+    for j, status in enumerate(STATUSES):
+        columns[status] = per_book(cells[:, j], 0).astype(np.int64)
+    columns["positions"] = per_book(cells.sum(axis=1), 0).astype(np.int64)
+    columns["rejected"] = rejected_books.reindex(books, fill_value=0).to_numpy().astype(np.int64)
+    columns["warnings"] = per_book(_warnings_per_book(positions, exceptions, book_code, len(names)), 0).astype(np.int64)
+    limits = [config.limits_for(b) for b in columns["book"]]  # type: ignore[union-attr]
+    states, applied = book_states(columns["pnl_residual"], columns["pnl_actual"],
                                   [x.residual_abs for x in limits], [x.residual_rel for x in limits],
                                   [x.relative_floor for x in limits], [x.watch_fraction for x in limits])
     in_breach = (positions["limit_state"] == BREACH).to_numpy(dtype=bool)
-    breaches = pd.Series(np.bincount(book_code[in_breach], minlength=len(sums)), index=sums.index)
-    frame["position_breaches"] = breaches.reindex(books, fill_value=0).to_numpy()
-    frame["residual_limit"] = applied
-    frame["limit_state"] = np.where((states == "within") & (frame["position_breaches"] > 0), WATCH, states)
+    breaches = per_book(np.bincount(book_code[in_breach], minlength=len(names)), 0).astype(np.int64)
+    columns["position_breaches"] = breaches
+    columns["residual_limit"] = applied
+    columns["limit_state"] = np.where((states == "within") & (breaches > 0), WATCH, states)
+    frame = pd.DataFrame(columns)
     frame["as_of"], frame["prior_as_of"] = pd.Timestamp(as_of), pd.Timestamp(prior_as_of)
     frame["desk"] = frame["book"].map(desks if desks is not None else {}).astype(object).fillna(UNASSIGNED_DESK)
     frame["official_pnl"] = frame["official_break"] = np.nan
@@ -178,6 +185,24 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
         frame[column] = values.reindex(frame["book"]).fillna(0).to_numpy()
     frame["rejected_unvalued"] = frame["rejected_unvalued"].astype(np.int64)
     return frame[[name for name, _ in BOOK_PNL]]
+
+
+def _warnings_per_book(positions: pd.DataFrame, exceptions: pd.DataFrame, book_code: np.ndarray,
+                       books: int) -> np.ndarray:
+    """Warning rows per book (codes of ``book_code``): a warning touches a book through one of its instruments
+    or trades, and counts once per (book, key) it touches, however many positions share that key."""
+    warn = exceptions.loc[(exceptions["severity"] == WARNING).to_numpy(), "key"].to_numpy(dtype=object)
+    if not len(warn) or not len(book_code):
+        return np.zeros(books, dtype=np.int64)
+    key_code, keys = pd.factorize(warn)  # a null key touches nothing
+    per_key = np.bincount(key_code[key_code >= 0], minlength=len(keys))
+    index = pd.Index(keys, dtype=object)
+    pairs = []
+    for column in ("instrument_id", "trade_id"):
+        hit = index.get_indexer(positions[column].to_numpy(dtype=object))
+        pairs.append(np.stack([book_code[hit >= 0], hit[hit >= 0]], axis=1))
+    touched = np.unique(np.concatenate(pairs), axis=0)
+    return np.bincount(touched[:, 0], weights=per_key[touched[:, 1]], minlength=books).astype(np.int64)
 
 
 def _status_counts(book_code: np.ndarray, status: np.ndarray, books: pd.Index) -> pd.DataFrame:
