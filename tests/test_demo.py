@@ -283,7 +283,7 @@ def test_one_stock_splits_two_for_one_with_its_options_adjusted(built: Built) ->
 
 
 def test_clean_marks_agree_with_quantlib(built: Built) -> None:
-    """Clean live marks equal QuantLib: analytic European to rel 1e-9, QdFp American to 1.5e-3 per 100 (+ floor)."""
+    """Clean live marks equal QuantLib: analytic European to rel 1e-9, QdFp American to 3e-3 per 100 (+ floor)."""
     day = built.summary.dates[3]
     m = _state(built.nights[day], day)
     m = m[(m["tau"] > 0) & m["implied_vol"].notna() & ~m["underlying"].isin(_faulty_marks(built, day))]
@@ -303,13 +303,14 @@ def test_clean_marks_agree_with_quantlib(built: Built) -> None:
             kind = ql.Option.Call if row.option_type == "call" else ql.Option.Put
             ql_expiry = ql.Date(expiry.day, expiry.month, expiry.year)
             floor = load_desk().min_time_value_share * row.spot  # a live mark's least time value
-            if row.exercise == "american":  # QuantLib's QdFpAmericanEngine; our standard mode: 1.5e-3 per 100
+            if row.exercise == "american":  # QuantLib's QdFpAmericanEngine; the desk's FAST scheme: README's fast
+                # mode's largest error 2.8e-3 per 100 of strike, rounded up
                 option = ql.VanillaOption(ql.PlainVanillaPayoff(kind, row.strike),
                                           ql.AmericanExercise(today, ql_expiry))
                 option.setPricingEngine(ql.QdFpAmericanEngine(process, ql.QdFpLegendreTanhSinhScheme(48, 10, 24,
                                                                                                        1e-9)))
                 intrinsic = max((row.spot - row.strike) * (1 if kind == ql.Option.Call else -1), 0.0)
-                reference, tolerance = max(option.NPV(), intrinsic), floor + 1.5e-5 * row.strike
+                reference, tolerance = max(option.NPV(), intrinsic), floor + 3e-5 * row.strike
             else:
                 option = ql.EuropeanOption(ql.PlainVanillaPayoff(kind, row.strike), ql.EuropeanExercise(ql_expiry))
                 option.setPricingEngine(ql.AnalyticEuropeanEngine(process))

@@ -7,8 +7,9 @@ vectorised over instruments and trades:
 
 * listing: the next monthly and the quarterly expiries, strikes on a grid of standard deviations
   around spot; later listings add new expiries and strikes beyond the listed range;
-* marks: the BSM price (:func:`attribution.pricing.bsm_price`; American-style single-stock options:
-  :func:`attribution.american.american_price`) at the smile vol, the curve rate at
+* marks: the BSM price (:func:`attribution.pricing.bsm_price`; American-style single-stock options: the job's
+  American method in its FAST scheme, :data:`attribution.american.FAST`, the desk's own cheaper pricer, so a small
+  mark/model gap against the job's standard mode) at the smile vol, the curve rate at
   the option's time to expiry (ACT/365F) and the dividend yield; ``implied_vol`` is left null for a
   fixed share of instruments of clean books; a live option keeps a tiny time value so that its
   mark lies strictly inside the no-arbitrage bounds;
@@ -35,7 +36,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 from numpy.typing import NDArray
 
-from attribution.american import american_price_and_exercised_unchecked
+from attribution.american import FAST, american_price_and_exercised_unchecked
 from attribution.arrays import FloatArray
 from attribution.demo.desk import (
     DAYS_PER_YEAR,
@@ -180,10 +181,11 @@ def _clean_close(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstr
     upper = np.where(is_call, spot * np.exp(-div * tau), strike * np.exp(-rate * tau))
     american = np.array([u.exercise == "american" for u in desk.underlyings])[und]
     exercised = np.zeros(live.size, dtype=bool)
-    if american.any():  # listed single-stock options: the American price and its wider bounds
+    if american.any():  # listed single-stock options: the American price (the desk's FAST scheme), wider bounds
         a = np.flatnonzero(american)
         price[a], exercised[a] = american_price_and_exercised_unchecked(
-            spot[a], strike[a], tau[a], vol[a], rate[a], div[a], np.where(is_call[a], 1.0, -1.0), threads=1)
+            spot[a], strike[a], tau[a], vol[a], rate[a], div[a], np.where(is_call[a], 1.0, -1.0), scheme=FAST,
+            threads=1)
         lower[a] = np.maximum(lower[a], sign[a] * (spot[a] - strike[a]))
         upper[a] = np.where(is_call[a], spot[a], strike[a])
     floor = lower + desk.min_time_value_share * spot
