@@ -115,7 +115,14 @@ def instrument_terms(own: CleanNight, other: CleanNight | None) -> pd.DataFrame:
     if other is None:
         return own.instruments
     extra = other.instruments.loc[~other.instruments.index.isin(own.instruments.index)]
-    return pd.concat([own.instruments, extra]) if len(extra) else own.instruments
+    if not len(extra):
+        return own.instruments
+    terms = pd.concat([own.instruments, extra])
+    # the labels keep the instruments' own index type: concatenated, text labels would be inferred as pandas'
+    # string type, on which every lookup of the night's positions by instrument (an object array) is many
+    # times slower
+    terms.index = terms.index.astype(own.instruments.index.dtype)
+    return terms
 
 
 def _first_reason(reason: NDArray[np.object_], bad: NDArray[np.bool_], text: str | NDArray[np.object_]) -> None:
