@@ -156,7 +156,8 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
     summed = reval_sums[list(REVAL_COLUMNS)].to_numpy(dtype=float)
     for j, column in enumerate(REVAL_COLUMNS):
         columns[column] = per_book(summed[:, j], np.nan)
-    status_code = pd.Index(STATUSES).get_indexer(positions["status"].to_numpy(dtype=object))
+    status_code = pd.Index(STATUSES, dtype=object).get_indexer(pd.Index(positions["status"].to_numpy(dtype=object),
+                                                                         dtype=object, copy=False))
     known = status_code >= 0  # a status outside STATUSES (a book's cash row) is no position
     cells = np.bincount(book_code[known] * len(STATUSES) + status_code[known],
                         minlength=len(names) * len(STATUSES)).reshape(len(names), len(STATUSES)).astype(np.int64)
@@ -199,7 +200,7 @@ def _warnings_per_book(positions: pd.DataFrame, exceptions: pd.DataFrame, book_c
     index = pd.Index(keys, dtype=object)
     pairs = []
     for column in ("instrument_id", "trade_id"):
-        hit = index.get_indexer(positions[column].to_numpy(dtype=object))
+        hit = index.get_indexer(pd.Index(positions[column].to_numpy(dtype=object), dtype=object, copy=False))
         pairs.append(np.stack([book_code[hit >= 0], hit[hit >= 0]], axis=1))
     touched = np.unique(np.concatenate(pairs), axis=0)
     return np.bincount(touched[:, 0], weights=per_key[touched[:, 1]], minlength=books).astype(np.int64)

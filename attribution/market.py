@@ -96,7 +96,9 @@ class InstrumentMarket:
         ones looked up (about 4x faster for a million positions over twenty thousand instruments).
         """
         codes, distinct = pd.factorize(np.asarray(instrument_ids, dtype=object), use_na_sentinel=False)
-        return self.ids.get_indexer(distinct)[codes].astype(np.intp, copy=False)
+        # the ids passed as an object index: a bare object array would first be inferred as pandas' string type
+        found = self.ids.get_indexer(pd.Index(distinct, dtype=object, copy=False))
+        return found[codes].astype(np.intp, copy=False)
 
 
 def take(values: NDArray[np.generic], index: NDArray[np.intp], fill: object) -> NDArray[np.generic]:
@@ -161,7 +163,7 @@ def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, check
     _first_reason(reason, terms_rejected, f"its row in instruments.parquet of {as_of} breaks a rule (see that row)")
     _first_reason(reason, tau < 0, f"the option expired before {as_of}")  # wording kept for every kind
 
-    u_idx = night.underlyings.index.get_indexer(underlying)
+    u_idx = night.underlyings.index.get_indexer(pd.Index(underlying, dtype=object, copy=False))
     spot_known = u_idx >= 0
     spot = take(night.underlyings["spot"].to_numpy(float), u_idx, np.nan)
     div_yield = take(night.underlyings["dividend_yield"].to_numpy(float), u_idx, np.nan)
