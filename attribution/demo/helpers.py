@@ -32,6 +32,13 @@ def _helper_wanted() -> bool:
     return _available_cores() > 1
 
 
+def _write(table: pa.Table, path: Path) -> None:
+    """``pq.write_table`` into a file opened here: the same bytes, without resolving a filesystem per file (a
+    fifth of the cost of a small file)."""
+    with pa.OSFile(str(path), "wb") as sink:
+        pq.write_table(table, sink)
+
+
 class FromBothEnds(Generic[T]):
     """``compute(i)`` for i in 0..n-1: the main thread asks in order, the helper takes the last unclaimed one."""
 
@@ -97,7 +104,7 @@ class ParquetFiles:
 
     def put(self, table: pa.Table, path: Path) -> None:
         if self._thread is None:
-            pq.write_table(table, path)
+            _write(table, path)
         else:
             self._queue.put((table, path))
 
@@ -109,7 +116,7 @@ class ParquetFiles:
         if item is None:
             return False
         try:
-            pq.write_table(*item)
+            _write(*item)
         except BaseException as error:  # the first failure is raised by finish()
             self._error = self._error or error
         return True
