@@ -64,6 +64,7 @@ from attribution.demo.market import (
     series_key,
     simulate_market,
     smile_vol,
+    strike_index,
     variance_clock,
     zero_rate,
 )
@@ -219,8 +220,10 @@ def _marks(desk: DeskSpec, store: ListedInstruments, clean: _Close, rng: np.rand
     open_ = tau * DAYS_PER_YEAR >= desk.trading.min_days_to_expiry_new
     z = np.log(strike / spot) / (vol * np.sqrt(np.maximum(tau, 1e-9)))
     series = series_key(und, clean.expiry) * 2 + is_call
+    log_strike = np.log(strike[open_])
     pool = Pool(instrument=live[open_], und=und[open_], series=series[open_],
-                 is_call=is_call[open_], log_strike=np.log(strike[open_]), spot=spot[open_], tau=tau[open_],
+                 strikes=strike_index(series[open_], log_strike),  # built once for the night's nearest-strike searches
+                 is_call=is_call[open_], log_strike=log_strike, spot=spot[open_], tau=tau[open_],
                  vol=vol[open_], rate=clean.rate[open_], div=clean.div[open_], price=price[open_],
                  weight=(np.exp(-0.5 * (z / 0.8) ** 2) / (1.0 + 2.0 * tau))[open_])
     return night, pool
@@ -242,14 +245,14 @@ def _pairs(rng: np.random.Generator, pool: Pool, style: str, mask: NDArray[np.bo
         anchor = _sample(rng, pool, mask & ~pool.is_call & (pool.log_strike <= np.log(pool.spot * 1.02)), lots.size)
         straddle = rng.random(anchor.size) < 0.5
         target = np.where(straddle, pool.log_strike[anchor], 2 * np.log(pool.spot[anchor]) - pool.log_strike[anchor])
-        partner = nearest_strike(pool.series, pool.log_strike, pool.series[anchor] + 1, target)
+        partner = nearest_strike(pool.strikes, pool.series[anchor] + 1, target)
         q_anchor, q_partner = -lots[: anchor.size], -lots[: anchor.size]
         label = np.where(straddle, 1, 2)
     else:
         anchor = _sample(rng, pool, mask, lots.size)
-        other = nearest_strike(pool.series, pool.log_strike, pool.series[anchor] ^ 1, pool.log_strike[anchor])
+        other = nearest_strike(pool.strikes, pool.series[anchor] ^ 1, pool.log_strike[anchor])
         shift = np.where(pool.is_call[anchor], 0.5, -0.5) * pool.vol[anchor] * np.sqrt(pool.tau[anchor])
-        same = nearest_strike(pool.series, pool.log_strike, pool.series[anchor], pool.log_strike[anchor] + shift)
+        same = nearest_strike(pool.strikes, pool.series[anchor], pool.log_strike[anchor] + shift)
         partner = np.where((rng.random(anchor.size) < 0.5) & (same != anchor), same, other)
         legs = np.concatenate([anchor, partner])
         delta = bsm_greeks(pool.spot[legs], np.exp(pool.log_strike[legs]), pool.tau[legs], pool.vol[legs],

@@ -172,17 +172,34 @@ def series_key(und: IntArray, expiry: NDArray[np.datetime64]) -> IntArray:
     return expiry.astype(np.int64) * 4096 + und
 
 
-def nearest_strike(series: IntArray, log_strike: FloatArray, q_series: IntArray, q_log_strike: FloatArray) -> IntArray:
-    """Index of the nearest strike of the same series for every query, -1 where the series is empty."""
-    best = np.full(q_series.shape, -1, dtype=np.int64)
-    if series.size == 0:
-        return best
+@dataclass(frozen=True, slots=True)
+class StrikeIndex:
+    """Listed strikes sorted by (series, ln K), built once to find the nearest strike of many queries."""
+
+    order: IntArray      # positions of the listed strikes in sorted order
+    k_sorted: FloatArray  # ln K in that order
+    uniq: IntArray       # the distinct series, increasing
+    rank: IntArray       # per sorted strike, the rank of its series in uniq
+    keys: FloatArray     # rank * 100 + ln K: sorted, series apart since |ln K| < 50
+
+
+def strike_index(series: IntArray, log_strike: FloatArray) -> StrikeIndex:
+    """The index of the listed strikes ``log_strike`` (ln K) of the series ``series``."""
     order = np.lexsort((log_strike, series))
     k_sorted = log_strike[order]
     uniq, rank = np.unique(series[order], return_inverse=True)
+    return StrikeIndex(order, k_sorted, uniq, rank, rank * 100.0 + k_sorted)
+
+
+def nearest_strike(index: StrikeIndex, q_series: IntArray, q_log_strike: FloatArray) -> IntArray:
+    """Index of the nearest listed strike of the same series for every query, -1 where the series is empty."""
+    best = np.full(q_series.shape, -1, dtype=np.int64)
+    order, k_sorted, uniq, rank = index.order, index.k_sorted, index.uniq, index.rank
+    if order.size == 0:
+        return best
     q_rank = np.minimum(np.searchsorted(uniq, q_series), uniq.size - 1)
     present = uniq[q_rank] == q_series
-    pos = np.searchsorted(rank * 100.0 + k_sorted, q_rank * 100.0 + q_log_strike)  # |ln K| < 50: series apart
+    pos = np.searchsorted(index.keys, q_rank * 100.0 + q_log_strike)
     gap = np.full(q_series.shape, np.inf)
     for cand in (pos - 1, pos):
         c = np.clip(cand, 0, order.size - 1)
@@ -223,8 +240,8 @@ def list_instruments(desk: DeskSpec, market: MarketPaths, d: int, store: ListedI
     keep = np.sort(first)
     keep = keep[strike[keep] > 0]
     calls = np.flatnonzero(store.is_call & (store.expiry >= day))
-    near = nearest_strike(series_key(store.und[calls], store.expiry[calls]), np.log(store.strike[calls]),
-                    series[keep], np.log(strike[keep]))
+    near = nearest_strike(strike_index(series_key(store.und[calls], store.expiry[calls]), np.log(store.strike[calls])),
+                          series[keep], np.log(strike[keep]))
     listed = np.log(np.append(store.strike[calls], 1.0))[near]  # near = -1 (nothing listed) reads the dummy
     gap = np.where(near >= 0, np.abs(np.log(strike[keep]) - listed), np.inf)
     new = keep[gap > 0.75 * np.min(np.diff(np.unique(grid))) * sd_c[keep]]

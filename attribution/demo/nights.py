@@ -9,7 +9,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from attribution.arrays import FloatArray
-from attribution.demo.market import IntArray
+from attribution.demo.market import IntArray, StrikeIndex
 
 
 @dataclass(frozen=True, slots=True)
@@ -68,6 +68,7 @@ class Pool:
     instrument: IntArray
     und: IntArray
     series: IntArray         # (expiry, underlying, call/put) as one integer; flipping bit 0 flips call/put
+    strikes: StrikeIndex     # the pool's strikes sorted by series, for nearest-strike searches
     is_call: NDArray[np.bool_]
     log_strike: FloatArray
     spot: FloatArray
