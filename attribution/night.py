@@ -53,12 +53,12 @@ def _state(market: InstrumentMarket, idx: NDArray[np.intp]) -> MarketState:
 
 def _flags(parts: list[tuple[NDArray[np.bool_], str]], n: int) -> NDArray[np.object_]:
     """Comma-separated flag words per row (a loop over the few flag kinds, not over rows)."""
-    out = pd.Series([""] * n, dtype=object)
+    out = np.full(n, "", dtype=object)
     for mask, word in parts:
         if mask.any():
-            m = pd.Series(mask)
-            out = out.where(~m, out.where(out == "", out + ",") + word)
-    return out.to_numpy(dtype=object)
+            words = out[mask]
+            out[mask] = np.where(words == "", word, words + ("," + word))
+    return out
 
 
 def _vol_and_time(ex: Explain, units: FloatArray, s0: MarketState, s1: MarketState, dt_years: float | FloatArray,

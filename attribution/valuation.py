@@ -96,6 +96,16 @@ def delta_one(kind: NDArray[np.int8], spot: FloatArray, escrowed: FloatArray, st
     return price, delta, zeros, zeros, theta, rho, dividend_rho, zeros, zeros
 
 
+def delta_one_price(kind: NDArray[np.int8], spot: FloatArray, escrowed: FloatArray, strike: FloatArray,
+                    tau_years: FloatArray, rate: FloatArray, div_yield: FloatArray) -> FloatArray:
+    """The price of :func:`delta_one` alone (the same operations), for revaluations that need no greeks."""
+    s, k, t, r, q = escrowed, strike, tau_years, rate, div_yield
+    with np.errstate(invalid="ignore"):
+        s_q, k_r, fut = s * np.exp(-q * t), k * np.exp(-r * t), s * np.exp((r - q) * t)
+    price: FloatArray = np.select([kind == FORWARD, kind == FUTURE], [s_q - k_r, fut], default=spot)
+    return price
+
+
 def _delta_one_rows(kind: NDArray[np.int8] | None, n: int) -> NDArray[np.intp]:
     return np.zeros(0, dtype=np.intp) if kind is None else np.flatnonzero(np.asarray(kind)[:n] != OPTION)
 
@@ -149,7 +159,7 @@ def value_and_exercised(strike: FloatArray, cp: FloatArray, state: MarketState, 
     price = price_unchecked(s, k, t, v, r, q, cp)
     d1 = _delta_one_rows(kind, s.size)
     if d1.size:
-        price[d1] = delta_one(np.asarray(kind)[d1], state.spot[d1], s[d1], k[d1], t[d1], r[d1], q[d1])[0]
+        price[d1] = delta_one_price(np.asarray(kind)[d1], state.spot[d1], s[d1], k[d1], t[d1], r[d1], q[d1])
     exercised = np.zeros(s.size, dtype=bool)
     rows, u, inverse = _american_distinct(american, group, (s, k, t, v, r, q, cp))
     if rows.size:
@@ -197,7 +207,7 @@ def _delta_one_shares(kind: NDArray[np.int8], strike: FloatArray, pairs: list[tu
     for state in range(N_STATES):
         spot, _vol, tau, rate, div = (pair[state >> f & 1][u] for f, pair in enumerate(pairs))
         escrowed = spot - pv[state >> 4 & 1][u]  # the dividends' value moves with the dividend factor
-        by_state[state] = delta_one(kind[u], spot, escrowed, strike[u], tau, rate, div)[0]
+        by_state[state] = delta_one_price(kind[u], spot, escrowed, strike[u], tau, rate, div)
     # the split itself runs over every row, as it always has (its sums depend on where a row sits in the array)
     return shapley_allocate(by_state if inverse is None else by_state[:, inverse])
 
