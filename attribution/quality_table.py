@@ -17,6 +17,7 @@ from attribution.schema import BOOK_QUALITY
 
 
 def _checked_series(series: pd.DataFrame) -> pd.DataFrame:
+    """The series' four columns with ``as_of`` as datetimes; raises naming the first bad row and its rule."""
     missing = [c for c in ("as_of", "book", "hpl", "rtpl") if c not in series.columns]
     if missing:
         raise ValueError(f"quality series: missing column(s) {missing} (rule: columns as_of, book, hpl, rtpl)")
@@ -38,6 +39,26 @@ def _checked_series(series: pd.DataFrame) -> pd.DataFrame:
     return frame
 
 
+def _series_arrays(series: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """``as_of`` (datetime64), ``book`` (objects), ``hpl`` and ``rtpl`` of a series that keeps every rule of
+    :func:`_checked_series`; a series that breaks one is handed to it, so the error names the same row and rule.
+
+    The checks are numpy over whole columns: the engine calls this every night on the whole history.
+    """
+    if any(c not in series.columns for c in ("as_of", "book", "hpl", "rtpl")):
+        _checked_series(series)
+    as_of = series["as_of"]
+    dates = as_of.to_numpy() if as_of.dtype.kind == "M" and getattr(as_of.dtype, "tz", None) is None else None
+    if dates is None:
+        dates = _checked_series(series)["as_of"].to_numpy()
+    books = series["book"].to_numpy(dtype=object)
+    hpl, rtpl = series["hpl"].to_numpy(dtype=float), series["rtpl"].to_numpy(dtype=float)
+    bad = np.isnat(dates) | pd.isna(books) | ~np.isfinite(hpl) | ~np.isfinite(rtpl)
+    if bad.any():
+        _checked_series(series)
+    return dates, books, hpl, rtpl
+
+
 def quality_frame(series: pd.DataFrame, as_of_date: dt.date | str | pd.Timestamp,
                   window: int = 250, recent: int = 60) -> pd.DataFrame:
     """The quality test as a table with the columns of ``schema.BOOK_QUALITY``, one row per book.
@@ -46,16 +67,29 @@ def quality_frame(series: pd.DataFrame, as_of_date: dt.date | str | pd.Timestamp
     :func:`nightly_series`). Only nights <= ``as_of_date`` count, the latest ``window`` per book;
     a book with no night up to that date has no row. ``as_of`` of every row is ``as_of_date``.
     """
-    frame = _checked_series(series)
+    dates, books_all, hpl_all, rtpl_all = _series_arrays(series)
+    # Books in sorted order (as pandas' sorted factorize), each book's nights oldest first.
+    names, codes_all = np.unique(books_all, return_inverse=True) if len(books_all) else (
+        np.empty(0, dtype=object), np.empty(0, dtype=np.int64))
+    order = np.lexsort((dates, codes_all))
+    sorted_codes, sorted_dates = codes_all[order], dates[order]
+    if ((sorted_codes[1:] == sorted_codes[:-1]) & (sorted_dates[1:] == sorted_dates[:-1])).any():
+        _checked_series(series)  # raises: a book with two rows of one night
     as_of = pd.Timestamp(as_of_date)
-    used = frame[frame["as_of"] <= as_of].sort_values(["book", "as_of"], kind="stable")
-    from_end = used.groupby("book", sort=False).cumcount(ascending=False).to_numpy()
-    used, from_end = used[from_end < window], from_end[from_end < window]
-    codes, books = pd.factorize(used["book"], sort=True)
+    used = order[sorted_dates <= as_of.to_datetime64()]
+    codes = codes_all[used]
+    counts = np.bincount(codes, minlength=len(names))
+    first = np.concatenate(([0], np.cumsum(counts)[:-1]))
+    from_end = counts[codes] - 1 - (np.arange(len(used)) - first[codes])  # 0 = the book's latest night
+    keep = from_end < window
+    used, codes, from_end = used[keep], codes[keep], from_end[keep]
+    present = np.flatnonzero(counts)           # books with at least one night up to the date
+    rows = np.searchsorted(present, codes)
+    books = names[present]
     hpl = np.full((len(books), window), np.nan)
     rtpl = np.full((len(books), window), np.nan)
-    hpl[codes, window - 1 - from_end] = used["hpl"].to_numpy(float)
-    rtpl[codes, window - 1 - from_end] = used["rtpl"].to_numpy(float)
+    hpl[rows, window - 1 - from_end] = hpl_all[used]
+    rtpl[rows, window - 1 - from_end] = rtpl_all[used]
     res = quality_test(hpl, rtpl, window=window, recent=recent)
     columns = {
         "as_of": [as_of.date()] * len(books), "book": np.asarray(books, dtype=object),
