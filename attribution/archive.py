@@ -30,10 +30,10 @@ from attribution.schema import TABLES
 # log is folded as often as one night is bigger than it (a million positions: every night, as before) and at
 # the latest when the connection closes. Committed nights are durable in the log either way: a run killed
 # before the fold leaves them there, and the next open replays them.
-CHECKPOINT_THRESHOLD = "256MB"
+SET_CHECKPOINT_THRESHOLD = "SET checkpoint_threshold = '256MB'"
 
-# A table of at most this many rows has its float columns taken from pandas in one copy (a block), which
-# costs less than the per-column calls; a larger one hands each column over without a copy.
+# A table of at most this many rows has its float and integer columns taken from pandas in one copy per type (a
+# block), which costs less than the per-column calls; a larger one hands each column over without a copy.
 SMALL_TABLE_ROWS = 65_536
 
 
@@ -95,7 +95,7 @@ def connect(archive: Path, read_only: bool = False) -> duckdb.DuckDBPyConnection
             con.execute(f"CREATE TABLE IF NOT EXISTS {table} ({body})")
             _add_missing_columns(con, table, columns)
         con.execute("COMMIT")
-        con.execute(f"SET checkpoint_threshold = '{CHECKPOINT_THRESHOLD}'")
+        con.execute(SET_CHECKPOINT_THRESHOLD)
     except BaseException:
         con.close()
         raise
@@ -145,7 +145,7 @@ def _floats(values: np.ndarray) -> pa.Array:
 
 
 def _column(series: pd.Series) -> pa.Array:
-    """One column that is not Python objects as Arrow, with the values ``pa.Table.from_pandas`` gives."""
+    """One column as Arrow, with the values ``pa.Table.from_pandas`` gives (which converts each column so)."""
     if series.dtype == np.float64:
         return _floats(series.to_numpy())
     return pa.Array.from_pandas(series)
@@ -153,27 +153,42 @@ def _column(series: pd.Series) -> pa.Array:
 
 def arrow_table(frame: pd.DataFrame, table: str) -> pa.Table:
     """``frame``'s columns in the order of the archive ``table``, as one Arrow table (no pandas copy between):
-    numbers without a copy (a small table's floats in one block copy), text converted by Arrow over every core."""
+    numbers without a copy, text converted by Arrow over every core; a small table (the book totals, the run
+    record) with one block copy per number type and no threads, where the per-column calls cost the most."""
     names = [name for name, _ in TABLES[table]]
     dtypes = dict(zip(frame.columns.tolist(), frame.dtypes.tolist(), strict=True))
     for name in names:
         if name not in dtypes:
             raise KeyError(name)
+    small = len(frame) <= SMALL_TABLE_ROWS
     text = [name for name in names if dtypes[name] == np.dtype(object)]
     arrays: dict[str, pa.Array | pa.ChunkedArray] = {}
-    if text:
+    if text and not small:  # a small table's text goes column by column below: the same Arrow arrays, less set-up
         converted = pa.Table.from_pandas(frame, columns=text, preserve_index=False)
         arrays.update(zip(text, converted.columns, strict=True))
-    floats = [name for name in names if dtypes[name] == np.float64]
-    if floats and len(frame) <= SMALL_TABLE_ROWS:
-        block = frame[floats].to_numpy(dtype=np.float64)  # rows x columns, each column contiguous
-        arrays.update((name, _floats(block[:, j])) for j, name in enumerate(floats))
+    if small:  # floats and integers each in one block copy: rows x columns, each column contiguous
+        floats = [name for name in names if dtypes[name] == np.float64]
+        if floats:
+            block = frame[floats].to_numpy(dtype=np.float64)
+            arrays.update((name, _floats(block[:, j])) for j, name in enumerate(floats))
+        integers = [name for name in names if dtypes[name] == np.int64]
+        if integers:
+            block = frame[integers].to_numpy(dtype=np.int64)
+            arrays.update((name, pa.array(block[:, j])) for j, name in enumerate(integers))
     arrays.update((name, _column(frame[name])) for name in names if name not in arrays)
     return pa.Table.from_arrays([arrays[name] for name in names], names=names)
 
 
-def _insert(con: duckdb.DuckDBPyConnection, table: str, frame: pd.DataFrame) -> None:
-    """Append ``frame``'s rows; its columns are put in the table's order, so the insert is positional."""
+def _insert(con: duckdb.DuckDBPyConnection, table: str, frame: pd.DataFrame | pa.Table) -> None:
+    """Append ``frame``'s rows; its columns are put in the table's order, so the insert is positional.
+    An Arrow table is taken as it is and must have the table's columns in order."""
+    if isinstance(frame, pa.Table):
+        names = [name for name, _ in TABLES[table]]
+        if frame.column_names != names:
+            raise ValueError(f"{table}: Arrow rows with columns {frame.column_names}, expected {names}")
+        if frame.num_rows:
+            con.from_arrow(frame).insert_into(table)
+        return
     if frame.empty:
         return
     con.from_arrow(arrow_table(frame, table)).insert_into(table)
@@ -192,7 +207,8 @@ def quality_series(con: duckdb.DuckDBPyConnection, up_to: dt.date) -> pd.DataFra
     return pd.DataFrame(columns)
 
 
-def write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, frames: dict[str, pd.DataFrame]) -> pd.DataFrame:
+def write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date,
+                frames: dict[str, pd.DataFrame | pa.Table]) -> pd.DataFrame:
     """Replace every table's rows of ``as_of`` with ``frames`` and the night's quality test, atomically.
 
     Returns the ``book_quality`` rows written.

@@ -18,6 +18,7 @@ from pathlib import Path
 import duckdb
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 
 from attribution import __version__
 from attribution.activity import (
@@ -281,20 +282,43 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
                          missing, tuple(watch.stages), schedule)
 
 
-def _runs_frame(night: PreparedNight, config: JobConfig, run_id: str, started: dt.datetime,
-                exit_code: int, seconds: float) -> pd.DataFrame:
-    return pd.DataFrame([{
-        "run_id": run_id, "as_of": pd.Timestamp(night.as_of), "prior_as_of": pd.Timestamp(night.prior_as_of),
-        "started_at": started, "finished_at": dt.datetime.now(), "status": "complete",
-        "tool_version": __version__, "input_hashes": json.dumps(night.hashes, sort_keys=True),
-        "job_settings": json.dumps(config.as_record(), sort_keys=True),
-        "positions_in": night.positions_in, "positions_archived": int((night.positions["status"] != CASH).sum()),
-        "positions_rejected": night.rejected_positions,
-        "warnings": int((night.exceptions["severity"] == WARNING).sum()),
-        "book_breaches": int((night.books["limit_state"] == BREACH).sum()),
-        "position_breaches": int((night.positions["limit_state"] == BREACH).sum()),
-        "exit_code": exit_code, "seconds": seconds,
-    }])
+@dataclass(frozen=True, slots=True)
+class _Counts:
+    """The night's counts for its run record and its outcome, each counted once."""
+
+    archived: int
+    warnings: int
+    book_breaches: int
+    position_breaches: int
+
+    @classmethod
+    def of(cls, night: PreparedNight) -> _Counts:
+        return cls(archived=int((night.positions["status"] != CASH).sum()),
+                   warnings=int((night.exceptions["severity"] == WARNING).sum()),
+                   book_breaches=int((night.books["limit_state"] == BREACH).sum()),
+                   position_breaches=int((night.positions["limit_state"] == BREACH).sum()))
+
+
+def _runs_table(night: PreparedNight, config: JobConfig, run_id: str, started: dt.datetime,
+                exit_code: int, seconds: float, counts: _Counts) -> pa.Table:
+    """The night's run record (one row) as Arrow, typed as a pandas frame of it would convert (dates as
+    timestamps, text as large strings): a one-row frame cost more to build and convert than the insert itself."""
+    text, number = pa.large_string(), pa.int64()
+    record: tuple[tuple[str, object, pa.DataType], ...] = (
+        ("run_id", run_id, text),
+        ("as_of", pd.Timestamp(night.as_of), pa.timestamp("s")),
+        ("prior_as_of", pd.Timestamp(night.prior_as_of), pa.timestamp("s")),
+        ("started_at", started, pa.timestamp("us")), ("finished_at", dt.datetime.now(), pa.timestamp("us")),
+        ("status", "complete", text), ("tool_version", __version__, text),
+        ("input_hashes", json.dumps(night.hashes, sort_keys=True), text),
+        ("job_settings", json.dumps(config.as_record(), sort_keys=True), text),
+        ("positions_in", night.positions_in, number), ("positions_archived", counts.archived, number),
+        ("positions_rejected", night.rejected_positions, number), ("warnings", counts.warnings, number),
+        ("book_breaches", counts.book_breaches, number), ("position_breaches", counts.position_breaches, number),
+        ("exit_code", exit_code, number), ("seconds", seconds, pa.float64()),
+    )
+    return pa.Table.from_arrays([pa.array([value], kind) for _, value, kind in record],
+                                names=[name for name, _, _ in record])
 
 
 class ArchiveSession:
@@ -348,15 +372,16 @@ def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
     if night.unaccounted:
         raise RuntimeError(f"{as_of}: positions neither archived nor rejected: {', '.join(night.unaccounted)}")
     watch = Stopwatch(progress)
-    book_breaches = int((night.books["limit_state"] == BREACH).sum())
-    position_breaches = int((night.positions["limit_state"] == BREACH).sum())
+    counts = _Counts.of(night)
+    book_breaches, position_breaches = counts.book_breaches, counts.position_breaches
     official_breaks_found = int((night.exceptions["rule"] == OFFICIAL_BREAK).sum())
     missing_days = tuple(night.exceptions.loc[night.exceptions["rule"] == MISSING_DAY, "key"].astype(str))
     findings = (night.rejected_positions > 0 or book_breaches > 0 or position_breaches > 0 or official_breaks_found > 0
                 or bool(missing_days))
     exit_code = EXIT_FINDINGS if findings else EXIT_OK
-    frames = {"position_pnl": night.positions, "book_pnl": night.books, "input_exceptions": night.exceptions,
-              "runs": _runs_frame(night, config, str(uuid.uuid4()), started, exit_code, time.perf_counter() - t0)}
+    frames: dict[str, pd.DataFrame | pa.Table] = {
+        "position_pnl": night.positions, "book_pnl": night.books, "input_exceptions": night.exceptions,
+        "runs": _runs_table(night, config, str(uuid.uuid4()), started, exit_code, time.perf_counter() - t0, counts)}
     if night.dividend_schedule is not None:
         frames["dividend_schedule"] = night.dividend_schedule
     con = session.con
@@ -370,8 +395,7 @@ def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
     pos = night.positions
     return NightOutcome(
         as_of=as_of, prior_as_of=night.prior_as_of, positions_in=night.positions_in,
-        archived=int((pos["status"] != CASH).sum()),
-        rejected=night.rejected_positions, warnings=int((night.exceptions["severity"] == WARNING).sum()),
+        archived=counts.archived, rejected=night.rejected_positions, warnings=counts.warnings,
         books=len(night.books), total_pnl=float(pos["pnl_total"].sum()),
         overnight_actual=float(pos["pnl_actual"].sum()), explained=float(pos["pnl_explained"].sum()),
         residual=float(pos["pnl_residual"].sum()), book_breaches=book_breaches,
