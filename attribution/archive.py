@@ -207,15 +207,22 @@ def quality_series(con: duckdb.DuckDBPyConnection, up_to: dt.date) -> pd.DataFra
     return pd.DataFrame(columns)
 
 
+def dates_with_rows(con: duckdb.DuckDBPyConnection) -> set[dt.date]:
+    """Every date that has a row in any table of the archive (a run record or not)."""
+    body = " UNION ".join(f"SELECT DISTINCT as_of FROM {table}" for table in TABLES)
+    return {r[0] for r in con.execute(body).fetchall()}
+
+
 def write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date,
-                frames: dict[str, pd.DataFrame | pa.Table]) -> pd.DataFrame:
+                frames: dict[str, pd.DataFrame | pa.Table], replace: bool = True) -> pd.DataFrame:
     """Replace every table's rows of ``as_of`` with ``frames`` and the night's quality test, atomically.
 
-    Returns the ``book_quality`` rows written.
+    ``replace=False`` skips the deletes: only for a date known to have no row in any table (a backfill's
+    session knows its archive's dates, as it holds the archive's lock). Returns the ``book_quality`` rows written.
     """
     con.execute("BEGIN TRANSACTION")
     try:
-        for table in TABLES:
+        for table in TABLES if replace else ():
             con.execute(f"DELETE FROM {table} WHERE as_of = ?", [as_of])
         for table in ("position_pnl", "book_pnl", "input_exceptions", "dividend_schedule"):
             if table in frames:

@@ -34,7 +34,7 @@ from attribution.activity import (
     unknown_trades,
     with_statuses,
 )
-from attribution.archive import archive_lock, connect, write_night
+from attribution.archive import archive_lock, connect, dates_with_rows, write_night
 from attribution.books import (
     book_frame,
     conservation,
@@ -327,6 +327,21 @@ class ArchiveSession:
     def __init__(self, config: JobConfig) -> None:
         self._path = config.archive_path
         self._con: duckdb.DuckDBPyConnection | None = None
+        self._dates: set[dt.date] | None = None  # dates with rows in the archive, read once, kept up to date here
+
+    def holds(self, as_of: dt.date) -> bool:
+        """Whether the archive may have rows of ``as_of`` (true unless known not to): its rows must be replaced.
+        Nothing else writes the archive while this session holds its lock, so the dates read once stay true."""
+        if type(as_of) is not dt.date:
+            return True
+        if self._dates is None:
+            self._dates = dates_with_rows(self.con)
+        return as_of in self._dates
+
+    def written(self, as_of: dt.date) -> None:
+        """Note a date just committed."""
+        if self._dates is not None and type(as_of) is dt.date:
+            self._dates.add(as_of)
 
     @property
     def con(self) -> duckdb.DuckDBPyConnection:
@@ -338,6 +353,7 @@ class ArchiveSession:
         if self._con is not None:
             self._con.close()
             self._con = None
+        self._dates = None
 
 
 @contextlib.contextmanager
@@ -385,7 +401,8 @@ def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
     if night.dividend_schedule is not None:
         frames["dividend_schedule"] = night.dividend_schedule
     con = session.con
-    quality = write_night(con, as_of, frames)
+    quality = write_night(con, as_of, frames, replace=session.holds(as_of))
+    session.written(as_of)
     watch.lap("archive")
     index_path = None
     if config.write_reports:

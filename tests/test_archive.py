@@ -96,6 +96,23 @@ def test_rerun_replaces_the_date_in_every_table(archived, desk, tmp_path):
     assert len(rows_twice["runs"]) == 1
 
 
+def test_one_session_writing_a_date_twice_replaces_it(archived, desk, tmp_path):
+    """A session (a backfill holds one) skips the deletes only for a date it knows has no row: a date the archive
+    held when the session opened, and a date the session wrote itself, are both replaced, never duplicated."""
+    box = copy_of(archived, tmp_path / "box")
+    sums_once, rows_once = read_archive(box / "a.duckdb", RUN)
+    config = JobConfig(data_root=desk, archive_path=Path("a.duckdb"), reports_dir=Path("reports"),
+                       write_reports=False, time_basis="BUS/252")  # the settings `run` records
+    with contextlib.chdir(box), engine_module.open_archive(config) as session:
+        assert session.holds(RUN) and not session.holds(PRIOR)
+        for _ in range(2):
+            engine_module.run_night(config, RUN, session=session)
+        assert session.holds(RUN)
+    sums_thrice, rows_thrice = read_archive(box / "a.duckdb", RUN)
+    assert {t: n for t, (n, _) in sums_thrice.items()} == {t: n for t, (n, _) in sums_once.items()}
+    assert_same_rows(rows_thrice, rows_once)
+
+
 def test_rerun_with_changed_inputs_leaves_no_stale_rows(archived, desk, tmp_path):
     """A rerun after a position left the run date's file drops that position's old row (replace, not merge)."""
     box = copy_of(archived, tmp_path / "box")
