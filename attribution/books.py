@@ -136,9 +136,14 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
     amounts = list(PNL_COLUMNS) + list(REVAL_COLUMNS) + list(EXPOSURE_COLUMNS) + list(V2_AMOUNT_COLUMNS)
     # the books sorted, hashed once: every per-book figure below is a bincount or a sum over these codes
     book_code, book_names = pd.factorize(positions["book"].to_numpy(dtype=object), sort=True)
-    grouped = positions[amounts].groupby(book_code, sort=True)
+    # the amounts as one float block, summed by one groupby (pandas' compensated sums, column by column)
+    block = np.empty((len(positions), len(amounts)))
+    for j, column in enumerate(amounts):
+        block[:, j] = positions[column].to_numpy(dtype=float)
+    grouped = pd.DataFrame(block, copy=False).groupby(book_code, sort=True)
     sums = grouped.sum(min_count=0)
-    reval_sums = grouped[list(REVAL_COLUMNS)].sum(min_count=1)  # NULL when the method is off
+    reval = [amounts.index(c) for c in REVAL_COLUMNS]
+    reval_sums = grouped[reval].sum(min_count=1)  # NULL when the method is off
     names = pd.Index(book_names[sums.index], dtype=object, name="book")
     rejected_books = rejected["book"].value_counts()
     books = names.union(rejected_books.index)
@@ -150,10 +155,10 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
         return np.where(found, values[at], fill) if len(values) else np.full(len(books), fill)
 
     columns: dict[str, object] = {"book": books.to_numpy(dtype=object)}
-    summed = sums[amounts].to_numpy(dtype=float)
+    summed = sums.to_numpy(dtype=float)
     for j, column in enumerate(amounts):
         columns[column] = per_book(summed[:, j], 0.0)
-    summed = reval_sums[list(REVAL_COLUMNS)].to_numpy(dtype=float)
+    summed = reval_sums.to_numpy(dtype=float)
     for j, column in enumerate(REVAL_COLUMNS):
         columns[column] = per_book(summed[:, j], np.nan)
     status_code = pd.Index(STATUSES, dtype=object).get_indexer(pd.Index(positions["status"].to_numpy(dtype=object),
@@ -175,17 +180,27 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
     columns["position_breaches"] = breaches
     columns["residual_limit"] = applied
     columns["limit_state"] = np.where((states == "within") & (breaches > 0), WATCH, states)
-    frame = pd.DataFrame(columns)
-    frame["as_of"], frame["prior_as_of"] = pd.Timestamp(as_of), pd.Timestamp(prior_as_of)
-    frame["desk"] = frame["book"].map(desks if desks is not None else {}).astype(object).fillna(UNASSIGNED_DESK)
-    frame["official_pnl"] = frame["official_break"] = np.nan
-    frame["delta_units"] = np.nan  # units of different underlyings (and currencies) do not add up: per underlying only
+    columns["as_of"], columns["prior_as_of"] = pd.Timestamp(as_of), pd.Timestamp(prior_as_of)
+    book_index = pd.Index(columns["book"], dtype=object, copy=False)
+    columns["desk"] = pd.Series(_desks_of(book_index, desks), dtype=object)  # kept as Python text
+    columns["official_pnl"] = columns["official_break"] = np.nan
+    columns["delta_units"] = np.nan  # units of different underlyings (and currencies) do not add up: per underlying
     sizes = (rejected_sizes if rejected_sizes is not None else pd.DataFrame(columns=["book"])).set_index("book")
     for column in ("rejected_prior_value", "rejected_vega_per_vol_point", "rejected_unvalued"):
         values = sizes[column] if column in sizes else pd.Series(dtype=float)
-        frame[column] = values.reindex(frame["book"]).fillna(0).to_numpy()
-    frame["rejected_unvalued"] = frame["rejected_unvalued"].astype(np.int64)
-    return frame[[name for name, _ in BOOK_PNL]]
+        columns[column] = values.reindex(book_index).fillna(0).to_numpy()
+    columns["rejected_unvalued"] = columns["rejected_unvalued"].astype(np.int64)  # type: ignore[attr-defined]
+    return pd.DataFrame({name: columns[name] for name, _ in BOOK_PNL})
+
+
+def _desks_of(books: pd.Index, desks: pd.Series | None) -> np.ndarray:
+    """The desk of each book (``desks``: desk per book), ``(unassigned)`` where it lists none."""
+    if desks is None or not len(desks):
+        return np.full(len(books), UNASSIGNED_DESK, dtype=object)
+    at = desks.index.get_indexer(books)
+    desk = np.where(at >= 0, desks.to_numpy(dtype=object)[np.maximum(at, 0)], None)
+    desk[pd.isna(desk)] = UNASSIGNED_DESK
+    return desk
 
 
 def _warnings_per_book(positions: pd.DataFrame, exceptions: pd.DataFrame, book_code: np.ndarray,

@@ -13,16 +13,24 @@ def zero_rates(curves: pd.DataFrame, currency: NDArray[np.object_],
 
     ``curves`` has columns currency, tenor_years, zero_rate (clean rows). A curve of one point is
     flat. Where the currency has no curve the rate is NaN and the flag False. The loop runs over
-    currencies (a handful), never over positions.
+    currencies (a handful), never over positions; the curves' and the rows' currencies are each
+    hashed once (no per-currency sub-frames: a night asks for rates a few times on tiny curves).
     """
     rates = np.full(len(currency), np.nan)
     found = np.zeros(len(currency), dtype=bool)
-    for code, points in curves.groupby("currency", sort=False):
-        mask = currency == code
+    if not len(curves) or not len(currency):
+        return rates, found
+    curve_code, names = pd.factorize(curves["currency"].to_numpy(dtype=object))  # a null currency: -1, no curve
+    tenor_years = curves["tenor_years"].to_numpy(dtype=float)
+    zero_rate = curves["zero_rate"].to_numpy(dtype=float)
+    row_code = pd.Index(names, dtype=object).get_indexer(
+        pd.Index(np.asarray(currency, dtype=object), dtype=object, copy=False))
+    for code in range(len(names)):
+        mask = row_code == code
         if not mask.any():
             continue
-        points = points.sort_values("tenor_years")
-        rates[mask] = np.interp(tau_years[mask], points["tenor_years"].to_numpy(float),
-                                points["zero_rate"].to_numpy(float))
+        points = np.flatnonzero(curve_code == code)
+        points = points[np.argsort(tenor_years[points], kind="stable")]
+        rates[mask] = np.interp(tau_years[mask], tenor_years[points], zero_rate[points])
         found |= mask
     return rates, found

@@ -110,17 +110,42 @@ def schedule_frame(as_of: dt.date, prior_as_of: dt.date, run: pd.DataFrame, prio
     its present value on the curve of each currency its underlying's instruments trade in, and those that
     went ex tonight (``went_ex``, no present value).
 
-    ``pairs``: distinct (underlying, currency) of the run date's instruments.
+    ``pairs``: distinct (underlying, currency) of the run date's instruments. The rows are joined to them and
+    ordered by (underlying, currency, ex_date) on integer codes: a night has a few hundred rows at most.
     """
     day = np.datetime64(as_of, "D")
-    ahead = run[run["ex_date"].to_numpy(dtype="datetime64[D]") > day].assign(went_ex=False)
-    gone = going_ex(prior, run, prior_as_of, as_of).assign(went_ex=True)
-    rows = pd.concat([ahead, gone], ignore_index=True).merge(pairs, on="underlying", how="inner")
-    t_years = basis.year_fraction(day, rows["ex_date"].to_numpy(dtype="datetime64[D]")) if len(rows) else np.zeros(0)
-    rate, _ = zero_rates(curves, rows["currency"].to_numpy(dtype=object), t_years)
-    pv = rows["amount"].to_numpy(dtype=float) * np.exp(-rate * t_years)
-    rows["pv"] = np.where(rows["went_ex"].to_numpy(dtype=bool), np.nan, pv)
-    rows.insert(0, "as_of", pd.Timestamp(as_of))
-    rows["ex_date"] = rows["ex_date"].astype("datetime64[s]")
-    columns = ["as_of", "underlying", "currency", "ex_date", "amount", "pv", "went_ex"]
-    return rows[columns].sort_values(["underlying", "currency", "ex_date"]).reset_index(drop=True)
+    ahead = run[run["ex_date"].to_numpy(dtype="datetime64[D]") > day]
+    gone = going_ex(prior, run, prior_as_of, as_of)
+    underlying = np.concatenate([ahead["underlying"].to_numpy(dtype=object), gone["underlying"].to_numpy(dtype=object)])
+    ex_date = np.concatenate([ahead["ex_date"].to_numpy(dtype="datetime64[s]"),
+                              gone["ex_date"].to_numpy(dtype="datetime64[s]")])
+    amount = np.concatenate([ahead["amount"].to_numpy(dtype=float), gone["amount"].to_numpy(dtype=float)])
+    went_ex = np.arange(len(underlying)) >= len(ahead)
+    row, pair = _joined(underlying, pairs["underlying"].to_numpy(dtype=object))
+    currency = pairs["currency"].to_numpy(dtype=object)[pair]
+    underlying, ex_date, amount, went_ex = underlying[row], ex_date[row], amount[row], went_ex[row]
+    order = np.lexsort((ex_date.astype(np.int64), pd.factorize(currency, sort=True)[0],
+                        pd.factorize(underlying, sort=True)[0]))  # the keys are distinct: a full order
+    underlying, currency, ex_date, amount, went_ex = (underlying[order], currency[order], ex_date[order],
+                                                      amount[order], went_ex[order])
+    t_years = basis.year_fraction(day, ex_date.astype("datetime64[D]")) if len(row) else np.zeros(0)
+    rate, _ = zero_rates(curves, currency, t_years)
+    pv = amount * np.exp(-rate * t_years)
+    return pd.DataFrame({"as_of": pd.Timestamp(as_of), "underlying": pd.Series(underlying, dtype=object),
+                         "currency": pd.Series(currency, dtype=pairs["currency"].dtype), "ex_date": ex_date,
+                         "amount": amount, "pv": np.where(went_ex, np.nan, pv), "went_ex": went_ex})
+
+
+def _joined(left: NDArray[np.object_], right: NDArray[np.object_]) -> tuple[NDArray[np.intp], NDArray[np.intp]]:
+    """Every (left row, right row) with equal keys, left rows in order and each one's right rows in order
+    (an inner join)."""
+    codes, _ = pd.factorize(np.concatenate([left, right]), use_na_sentinel=False)
+    left_code, right_code = codes[:len(left)], codes[len(left):]
+    by_code = np.argsort(right_code, kind="stable")
+    sorted_codes = right_code[by_code]
+    lo = np.searchsorted(sorted_codes, left_code, side="left")
+    count = np.searchsorted(sorted_codes, left_code, side="right") - lo
+    first = np.cumsum(count) - count
+    left_rows = np.repeat(np.arange(len(left), dtype=np.intp), count)
+    right_rows = by_code[np.repeat(lo, count) + (np.arange(count.sum(), dtype=np.intp) - np.repeat(first, count))]
+    return left_rows, right_rows.astype(np.intp, copy=False)
