@@ -10,6 +10,7 @@ a price outside its no-arbitrage bounds) live in :mod:`attribution.market` and
 from __future__ import annotations
 
 import dataclasses
+import re
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -46,6 +47,7 @@ class CleanNight:
 Detail = str | Callable[[np.ndarray], object]
 
 
+CURRENCY_CODE = re.compile(r"[A-Z]{3}")  # the form of an ISO 4217 code
 NULL_KEY = "(null) row "  # the ledger key of a row without its key: this prefix and the row's number in its file
 
 
@@ -97,6 +99,11 @@ class _Codes:
             return null
         return null | _blank_text(self.uniques)[np.where(null, 0, self.codes)]
 
+    def per_row(self, per_value: np.ndarray, null: bool) -> np.ndarray:
+        """A value per row from one per distinct value (``null`` where the row is null)."""
+        return np.where(self.codes < 0, null, per_value[np.maximum(self.codes, 0)]) if len(per_value) else \
+            np.full(len(self.codes), null)
+
     def duplicated(self) -> np.ndarray:
         """Non-null values that appear more than once (every copy)."""
         null = self.codes < 0
@@ -136,6 +143,26 @@ class _Rules:
         """Per row: null, or a text of only white space."""
         codes = self._factorised(column)
         return _blank(self.frame[column]) if codes is None else codes.blank()
+
+    def null(self, column: str) -> np.ndarray:
+        """Per row: null (None or NaN)."""
+        codes = self._factorised(column)
+        return self.frame[column].isna().to_numpy() if codes is None else codes.codes < 0
+
+    def isin(self, column: str, values: tuple[str, ...]) -> np.ndarray:
+        """Per row: the value is one of ``values`` (a text column: tested once per distinct value)."""
+        codes = self._factorised(column)
+        if codes is None:
+            return self.frame[column].isin(values).to_numpy()
+        return codes.per_row(pd.Index(codes.uniques, dtype=object).isin(values), False)
+
+    def currency_code(self, column: str) -> np.ndarray:
+        """Per row: three capital letters A-Z (the form of an ISO 4217 code); tested once per distinct value."""
+        codes = self._factorised(column)
+        if codes is None:
+            return self.frame[column].astype(str).str.fullmatch(CURRENCY_CODE.pattern).to_numpy(dtype=bool)
+        return codes.per_row(np.array([type(v) is str and CURRENCY_CODE.fullmatch(v) is not None
+                                       for v in codes.uniques], dtype=bool), False)
 
     def reject(self, bad: np.ndarray | pd.Series, rule: str, detail: Detail = "") -> None:
         """Rows where ``bad`` holds (and no earlier rule fired) leave the clean table with a ledger row.
@@ -211,29 +238,34 @@ def _instruments(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
     frame = raw.tables[file]
     rules = _Rules(log, raw.path(file), frame, "instrument_id")
     kind = frame["kind"].where(frame["kind"].notna(), "option")  # null or absent: an option (version 1)
+    # each row's kind as its place in KINDS (-1: not a kind), so every rule below is an integer mask
+    kind_code = pd.Index(KINDS, dtype=object).get_indexer(pd.Index(kind.to_numpy(dtype=object), dtype=object))
+
+    def of_kinds(kinds: tuple[str, ...]) -> np.ndarray:
+        return np.isin(kind_code, [KINDS.index(k) for k in kinds])
+
     for column in ("instrument_id", "underlying", "option_type", "exercise", "expiry", "currency"):
-        applies = kind.isin(TERM_KINDS.get(column, KINDS)).to_numpy()
+        applies = of_kinds(TERM_KINDS.get(column, KINDS))
         rules.reject(applies & rules.blank(column), f"{column} is null", f"{column} is required (null or blank)")
     rules.unique("instrument_id")
-    rules.reject(~kind.isin(KINDS), "kind must be option, underlying, future or forward", shown(frame, "kind"))
+    rules.reject(kind_code < 0, "kind must be option, underlying, future or forward", shown(frame, "kind"))
     for column, kinds in TERM_KINDS.items():
-        given = ~frame[column].isna().to_numpy()
+        given = ~rules.null(column)
         for name in (k for k in KINDS if k not in kinds):
-            rules.reject(given & (kind == name).to_numpy(), f"{column} must be null for kind {name}",
+            rules.reject(given & (kind_code == KINDS.index(name)), f"{column} must be null for kind {name}",
                          lambda m, column=column, name=name: shown(frame, column)(m) + f"; kind {name} has no {column}")
-    option = (kind == "option").to_numpy()
-    rules.reject(option & ~frame["option_type"].isin(["call", "put"]).to_numpy(), "option_type must be call or put",
+    option = kind_code == KINDS.index("option")
+    rules.reject(option & ~rules.isin("option_type", ("call", "put")), "option_type must be call or put",
                  shown(frame, "option_type"))
-    rules.reject(option & ~frame["exercise"].isin(["european", "american"]).to_numpy(),
+    rules.reject(option & ~rules.isin("exercise", ("european", "american")),
                  "exercise must be european or american", shown(frame, "exercise"))
-    struck = kind.isin(TERM_KINDS["strike"]).to_numpy()
+    struck = of_kinds(TERM_KINDS["strike"])
     strike = frame["strike"].to_numpy(dtype=float)
     rules.reject(struck & ~np.isfinite(strike), "strike is not a finite number", shown(frame, "strike"))
     rules.finite("multiplier")
     rules.reject(struck & (strike <= 0), "strike must be > 0", shown(frame, "strike"))
     rules.positive("multiplier")
-    currency = frame["currency"].astype(str)
-    rules.reject(~currency.str.fullmatch(r"[A-Z]{3}"), "currency must be an ISO 4217 code", shown(frame, "currency"))
+    rules.reject(~rules.currency_code("currency"), "currency must be an ISO 4217 code", shown(frame, "currency"))
     return rules.clean().assign(kind=kind[rules.ok]).set_index("instrument_id")
 
 
@@ -283,10 +315,9 @@ def _cash_flows(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
     rules.required("flow_id", "book", "currency", "kind")
     rules.unique("flow_id")
     rules.finite("amount")
-    rules.reject(~frame["kind"].isin(CASH_KINDS), "cash flow kind unknown",
+    rules.reject(~rules.isin("kind", CASH_KINDS), "cash flow kind unknown",
                  lambda m: shown(frame, "kind")(m) + "; one of " + ", ".join(CASH_KINDS))
-    currency = frame["currency"].astype(str)
-    rules.reject(~currency.str.fullmatch(r"[A-Z]{3}"), "currency must be an ISO 4217 code", shown(frame, "currency"))
+    rules.reject(~rules.currency_code("currency"), "currency must be an ISO 4217 code", shown(frame, "currency"))
     return rules.clean().reset_index(drop=True)
 
 
