@@ -2,7 +2,8 @@
 
 A night's tables depend only on the files of its two dates (and earlier folders for rolled marks),
 never on the archive, so a long local backfill computes them in worker processes, one per core,
-each taking a block of consecutive nights (its dates' shared work reused within the block) while
+each taking a block of consecutive nights (its dates' shared work reused within the block) and
+handing back each night's archive rows as Arrow (:class:`~attribution.engine.ArchiveRows`), while
 this process archives, tests quality and reports every night in date order, as one process would.
 The archived values are the same: every night is computed by the same code on the same files.
 """
@@ -28,8 +29,16 @@ import pyarrow.parquet as pq
 from attribution.config import JobConfig
 from attribution.console import LOG_FORMAT, ProgressLine, summary, warning_to_log
 from attribution.date_cache import DateCache
-from attribution.engine import EXIT_FINDINGS, EXIT_OK, NightOutcome, PreparedNight, open_archive, prepare_night
-from attribution.engine import run_night as run_prepared_night
+from attribution.engine import (
+    EXIT_FINDINGS,
+    EXIT_OK,
+    ArchiveRows,
+    NightOutcome,
+    archive_night,
+    archive_rows,
+    open_archive,
+    prepare_night,
+)
 from attribution.loading import InputFileError, available_dates
 from attribution.pricing import _available_cores
 from attribution.runner import cluster, run_night
@@ -59,7 +68,7 @@ def backfill(config: JobConfig, start: dt.date, end: dt.date, reports_last: int 
     # serve both nights that use it (as run date, then as the next night's prior): one cache per range.
     shared = DateCache()
     processes, block = worker_plan(config, nights)
-    with open_archive(config) as session, cluster(config) as client:
+    with open_archive(config, one_thread=processes > 1) as session, cluster(config) as client:
         prepared = _prepared_elsewhere(config, nights, processes, block)
         with contextlib.closing(prepared):  # the workers are stopped however the range ends
             outcomes = _run_in_order(config, nights, reports_last, prepared, session, client, shared, progress)
@@ -72,7 +81,7 @@ def backfill(config: JobConfig, start: dt.date, end: dt.date, reports_last: int 
     return EXIT_FINDINGS if findings else EXIT_OK
 
 
-def _run_in_order(config: JobConfig, nights: list[dt.date], reports_last: int, prepared: Iterator[PreparedNight],
+def _run_in_order(config: JobConfig, nights: list[dt.date], reports_last: int, prepared: Iterator[ArchiveRows],
                   session: Any, client: Any, shared: DateCache, progress: ProgressLine) -> list[NightOutcome]:
     """Archive (and report) every night in date order; a night no worker computed is computed here."""
     outcomes: list[NightOutcome] = []
@@ -83,7 +92,7 @@ def _run_in_order(config: JobConfig, nights: list[dt.date], reports_last: int, p
         if ready is None:  # one process only, or a worker could not compute this night
             outcomes.append(run_night(night_config, night, session=session, client=client, cache=shared))
         else:
-            outcomes.append(run_prepared_night(night_config, night, session=session, prepare=_given(ready)))
+            outcomes.append(archive_night(night_config, ready, session))
         progress.step(str(night))
     return outcomes
 
@@ -109,13 +118,6 @@ def _positions_rows(config: JobConfig, night: dt.date) -> int | None:
         return int(pq.read_metadata(config.data_root / f"as_of={night.isoformat()}" / "positions.parquet").num_rows)
     except (OSError, pa.ArrowException):
         return None
-
-
-def _given(night: PreparedNight) -> Callable[..., PreparedNight]:
-    """A prepare step that hands over a night computed by a worker."""
-    def prepare(*_: Any, **__: Any) -> PreparedNight:
-        return night
-    return prepare
 
 
 _WORKER_CACHE: DateCache | None = None
@@ -153,22 +155,22 @@ def _start_worker(cores: list[int], counter: Any, log_level: int) -> None:
         os.sched_setaffinity(0, {cores[slot % len(cores)]})
 
 
-def _prepare_block(config: JobConfig, nights: list[dt.date]) -> list[PreparedNight]:
-    """The tables of consecutive ``nights``, up to the first night that fails (which this process leaves
+def _prepare_block(config: JobConfig, nights: list[dt.date]) -> list[ArchiveRows]:
+    """The archive rows of consecutive ``nights``, up to the first night that fails (which this process leaves
     to the backfill's own process to run again, so its error reaches the user as in a one-process run)."""
     cache = _WORKER_CACHE if _WORKER_CACHE is not None else DateCache()
-    done: list[PreparedNight] = []
+    done: list[ArchiveRows] = []
     for night in nights:
         try:
-            done.append(prepare_night(config, night, cache=cache))
+            done.append(archive_rows(prepare_night(config, night, cache=cache)))
         except Exception:  # noqa: BLE001 - re-raised by the backfill's process when it runs this night itself
             break
     return done
 
 
 def _prepared_elsewhere(config: JobConfig, nights: list[dt.date], processes: int,
-                        block_nights: int) -> Iterator[PreparedNight]:
-    """Every night's tables in date order, computed by ``processes`` workers a block at a time (at most one block
+                        block_nights: int) -> Iterator[ArchiveRows]:
+    """Every night's archive rows in date order, computed by ``processes`` workers a block at a time (at most one block
     ahead of the workers is kept). Stops early at a night a worker could not compute, or if the workers are lost.
     With one process it yields nothing: every night is computed by the backfill's own process."""
     if processes <= 1:
@@ -180,7 +182,7 @@ def _prepared_elsewhere(config: JobConfig, nights: list[dt.date], processes: int
     pool = cf.ProcessPoolExecutor(max_workers=processes, mp_context=context, initializer=_start_worker,
                                   initargs=(cores, counter, logging.getLogger().getEffectiveLevel()))
     try:
-        pending: collections.deque[cf.Future[list[PreparedNight]]] = collections.deque()
+        pending: collections.deque[cf.Future[list[ArchiveRows]]] = collections.deque()
         queued = 0
         with _main_not_inherited():  # the workers start on these first submissions
             while queued < len(blocks) and len(pending) < processes + 1:

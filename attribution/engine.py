@@ -34,7 +34,15 @@ from attribution.activity import (
     unknown_trades,
     with_statuses,
 )
-from attribution.archive import archive_lock, connect, dates_with_rows, write_night
+from attribution.archive import (
+    SET_ONE_THREAD,
+    BookHistory,
+    archive_lock,
+    arrow_table,
+    connect,
+    dates_with_rows,
+    write_night,
+)
 from attribution.books import (
     book_frame,
     conservation,
@@ -60,8 +68,9 @@ from attribution.smile_night import check_smiles, night_smiles
 from attribution.timebasis import TimeBasis
 from attribution.vol_time import variance_clock
 
-__all__ = ["EXIT_FAILED", "EXIT_FINDINGS", "EXIT_OK", "EXIT_USAGE", "NightOutcome", "Prepare", "PreparedNight",
-           "Stopwatch", "open_archive", "prepare_night", "resolve_prior", "run_night"]
+__all__ = ["EXIT_FAILED", "EXIT_FINDINGS", "EXIT_OK", "EXIT_USAGE", "ArchiveRows", "NightOutcome", "Prepare",
+           "PreparedNight", "Stopwatch", "archive_night", "archive_rows", "open_archive", "prepare_night",
+           "resolve_prior", "run_night"]
 
 Progress = Callable[[str], None]
 
@@ -299,7 +308,56 @@ class _Counts:
                    position_breaches=int((night.positions["limit_state"] == BREACH).sum()))
 
 
-def _runs_table(night: PreparedNight, config: JobConfig, run_id: str, started: dt.datetime,
+# The tables of a night's rows, in the order they are inserted (the quality test and the run record follow).
+NIGHT_TABLES = ("position_pnl", "book_pnl", "input_exceptions", "dividend_schedule")
+
+
+@dataclass(frozen=True, slots=True)
+class ArchiveRows:
+    """A night as the archive takes it: its tables as Arrow in the archive's column order (a table without a row
+    tonight left out) and the figures of its run record and outcome. :func:`archive_rows` builds it from the
+    night's frames, where they were computed (a backfill's worker process): Arrow pickles as plain buffers, so
+    the process that archives loads it cheaply and does no pandas work of its own."""
+
+    as_of: dt.date
+    prior_as_of: dt.date
+    tables: dict[str, pa.Table]
+    hashes: dict[str, str]
+    positions_in: int
+    rejected_positions: int
+    unaccounted: tuple[str, ...]
+    stages: tuple[tuple[str, float], ...]
+    counts: _Counts
+    books: int
+    total_pnl: float
+    overnight_actual: float
+    explained: float
+    residual: float
+    unpriced_new: int
+    official_breaks: int
+    missing_days: tuple[str, ...]  # business days without a folder between the prior and run dates
+
+
+def archive_rows(night: PreparedNight) -> ArchiveRows:
+    """The night's archive rows and figures (see :class:`ArchiveRows`)."""
+    frames = {"position_pnl": night.positions, "book_pnl": night.books, "input_exceptions": night.exceptions,
+              "dividend_schedule": night.dividend_schedule}
+    pos, exceptions = night.positions, night.exceptions
+    return ArchiveRows(
+        as_of=night.as_of, prior_as_of=night.prior_as_of,
+        tables={name: arrow_table(frame, name) for name, frame in frames.items()
+                if frame is not None and not frame.empty},
+        hashes=night.hashes, positions_in=night.positions_in, rejected_positions=night.rejected_positions,
+        unaccounted=night.unaccounted, stages=night.stages, counts=_Counts.of(night), books=len(night.books),
+        total_pnl=float(pos["pnl_total"].sum()), overnight_actual=float(pos["pnl_actual"].sum()),
+        explained=float(pos["pnl_explained"].sum()), residual=float(pos["pnl_residual"].sum()),
+        unpriced_new=int((pos["status"] == "new_unpriced").sum()),
+        official_breaks=int((exceptions["rule"] == OFFICIAL_BREAK).sum()),
+        missing_days=tuple(exceptions.loc[exceptions["rule"] == MISSING_DAY, "key"].astype(str)),
+    )
+
+
+def _runs_table(night: ArchiveRows, config: JobConfig, run_id: str, started: dt.datetime,
                 exit_code: int, seconds: float, counts: _Counts) -> pa.Table:
     """The night's run record (one row) as Arrow, typed as a pandas frame of it would convert (dates as
     timestamps, text as large strings): a one-row frame cost more to build and convert than the insert itself."""
@@ -322,12 +380,15 @@ def _runs_table(night: PreparedNight, config: JobConfig, run_id: str, started: d
 
 
 class ArchiveSession:
-    """The archive held by this process: locked at once, opened (and created) only when first written."""
+    """The archive held by this process: locked at once, opened (and created) only when first written.
+    ``one_thread``: DuckDB works on one thread (the other cores are busy computing nights)."""
 
-    def __init__(self, config: JobConfig) -> None:
+    def __init__(self, config: JobConfig, one_thread: bool = False) -> None:
         self._path = config.archive_path
+        self._one_thread = one_thread
         self._con: duckdb.DuckDBPyConnection | None = None
         self._dates: set[dt.date] | None = None  # dates with rows in the archive, read once, kept up to date here
+        self._history: BookHistory | None = None  # the quality test's rows, read once, kept up to date by write_night
 
     def holds(self, as_of: dt.date) -> bool:
         """Whether the archive may have rows of ``as_of`` (true unless known not to): its rows must be replaced.
@@ -347,20 +408,30 @@ class ArchiveSession:
     def con(self) -> duckdb.DuckDBPyConnection:
         if self._con is None:
             self._con = connect(self._path)
+            if self._one_thread:
+                self._con.execute(SET_ONE_THREAD)
         return self._con
+
+    @property
+    def history(self) -> BookHistory:
+        """The book rows the quality test reads (nothing else writes the archive while the session holds it)."""
+        if self._history is None:
+            self._history = BookHistory(self.con)
+        return self._history
 
     def close(self) -> None:
         if self._con is not None:
             self._con.close()
             self._con = None
         self._dates = None
+        self._history = None
 
 
 @contextlib.contextmanager
-def open_archive(config: JobConfig) -> Iterator[ArchiveSession]:
-    """Lock the archive for the runs of this process (one run, or a whole backfill)."""
+def open_archive(config: JobConfig, one_thread: bool = False) -> Iterator[ArchiveSession]:
+    """Lock the archive for the runs of this process (one run, or a whole backfill); see :class:`ArchiveSession`."""
     with archive_lock(config.archive_path):
-        session = ArchiveSession(config)
+        session = ArchiveSession(config, one_thread)
         try:
             yield session
         finally:
@@ -385,23 +456,33 @@ def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
             return run_night(config, as_of, prior, progress, own, prepare)
     started, t0 = dt.datetime.now(), time.perf_counter()
     night = (prepare or prepare_night)(config, as_of, prior, progress)
+    return archive_night(config, archive_rows(night), session, progress, started, t0)
+
+
+def archive_night(config: JobConfig, night: ArchiveRows, session: ArchiveSession, progress: Progress | None = None,
+                  started: dt.datetime | None = None, t0: float | None = None) -> NightOutcome:
+    """Archive a night computed already (one transaction), then write its reports if the job asks.
+
+    ``started`` and ``t0`` (``time.perf_counter()``): when the run began, if before this call (the night
+    computed by the caller); the run record's clock starts here otherwise.
+    """
+    if started is None or t0 is None:
+        started, t0 = dt.datetime.now(), time.perf_counter()
+    as_of = night.as_of
     if night.unaccounted:
         raise RuntimeError(f"{as_of}: positions neither archived nor rejected: {', '.join(night.unaccounted)}")
     watch = Stopwatch(progress)
-    counts = _Counts.of(night)
+    counts = night.counts
     book_breaches, position_breaches = counts.book_breaches, counts.position_breaches
-    official_breaks_found = int((night.exceptions["rule"] == OFFICIAL_BREAK).sum())
-    missing_days = tuple(night.exceptions.loc[night.exceptions["rule"] == MISSING_DAY, "key"].astype(str))
-    findings = (night.rejected_positions > 0 or book_breaches > 0 or position_breaches > 0 or official_breaks_found > 0
-                or bool(missing_days))
+    missing_days = night.missing_days
+    findings = (night.rejected_positions > 0 or book_breaches > 0 or position_breaches > 0
+                or night.official_breaks > 0 or bool(missing_days))
     exit_code = EXIT_FINDINGS if findings else EXIT_OK
-    frames: dict[str, pd.DataFrame | pa.Table] = {
-        "position_pnl": night.positions, "book_pnl": night.books, "input_exceptions": night.exceptions,
-        "runs": _runs_table(night, config, str(uuid.uuid4()), started, exit_code, time.perf_counter() - t0, counts)}
-    if night.dividend_schedule is not None:
-        frames["dividend_schedule"] = night.dividend_schedule
+    tables = dict(night.tables)
+    tables["runs"] = _runs_table(night, config, str(uuid.uuid4()), started, exit_code, time.perf_counter() - t0,
+                                 counts)
     con = session.con
-    quality = write_night(con, as_of, frames, replace=session.holds(as_of))
+    quality = write_night(con, as_of, tables, replace=session.holds(as_of), history=session.history)
     session.written(as_of)
     watch.lap("archive")
     index_path = None
@@ -409,16 +490,13 @@ def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
         from attribution.report import render_night
         index_path = render_night(con, as_of, config.reports_dir, config)
         watch.lap("report")
-    pos = night.positions
     return NightOutcome(
         as_of=as_of, prior_as_of=night.prior_as_of, positions_in=night.positions_in,
         archived=counts.archived, rejected=night.rejected_positions, warnings=counts.warnings,
-        books=len(night.books), total_pnl=float(pos["pnl_total"].sum()),
-        overnight_actual=float(pos["pnl_actual"].sum()), explained=float(pos["pnl_explained"].sum()),
-        residual=float(pos["pnl_residual"].sum()), book_breaches=book_breaches,
+        books=night.books, total_pnl=night.total_pnl, overnight_actual=night.overnight_actual,
+        explained=night.explained, residual=night.residual, book_breaches=book_breaches,
         position_breaches=position_breaches, exit_code=exit_code, seconds=time.perf_counter() - t0,
-        stages=night.stages + tuple(watch.stages), index_path=index_path,
-        unpriced_new=int((pos["status"] == "new_unpriced").sum()),
+        stages=night.stages + tuple(watch.stages), index_path=index_path, unpriced_new=night.unpriced_new,
         zones={str(k): int(v) for k, v in quality["zone"].value_counts().items()},
         missing_days=missing_days,
     )

@@ -12,10 +12,14 @@ import duckdb
 import pandas as pd
 import pytest
 
+import attribution.archive as archive_module
 import attribution.backfill as backfill_module
+from attribution.archive import BookHistory, quality_series
 from attribution.backfill import backfill, worker_plan
 from attribution.config import ConfigError, JobConfig, validate
+from attribution.engine import ArchiveRows, open_archive, run_night
 from attribution.loading import InputFileError
+from attribution.schema import TABLES
 from tests.demo_week import demo_week
 
 
@@ -49,6 +53,7 @@ def test_worker_processes_archive_what_one_process_does(desk, tmp_path, monkeypa
 
     def counted(*args, **kwargs):
         for night in computed_elsewhere(*args, **kwargs):
+            assert isinstance(night, ArchiveRows)  # Arrow rows and figures, no pandas frame to unpickle
             from_workers.append(night.as_of)
             yield night
 
@@ -117,3 +122,48 @@ def test_workers_do_not_run_the_callers_main_script_again():
     with backfill_module._main_not_inherited():
         assert getattr(main, "__file__", None) is None and main.__spec__ is None
     assert (main.__dict__.get("__file__"), main.__dict__.get("__spec__")) == before
+
+
+def test_the_sessions_book_history_is_what_the_quality_query_reads(desk, tmp_path):
+    """Each night's quality test reads the book rows held in memory by the backfill's session: for every archived
+    date, those rows (with the date's own rows as tonight's) equal the query's, to the bit and in its order."""
+    config, dates = desk
+    run = dataclasses.replace(config, archive_path=tmp_path / "a.duckdb", backfill_processes=1)
+    backfill(run, dates[1], dates[-1], reports_last=0, echo=lambda _: None)
+    columns = ", ".join(f'"{name}"' for name, _ in TABLES["book_pnl"])
+    with duckdb.connect(str(run.archive_path), read_only=True) as con:
+        history = BookHistory(con)
+        for day in dates[1:]:
+            tonight = con.sql(f"SELECT {columns} FROM book_pnl WHERE as_of = ?", params=[day]).to_arrow_table()
+            pd.testing.assert_frame_equal(history.series(day, tonight), quality_series(con, day), check_exact=True)
+        assert len(quality_series(con, dates[-1])) > len(dates)  # several books, several nights
+
+
+def test_a_night_that_fails_to_archive_leaves_the_sessions_book_history_as_the_archive(desk, tmp_path, monkeypatch):
+    """A night whose write fails (rolled back) adds nothing to the book history the session keeps for the quality
+    test: the later nights' quality rows are those of runs that never tried that night."""
+    config, dates = desk
+    failing, night = dates[3], archive_module._insert
+
+    def insert(con, table, rows):
+        if table == "runs" and pd.Timestamp(rows.column("as_of")[0].as_py()).date() == failing:
+            raise RuntimeError("injected failure inserting the run record")
+        night(con, table, rows)
+
+    kept = dataclasses.replace(config, archive_path=tmp_path / "session.duckdb")
+    with open_archive(kept) as session:
+        for day in dates[1:]:
+            if day == failing:
+                monkeypatch.setattr(archive_module, "_insert", insert)
+                with pytest.raises(RuntimeError, match="injected failure"):
+                    run_night(kept, day, session=session)
+                monkeypatch.setattr(archive_module, "_insert", night)
+            else:
+                run_night(kept, day, session=session)
+    fresh = dataclasses.replace(config, archive_path=tmp_path / "fresh.duckdb")
+    for day in dates[1:]:
+        if day != failing:
+            run_night(fresh, day)  # a session of its own each night: the history read from the archive
+    one, two = _tables(kept.archive_path), _tables(fresh.archive_path)
+    assert failing not in set(one["runs"]["as_of"].dt.date)
+    pd.testing.assert_frame_equal(one["book_quality"], two["book_quality"], check_exact=True)
