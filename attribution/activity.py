@@ -166,9 +166,7 @@ def cash_rows(positions: pd.DataFrame, run: CleanNight, reporting_currency: str,
                 ("no rate for " + flows.loc[no_fx, "currency"].astype(str) + " in "
                  + run.raw.path("fx_rates.parquet")).to_numpy(dtype=object))
     flows = flows[~no_fx].assign(amount_reporting=flows["amount"].to_numpy(float)[~no_fx] * fx[~no_fx])
-    key = positions["book"].astype(str) + "\x00" + positions["trade_id"].astype(str)
-    flow_key = flows["book"].astype(str) + "\x00" + flows["trade_id"].astype(str)
-    row = pd.Index(key).get_indexer(flow_key)
+    row = _trade_rows(positions, flows)
     on_trade = (row >= 0) & flows["trade_id"].notna().to_numpy()
     cash = np.bincount(row[on_trade], weights=flows["amount_reporting"].to_numpy()[on_trade],
                        minlength=len(positions))
@@ -184,6 +182,20 @@ def cash_rows(positions: pd.DataFrame, run: CleanNight, reporting_currency: str,
     if per_book.empty:
         return positions
     return pd.concat([positions, _book_cash_rows(per_book, positions, reporting_currency)], ignore_index=True)
+
+
+def _trade_rows(positions: pd.DataFrame, flows: pd.DataFrame) -> np.ndarray:
+    """The position row of each flow's (book, trade_id), -1 where its book holds no such trade tonight.
+
+    Looked up by trade_id (a night's positions name each trade once), then the book compared: no text key
+    is built for every position."""
+    trade_ids = positions["trade_id"].to_numpy(dtype=object)
+    if not len(trade_ids):
+        return np.full(len(flows), -1, dtype=np.intp)
+    at = pd.Index(trade_ids, dtype=object, copy=False).get_indexer(
+        pd.Index(flows["trade_id"].to_numpy(dtype=object), dtype=object))
+    same_book = positions["book"].to_numpy(dtype=object)[np.maximum(at, 0)] == flows["book"].to_numpy(dtype=object)
+    return np.where((at >= 0) & same_book, at, -1)
 
 
 def _book_cash_rows(per_book: pd.Series, positions: pd.DataFrame, reporting_currency: str) -> pd.DataFrame:

@@ -40,26 +40,50 @@ def position_books(raw0: RawNight, raw1: RawNight, exceptions: pd.DataFrame) -> 
 
     ``exceptions`` carries the ``keyless`` flag of :meth:`ExceptionLog.frame` (a real key may read like
     a keyless row's key text, so the flag, not the text, says which rows have no key); the result does not."""
-    on_positions = exceptions["file"].str.endswith("positions.parquet").to_numpy()
-    keys = exceptions["key"].astype(str)
+    file = exceptions["file"].to_numpy(dtype=object)
+    file_code, files = pd.factorize(file)  # a ledger names a handful of files: each tested once
+    on_positions = _per_file(file_code, [isinstance(f, str) and f.endswith("positions.parquet") for f in files])
+    keys = exceptions["key"].astype(str).to_numpy(dtype=object)
     keyless = exceptions["keyless"].to_numpy(dtype=bool) & on_positions
     exceptions = exceptions.drop(columns="keyless")
     book = np.full(len(exceptions), None, dtype=object)
     position_break = (exceptions["rule"] == POSITION_BREAK).to_numpy()  # keyed by trade_id: shown with its book
     with_key = (on_positions & ~keyless) | position_break
-    wanted = keys[with_key].unique()  # only the few trades the ledger names, not every position
-    by_trade = pd.concat([r.tables["positions.parquet"].loc[lambda f: f["trade_id"].isin(wanted), ["trade_id", "book"]]
-                          for r in (raw1, raw0)])
-    by_trade = by_trade.drop_duplicates("trade_id").set_index("trade_id")["book"]
-    book[with_key] = by_trade.reindex(keys[with_key]).to_numpy(dtype=object)
+    book[with_key] = _books_of_trades(keys[with_key], (raw1, raw0))  # only the few trades the ledger names
     for raw in (raw0, raw1):
-        mine = keyless & (exceptions["file"] == raw.path("positions.parquet")).to_numpy()
+        mine = keyless & _per_file(file_code, [f == raw.path("positions.parquet") for f in files])
         if mine.any():  # the key names the row's number in the file, which is the frame's index label
-            rows = keys[mine].str.slice(len(NULL_KEY)).astype(int).to_numpy()
+            rows = pd.Series(keys[mine], dtype=object).str.slice(len(NULL_KEY)).astype(int).to_numpy()
             book[mine] = raw.tables["positions.parquet"]["book"].loc[rows].to_numpy(dtype=object)
-    book[on_positions] = pd.Series(book[on_positions], dtype=object).fillna(NO_BOOK).to_numpy()
-    position = np.where(keyless, exceptions["file"] + "#" + keys, keys)
+    named = book[on_positions]
+    named[pd.isna(named)] = NO_BOOK
+    book[on_positions] = named
+    position = keys.copy()
+    position[keyless] = file[keyless] + "#" + keys[keyless]
     return exceptions.assign(book=book, position=np.where(on_positions, position, None))
+
+
+def _per_file(file_code: np.ndarray, per_file: list[bool]) -> np.ndarray:
+    """Per ledger row, the flag of its file (codes of ``pd.factorize``; -1, no file: False)."""
+    flags = np.append(np.asarray(per_file, dtype=bool), False)
+    return flags[file_code]
+
+
+def _books_of_trades(trade_ids: np.ndarray, raws: tuple[RawNight, ...]) -> np.ndarray:
+    """The book of each trade_id: its first row in the first of ``raws`` that has one (NaN if none does)."""
+    wanted = pd.unique(trade_ids)
+    book = np.full(len(wanted), np.nan, dtype=object)
+    missing = np.ones(len(wanted), dtype=bool)
+    for raw in raws:
+        table = raw.tables["positions.parquet"]
+        at = pd.Index(wanted, dtype=object).get_indexer(pd.Index(table["trade_id"].to_numpy(dtype=object),
+                                                                 dtype=object, copy=False))
+        rows = np.flatnonzero(at >= 0)
+        found, first = np.unique(at[rows], return_index=True)  # a trade's first row in the file
+        new = missing[found]
+        book[found[new]] = table["book"].to_numpy(dtype=object)[rows[first[new]]]
+        missing[found[new]] = False
+    return book[pd.Index(wanted, dtype=object).get_indexer(trade_ids)]
 
 
 def rejected_positions(ledger: pd.DataFrame) -> pd.DataFrame:

@@ -64,7 +64,7 @@ def _reject_by_reason(log: ExceptionLog, file: str, trade_ids: NDArray[np.object
                       rule: str, reason: NDArray[np.object_]) -> None:
     """Like ``_reject``, but a position in an option already expired gets its own rule."""
     lapsed = np.zeros(len(bad), dtype=bool)  # the texts of the rejected rows only
-    lapsed[bad] = pd.Series(reason[bad], dtype=object).astype(str).str.startswith("the option expired").to_numpy()
+    lapsed[bad] = [str(text).startswith("the option expired") for text in reason[bad]]
     _reject(log, file, trade_ids, lapsed, "active position on an expired option", reason)
     _reject(log, file, trade_ids, bad & ~lapsed, rule, reason)
 
@@ -264,9 +264,9 @@ def _apply_fx(legs: Legs, prior: CleanNight, run: CleanNight, market1: Instrumen
     trade like a missing run-date rate.
     """
     currency = market1.currency[legs.inst1]
-    fx_rate = run.fx.reindex(currency).to_numpy(dtype=float)
+    fx_rate = rates_of(run.fx, currency)
     held0 = legs.row0 >= 0
-    fx_rate_prior = np.where(held0, prior.fx.reindex(currency).to_numpy(dtype=float), np.nan)
+    fx_rate_prior = np.where(held0, rates_of(prior.fx, currency), np.nan)
     missing = np.isnan(fx_rate)
     _reject_no_fx(log, prior, run, legs, currency, missing, run)
     missing_prior = ~missing & held0 & np.isnan(fx_rate_prior)
@@ -274,6 +274,14 @@ def _apply_fx(legs: Legs, prior: CleanNight, run: CleanNight, market1: Instrumen
     legs = Legs(*(getattr(legs, f) for f in Legs.__dataclass_fields__ if f not in ("fx_rate", "fx_rate_prior")),
                 fx_rate=fx_rate, fx_rate_prior=fx_rate_prior)
     return select(legs, ~(missing | missing_prior))
+
+
+def rates_of(fx: pd.Series, currency: NDArray[np.object_]) -> NDArray[np.float64]:
+    """The rate of each currency (``fx``: rate per currency), NaN where it has none; the few currencies are
+    hashed once and each row looked up by its code (no index of a text per trade is built)."""
+    code, names = pd.factorize(np.asarray(currency, dtype=object))
+    rate = fx.reindex(pd.Index(names, dtype=object)).to_numpy(dtype=float)
+    return np.append(rate, np.nan)[code]  # code -1 (a null currency) takes the NaN at the end
 
 
 def _reject_no_fx(log: ExceptionLog, prior: CleanNight, run: CleanNight, legs: Legs, currency: NDArray[np.object_],

@@ -9,6 +9,7 @@ fault get exception rows of their own here.
 from __future__ import annotations
 
 import datetime as dt
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -127,9 +128,18 @@ def instrument_terms(own: CleanNight, other: CleanNight | None) -> pd.DataFrame:
     return terms
 
 
-def _first_reason(reason: NDArray[np.object_], bad: NDArray[np.bool_], text: str | NDArray[np.object_]) -> None:
+def _first_reason(reason: NDArray[np.object_], bad: NDArray[np.bool_],
+                  text: str | Callable[[NDArray[np.bool_]], NDArray[np.object_]]) -> None:
+    """``text`` as the reason of the ``bad`` rows without one yet; a function of that mask gives one text per
+    such row (built for those rows only)."""
     fill = bad & (reason == "")
-    reason[fill] = text[fill] if isinstance(text, np.ndarray) else text
+    if fill.any():
+        reason[fill] = text(fill) if callable(text) else text
+
+
+def _texts(values: NDArray[np.object_], rows: NDArray[np.bool_]) -> NDArray[np.object_]:
+    """The masked values as text."""
+    return pd.Series(values[rows], dtype=object).astype(str).to_numpy()
 
 
 AMERICAN_SCHEMES = {"standard": STANDARD, "precise": PRECISE, "fast": FAST}
@@ -148,7 +158,8 @@ def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, check
     underlying = terms["underlying"].to_numpy(dtype=object)
     currency = terms["currency"].to_numpy(dtype=object)
     option_type = terms["option_type"].to_numpy(dtype=object)
-    kind = kind_codes(terms["kind"].to_numpy(dtype=object))
+    kind_index, kind_names = pd.factorize(terms["kind"].to_numpy(dtype=object), use_na_sentinel=False)
+    kind = kind_codes(np.asarray(kind_names, dtype=object))[kind_index]  # each name coded once
     cp = np.where(option_type == "call", 1.0, -1.0)
     american = (terms["exercise"].to_numpy(dtype=object) == "american") & (kind == OPTION)
     scheme = AMERICAN_SCHEMES[american_precision]
@@ -168,11 +179,11 @@ def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, check
     spot = take(night.underlyings["spot"].to_numpy(float), u_idx, np.nan)
     div_yield = take(night.underlyings["dividend_yield"].to_numpy(float), u_idx, np.nan)
     # An underlying whose row was rejected has its own exception row; only an absent one gets a row here.
-    unknown_u = ~spot_known & listed & ~pd.Index(underlying).isin(
+    unknown_u = ~spot_known & listed & ~pd.Index(underlying, dtype=object, copy=False).isin(
         night.raw.tables["underlying_marks.parquet"]["underlying"])
     log.add(night.raw.path("instruments.parquet"), ids[unknown_u].to_numpy(), "unknown underlying",
             pd.Series(underlying[unknown_u], dtype=object).astype(str).radd("no row in underlying_marks for "))
-    _first_reason(reason, ~spot_known, "underlying " + pd.Series(underlying, dtype=object).astype(str).to_numpy()
+    _first_reason(reason, ~spot_known, lambda rows: "underlying " + _texts(underlying, rows)
                   + f" has no usable mark on {as_of}")
 
     rate, has_curve = zero_rates(night.curves, currency, tau)
@@ -181,8 +192,8 @@ def build_market(night: CleanNight, terms: pd.DataFrame, basis: TimeBasis, check
     missing_ccy = sorted(set(currency[~has_curve].tolist()))
     log.add(night.raw.path("rate_curves.parquet"), missing_ccy, "no curve for currency",
             "an instrument in this currency is listed but the file has no usable curve for it")
-    _first_reason(reason, ~has_curve, "no rate curve for currency " +
-                  pd.Series(currency, dtype=object).astype(str).to_numpy() + f" on {as_of}")
+    _first_reason(reason, ~has_curve, lambda rows: "no rate curve for currency " + _texts(currency, rows)
+                  + f" on {as_of}")
 
     option = kind == OPTION
     m_idx = np.where(option, night.marks.index.get_indexer(ids), -1)
@@ -212,10 +223,9 @@ def _dividend_pv(night: CleanNight, underlying: NDArray[np.object_], currency: N
                  log: ExceptionLog) -> FloatArray:
     """Present value of each instrument's dividends; an unusable schedule or one worth the spot is a reason."""
     as_of = night.raw.as_of
-    names = pd.Series(underlying, dtype=object).astype(str).to_numpy()
-    broken = pd.Index(underlying).isin(list(night.broken_schedules))
-    _first_reason(reason, broken, "the dividend schedule of " + names + f" has a rejected row in dividends.parquet "
-                  f"of {as_of} (see that row)")
+    broken = pd.Index(underlying, dtype=object, copy=False).isin(list(night.broken_schedules))
+    _first_reason(reason, broken, lambda rows: "the dividend schedule of " + _texts(underlying, rows)
+                  + f" has a rejected row in dividends.parquet of {as_of} (see that row)")
     div_pv = schedule_pv(as_of, underlying, currency, expiry, night.dividends, night.curves, basis)
     with np.errstate(invalid="ignore"):
         worthless = (reason == "") & (div_pv > 0) & ~(spot - div_pv > 0)
