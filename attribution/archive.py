@@ -21,7 +21,7 @@ import pandas as pd
 import pyarrow as pa
 
 from attribution.errors import JobFailure
-from attribution.quality_table import quality_frame
+from attribution.quality_table import quality_columns
 from attribution.schema import TABLES
 
 # DuckDB folds its write-ahead log into the file once the log passes this size (its default is 16 MiB). With the
@@ -193,6 +193,23 @@ def _insert(con: duckdb.DuckDBPyConnection, table: str, rows: pa.Table) -> None:
         con.from_arrow(rows).insert_into(table)
 
 
+def column_rows(columns: dict[str, np.ndarray], table: str) -> pa.Table:
+    """Arrow rows of ``table`` from its columns as arrays (NaN floats as NULL, None or NaN text as NULL): the
+    values :func:`arrow_table` gives for a frame of them, without building the frame."""
+    arrays: list[pa.Array] = []
+    for name, sql_type in TABLES[table]:
+        values = columns[name]
+        if sql_type == "DOUBLE":
+            arrays.append(_floats(np.asarray(values, dtype=np.float64)))
+        elif sql_type == "DATE":
+            arrays.append(pa.array(values, pa.date32()))
+        elif sql_type == "VARCHAR":
+            arrays.append(pa.array(values, pa.string(), from_pandas=True))
+        else:
+            arrays.append(pa.array(values))
+    return pa.Table.from_arrays(arrays, names=[name for name, _ in TABLES[table]])
+
+
 def quality_series(con: duckdb.DuckDBPyConnection, up_to: dt.date) -> pd.DataFrame:
     """HPL and RTPL per book and archived night up to a date (nights with a position held over).
 
@@ -250,7 +267,8 @@ class BookHistory:
         codes, names = pd.factorize(books, sort=True)
         codes = np.where(codes < 0, len(names), codes)  # NULL books last, as ORDER BY puts them
         order = np.lexsort((dates, codes))
-        return pd.DataFrame({"as_of": dates[order].astype("datetime64[us]"), "book": books[order],
+        book = pd.Series(books[order], dtype=object)  # objects as given: no text type inferred (it costs here)
+        return pd.DataFrame({"as_of": dates[order].astype("datetime64[us]"), "book": book,
                              "hpl": hpl[order], "rtpl": rtpl[order]})
 
     def record(self, as_of: dt.date, tonight: pa.Table | None) -> None:
@@ -268,14 +286,14 @@ def dates_with_rows(con: duckdb.DuckDBPyConnection) -> set[dt.date]:
 
 
 def write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[str, pa.Table], replace: bool = True,
-                history: BookHistory | None = None) -> pd.DataFrame:
+                history: BookHistory | None = None) -> dict[str, np.ndarray]:
     """Replace every table's rows of ``as_of`` with ``tables`` (Arrow, see :func:`arrow_table`; a table left out
     has no row tonight) and the night's quality test, atomically.
 
     ``replace=False`` skips the deletes: only for a date known to have no row in any table (a backfill's
     session knows its archive's dates, as it holds the archive's lock). ``history``: the session's
     :class:`BookHistory`, read in place of the quality query and updated once the night is committed.
-    Returns the ``book_quality`` rows written.
+    Returns the ``book_quality`` rows written, as columns (see :func:`~attribution.quality_table.quality_columns`).
     """
     con.execute("BEGIN TRANSACTION")
     try:
@@ -285,9 +303,8 @@ def write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[str
             if table in tables:
                 _insert(con, table, tables[table])
         series = quality_series(con, as_of) if history is None else history.series(as_of, tables.get("book_pnl"))
-        quality = quality_frame(series, as_of)
-        if not quality.empty:
-            _insert(con, "book_quality", arrow_table(quality, "book_quality"))
+        quality = quality_columns(series, as_of)
+        _insert(con, "book_quality", column_rows(quality, "book_quality"))
         _insert(con, "runs", tables["runs"])
         con.execute("COMMIT")
     except BaseException:

@@ -6,6 +6,7 @@
 
 from __future__ import annotations
 
+import collections
 import contextlib
 import datetime as dt
 import json
@@ -497,6 +498,6 @@ def archive_night(config: JobConfig, night: ArchiveRows, session: ArchiveSession
         explained=night.explained, residual=night.residual, book_breaches=book_breaches,
         position_breaches=position_breaches, exit_code=exit_code, seconds=time.perf_counter() - t0,
         stages=night.stages + tuple(watch.stages), index_path=index_path, unpriced_new=night.unpriced_new,
-        zones={str(k): int(v) for k, v in quality["zone"].value_counts().items()},
+        zones=dict(collections.Counter(str(z) for z in quality["zone"] if isinstance(z, str))),
         missing_days=missing_days,
     )

@@ -67,6 +67,13 @@ def quality_frame(series: pd.DataFrame, as_of_date: dt.date | str | pd.Timestamp
     :func:`nightly_series`). Only nights <= ``as_of_date`` count, the latest ``window`` per book;
     a book with no night up to that date has no row. ``as_of`` of every row is ``as_of_date``.
     """
+    return pd.DataFrame(quality_columns(series, as_of_date, window, recent))
+
+
+def quality_columns(series: pd.DataFrame, as_of_date: dt.date | str | pd.Timestamp,
+                    window: int = 250, recent: int = 60) -> dict[str, np.ndarray]:
+    """The columns of :func:`quality_frame` as arrays, by name in the order of ``schema.BOOK_QUALITY`` (the
+    archive takes them as they are: no frame between)."""
     dates, books_all, hpl_all, rtpl_all = _series_arrays(series)
     # Books in sorted order (as pandas' sorted factorize), each book's nights oldest first.
     names, codes_all = np.unique(books_all, return_inverse=True) if len(books_all) else (
@@ -92,13 +99,13 @@ def quality_frame(series: pd.DataFrame, as_of_date: dt.date | str | pd.Timestamp
     rtpl[rows, window - 1 - from_end] = rtpl_all[used]
     res = quality_test(hpl, rtpl, window=window, recent=recent)
     columns = {
-        "as_of": [as_of.date()] * len(books), "book": np.asarray(books, dtype=object),
+        "as_of": np.array([as_of.date()] * len(books), dtype=object), "book": np.asarray(books, dtype=object),
         "nights": res.nights, "provisional": res.provisional, "spearman": res.spearman, "ks": res.ks,
         "zone": res.zone, "mean_ratio": res.mean_ratio, "variance_ratio": res.variance_ratio,
         "spearman_60": res.spearman_60, "ks_60": res.ks_60, "zone_60": res.zone_60,
         "early_warning": res.early_warning,
     }
-    return pd.DataFrame({name: columns[name] for name, _ in BOOK_QUALITY})
+    return {name: columns[name] for name, _ in BOOK_QUALITY}
 
 
 def nightly_series(position_pnl: pd.DataFrame) -> pd.DataFrame:

@@ -16,6 +16,7 @@ import shutil
 from pathlib import Path
 
 import duckdb
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -27,6 +28,7 @@ import attribution.archive as archive_module
 import attribution.engine as engine_module
 from attribution.cli import main
 from attribution.config import JobConfig
+from attribution.quality_table import quality_columns
 from attribution.schema import TABLES
 from tests.archive_checks import assert_same_rows, checksums, night_rows
 from tests.contract_files import put_rows
@@ -81,6 +83,22 @@ def copy_of(box: Path, into: Path) -> Path:
     """A private copy of an archive folder."""
     shutil.copytree(box, into, ignore=shutil.ignore_patterns("*.lock"))
     return into
+
+
+def test_quality_rows_go_to_arrow_as_a_frame_of_them_would():
+    """The book_quality rows the archive takes straight from the quality test's columns hold the values, NULLs and
+    texts that converting a frame of those columns gives: a one-night book (no statistic: NULL), a missing zone."""
+    series = pd.DataFrame({"as_of": pd.to_datetime(["2026-01-05", "2026-01-05", "2026-01-06", "2026-01-07"]),
+                           "book": ["B", "A", "A", "A"], "hpl": [1.0, 2.0, -1.5, 0.25],
+                           "rtpl": [0.9, 2.1, -1.4, 0.5]})
+    columns = quality_columns(series, dt.date(2026, 1, 7))
+    columns["zone_60"] = np.array([None, "green"], dtype=object)
+    direct = archive_module.column_rows(columns, "book_quality")
+    framed = archive_module.arrow_table(pd.DataFrame(columns), "book_quality")
+    assert direct.column_names == framed.column_names == [name for name, _ in TABLES["book_quality"]]
+    for name in direct.column_names:
+        assert direct.column(name).to_pylist() == framed.column(name).to_pylist(), name
+    assert direct.column("spearman").to_pylist()[1] is None and direct.column("zone_60").null_count == 1
 
 
 def test_rerun_replaces_the_date_in_every_table(archived, desk, tmp_path):
@@ -146,7 +164,7 @@ def test_failed_write_leaves_the_archive_exactly_as_it_was(archived, desk, tmp_p
     box = copy_of(archived, tmp_path / "box")
     before, rows_before = read_archive(box / "a.duckdb", RUN)
     if where == "quality step":
-        monkeypatch.setattr(archive_module, "quality_frame", _fail_quality)
+        monkeypatch.setattr(archive_module, "quality_columns", _fail_quality)
     else:
         monkeypatch.setattr(archive_module, "_insert", _fail_runs_insert(archive_module._insert))
     capsys.readouterr()
