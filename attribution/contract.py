@@ -370,24 +370,31 @@ def _underlyings(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.
 
 def _curves(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.DataFrame:
     file = "rate_curves.parquet"
-    frame = raw.tables[file].copy()
+    source = raw.tables[file]
+    currency = source["currency"].to_numpy(dtype=object)
+    tenor_years = source["tenor_years"].to_numpy(dtype=float)
     # -0.0 + 0.0 is 0.0: tenors 0.0 and -0.0 are one point, so the duplicate rule sees them.
-    frame["point"] = frame["currency"].astype(str) + " @ " + (frame["tenor_years"] + 0.0).astype(str) + "y"
+    point = np.full(len(source), None, dtype=object)  # null when the currency or the tenor is
+    named = ~pd.isna(currency) & ~np.isnan(tenor_years)
+    point[named] = [f"{c} @ {t + 0.0}y" for c, t in zip(currency[named], tenor_years[named], strict=True)]
+    frame = source.assign(point=pd.Series(point, index=source.index, dtype=object))
     rules = _Rules(log, raw.path(file), frame, "point")
     rules.required("currency")
     rules.finite("tenor_years", "zero_rate")
-    rules.reject(frame["tenor_years"].to_numpy(dtype=float) < 0, "tenor_years must be >= 0",
-                 shown(frame, "tenor_years"))
+    rules.reject(tenor_years < 0, "tenor_years must be >= 0", shown(frame, "tenor_years"))
     rules.reject(np.abs(frame["zero_rate"].to_numpy(dtype=float)) > checks.max_abs_rate, "zero_rate is absurd",
                  lambda m: shown(frame, "zero_rate")(m)
                  + f" is beyond +-{checks.max_abs_rate:g}; rates are decimals (0.04 for 4 %)")
     rules.unique("point")
     # A curve missing one of its points would be interpolated across the gap: the whole curve is left out.
-    broken = frame["currency"].isin(frame.loc[~rules.ok, "currency"].dropna()).to_numpy()
+    broken = pd.Index(currency, dtype=object).isin(pd.Index(currency[~rules.ok], dtype=object).dropna())
     rules.reject(broken, "curve has a rejected point",
-                 lambda m: "another point of the " + frame["currency"].to_numpy(dtype=object)[m].astype(str)
+                 lambda m: "another point of the " + currency[m].astype(str)
                  + " curve breaks a rule, so the whole curve is left out")
-    return rules.clean().drop(columns="point").sort_values(["currency", "tenor_years"]).reset_index(drop=True)
+    # ordered by currency then tenor: the clean points are distinct (currency, tenor) pairs, so this is a full order
+    rows = np.flatnonzero(rules.ok)
+    order = np.lexsort((tenor_years[rows], pd.factorize(currency[rows], sort=True)[0]))
+    return source.iloc[rows[order]].reset_index(drop=True)
 
 
 def _fx(raw: RawNight, log: ExceptionLog, reporting_currency: str) -> pd.Series:
@@ -421,11 +428,23 @@ def _desks(raw: RawNight, log: ExceptionLog) -> pd.Series:
     return rules.clean().set_index("book")["desk"].astype(object)
 
 
+FOUR_DIGIT_YEARS = (np.datetime64("0001-01-01", "D"), np.datetime64("9999-12-31", "D"))
+
+
 def _dated_key(frame: pd.DataFrame) -> pd.Series:
-    """``UNDERLYING @ YYYY-MM-DD``: the ledger key of a dividend or corporate-action row."""
-    day = frame["ex_date"].astype("datetime64[s]").dt.strftime("%Y-%m-%d").fillna("(null)") if len(frame) else \
-        pd.Series(dtype=object)
-    return frame["underlying"].astype(str) + " @ " + day
+    """``UNDERLYING @ YYYY-MM-DD``: the ledger key of a dividend or corporate-action row (null without an
+    underlying, ``(null)`` for a null ex_date)."""
+    day = frame["ex_date"].to_numpy(dtype="datetime64[D]")
+    known = ~np.isnat(day)
+    if not ((day[known] >= FOUR_DIGIT_YEARS[0]) & (day[known] <= FOUR_DIGIT_YEARS[1])).all():  # pandas' formatting
+        text = frame["ex_date"].astype("datetime64[s]").dt.strftime("%Y-%m-%d").fillna("(null)")
+        return frame["underlying"].astype(str) + " @ " + text
+    day_text = np.where(known, np.datetime_as_string(day, unit="D").astype(object), "(null)")
+    underlying = frame["underlying"].to_numpy(dtype=object)
+    named = ~pd.isna(underlying)
+    key = np.full(len(frame), None, dtype=object)
+    key[named] = [f"{u} @ {d}" for u, d in zip(underlying[named], day_text[named], strict=True)]
+    return pd.Series(key, index=frame.index, dtype=object)
 
 
 def _dividends(raw: RawNight, log: ExceptionLog) -> tuple[pd.DataFrame, frozenset[str]]:
