@@ -26,14 +26,18 @@ from attribution.exceptions_log import INFO, ExceptionLog
 RESTATED_RULE = "split restated the prior state"
 
 
+def _in_night(prior: CleanNight, run: CleanNight, night: CleanNight) -> np.ndarray:
+    """Per clean action of ``night`` (either date): ``prior_as_of < ex_date <= as_of``."""
+    day = night.corporate_actions["ex_date"].to_numpy(dtype="datetime64[D]")
+    return (day > np.datetime64(prior.raw.as_of, "D")) & (day <= np.datetime64(run.raw.as_of, "D"))
+
+
 def actions_tonight(prior: CleanNight, run: CleanNight) -> pd.DataFrame:
     """Clean actions of either date with ``prior_as_of < ex_date <= as_of`` (one per underlying and ex_date)."""
-    lo, hi = np.datetime64(prior.raw.as_of, "D"), np.datetime64(run.raw.as_of, "D")
     parts = []
     for night in (run, prior):  # the run date's row wins where both list the same action
         frame = night.corporate_actions
-        day = frame["ex_date"].to_numpy(dtype="datetime64[D]")
-        parts.append(frame[(day > lo) & (day <= hi)].assign(file=night.raw.path("corporate_actions.parquet")))
+        parts.append(frame[_in_night(prior, run, night)].assign(file=night.raw.path("corporate_actions.parquet")))
     both = pd.concat(parts, ignore_index=True)
     return both.drop_duplicates(["underlying", "ex_date"], keep="first").reset_index(drop=True)
 
@@ -44,9 +48,9 @@ def restate_prior(prior: CleanNight, run: CleanNight, log: ExceptionLog) -> tupl
     Two actions of one underlying in one night (a long weekend) compound. Without actions the
     prior date is returned as it is.
     """
-    tonight = actions_tonight(prior, run)
-    if tonight.empty:
+    if not any(_in_night(prior, run, night).any() for night in (run, prior)):  # most nights: nothing to restate
         return prior, pd.Series(dtype=float)
+    tonight = actions_tonight(prior, run)
     ratio = tonight.groupby("underlying", sort=True)["ratio"].prod()
 
     instruments = prior.instruments.copy()

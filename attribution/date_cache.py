@@ -38,11 +38,11 @@ import pandas as pd
 
 from attribution.config import CheckSettings
 from attribution.contract import CleanNight, clean_holdings
-from attribution.exceptions_log import ExceptionLog
+from attribution.exceptions_log import ExceptionLog, LedgerRows
 from attribution.loading import RawNight, available_dates, folder_stamp, read_night
 from attribution.market import InstrumentMarket
 
-Parts = tuple[pd.DataFrame, ...]
+Parts = tuple[LedgerRows, ...]
 
 
 @dataclass(slots=True)
