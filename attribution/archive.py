@@ -21,7 +21,7 @@ import pandas as pd
 import pyarrow as pa
 
 from attribution.errors import JobFailure
-from attribution.quality_table import quality_columns
+from attribution.quality_table import SeriesArrays, quality_columns
 from attribution.schema import TABLES
 
 # DuckDB folds its write-ahead log into the file once the log passes this size (its default is 16 MiB). With the
@@ -244,39 +244,38 @@ class BookHistory:
 
     def __init__(self, con: duckdb.DuckDBPyConnection) -> None:
         found = con.execute("SELECT as_of, book, pnl_actual, pnl_explained FROM book_pnl WHERE as_of IS NOT NULL "
-                            "AND coalesce(carried, 0) + coalesce(closed, 0) + coalesce(expired, 0) > 0").fetchall()
-        self._nights: dict[dt.date, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
-        by_date: dict[dt.date, list[tuple[object, float, float]]] = {}
-        for as_of, book, hpl, rtpl in found:
-            by_date.setdefault(as_of, []).append((book, np.nan if hpl is None else hpl,
-                                                  np.nan if rtpl is None else rtpl))
-        for as_of, rows in by_date.items():
-            books, hpl, rtpl = zip(*rows, strict=True)
-            self._nights[as_of] = (np.array(books, dtype=object), np.array(hpl, dtype=np.float64),
-                                   np.array(rtpl, dtype=np.float64))
+                            "AND coalesce(carried, 0) + coalesce(closed, 0) + coalesce(expired, 0) > 0").fetchnumpy()
+        # Every archived row, in no particular order: dates (days), books (objects, NULL as None), hpl, rtpl.
+        self._rows = (np.asarray(found["as_of"]).astype("datetime64[D]"),
+                      np.ma.filled(np.ma.asarray(found["book"], dtype=object), None),
+                      np.ma.filled(np.ma.asarray(found["pnl_actual"], dtype=np.float64), np.nan),
+                      np.ma.filled(np.ma.asarray(found["pnl_explained"], dtype=np.float64), np.nan))
 
-    def series(self, up_to: dt.date, tonight: pa.Table | None) -> pd.DataFrame:
+    @staticmethod
+    def _night(as_of: dt.date, tonight: pa.Table) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        books, hpl, rtpl = _held_book_rows(tonight)
+        return np.full(len(books), np.datetime64(as_of, "D")), books, hpl, rtpl
+
+    def series(self, up_to: dt.date, tonight: pa.Table | None) -> SeriesArrays:
         """What :func:`quality_series` returns once ``tonight``'s ``book_pnl`` rows replace those of ``up_to``."""
-        nights = {d: rows for d, rows in self._nights.items() if d < up_to}
+        before = self._rows[0] < np.datetime64(up_to, "D")
+        parts = [tuple(column[before] for column in self._rows)]
         if tonight is not None:
-            nights[up_to] = _held_book_rows(tonight)
-        dates = np.concatenate([np.full(len(rows[0]), np.datetime64(d, "D")) for d, rows in nights.items()]
-                               or [np.empty(0, dtype="datetime64[D]")])
-        books, hpl, rtpl = (np.concatenate([rows[k] for rows in nights.values()] or
-                                           [np.empty(0, dtype=object if k == 0 else np.float64)]) for k in range(3))
+            parts.append(self._night(up_to, tonight))
+        dates, books, hpl, rtpl = (np.concatenate([part[k] for part in parts]) for k in range(4))
         codes, names = pd.factorize(books, sort=True)
         codes = np.where(codes < 0, len(names), codes)  # NULL books last, as ORDER BY puts them
         order = np.lexsort((dates, codes))
-        book = pd.Series(books[order], dtype=object)  # objects as given: no text type inferred (it costs here)
-        return pd.DataFrame({"as_of": dates[order].astype("datetime64[us]"), "book": book,
-                             "hpl": hpl[order], "rtpl": rtpl[order]})
+        return SeriesArrays(dates[order].astype("datetime64[us]"), books[order], hpl[order], rtpl[order])
 
     def record(self, as_of: dt.date, tonight: pa.Table | None) -> None:
         """Note ``as_of``'s book rows just committed (None: none)."""
-        if tonight is None:
-            self._nights.pop(as_of, None)
-        else:
-            self._nights[as_of] = _held_book_rows(tonight)
+        kept = self._rows[0] != np.datetime64(as_of, "D")
+        parts = [tuple(column[kept] for column in self._rows)]
+        if tonight is not None:
+            parts.append(self._night(as_of, tonight))
+        dates, books, hpl, rtpl = (np.concatenate([part[k] for part in parts]) for k in range(4))
+        self._rows = (dates, books, hpl, rtpl)
 
 
 def dates_with_rows(con: duckdb.DuckDBPyConnection) -> set[dt.date]:

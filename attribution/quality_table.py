@@ -8,6 +8,7 @@ The statistics are :mod:`attribution.quality` (pure numpy); this module is their
 from __future__ import annotations
 
 import datetime as dt
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -39,12 +40,33 @@ def _checked_series(series: pd.DataFrame) -> pd.DataFrame:
     return frame
 
 
-def _series_arrays(series: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+@dataclass(frozen=True, slots=True)
+class SeriesArrays:
+    """A quality series as its columns: ``as_of`` (datetime64), ``book`` (objects), ``hpl`` and ``rtpl`` (float64);
+    the archive's session hands its history over so (a frame of them costs more than the test itself)."""
+
+    as_of: np.ndarray
+    book: np.ndarray
+    hpl: np.ndarray
+    rtpl: np.ndarray
+
+    def frame(self) -> pd.DataFrame:
+        """The series as a frame (the books as objects, as given)."""
+        return pd.DataFrame({"as_of": self.as_of, "book": pd.Series(self.book, dtype=object), "hpl": self.hpl,
+                             "rtpl": self.rtpl})
+
+
+def _series_arrays(series: pd.DataFrame | SeriesArrays) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """``as_of`` (datetime64), ``book`` (objects), ``hpl`` and ``rtpl`` of a series that keeps every rule of
     :func:`_checked_series`; a series that breaks one is handed to it, so the error names the same row and rule.
 
     The checks are numpy over whole columns: the engine calls this every night on the whole history.
     """
+    if isinstance(series, SeriesArrays):
+        checked = (series.as_of, series.book, series.hpl, series.rtpl)
+        if (np.isnat(series.as_of) | pd.isna(series.book) | ~np.isfinite(series.hpl) | ~np.isfinite(series.rtpl)).any():
+            _checked_series(series.frame())
+        return checked
     if any(c not in series.columns for c in ("as_of", "book", "hpl", "rtpl")):
         _checked_series(series)
     as_of = series["as_of"]
@@ -70,7 +92,7 @@ def quality_frame(series: pd.DataFrame, as_of_date: dt.date | str | pd.Timestamp
     return pd.DataFrame(quality_columns(series, as_of_date, window, recent))
 
 
-def quality_columns(series: pd.DataFrame, as_of_date: dt.date | str | pd.Timestamp,
+def quality_columns(series: pd.DataFrame | SeriesArrays, as_of_date: dt.date | str | pd.Timestamp,
                     window: int = 250, recent: int = 60) -> dict[str, np.ndarray]:
     """The columns of :func:`quality_frame` as arrays, by name in the order of ``schema.BOOK_QUALITY`` (the
     archive takes them as they are: no frame between)."""
@@ -81,7 +103,7 @@ def quality_columns(series: pd.DataFrame, as_of_date: dt.date | str | pd.Timesta
     order = np.lexsort((dates, codes_all))
     sorted_codes, sorted_dates = codes_all[order], dates[order]
     if ((sorted_codes[1:] == sorted_codes[:-1]) & (sorted_dates[1:] == sorted_dates[:-1])).any():
-        _checked_series(series)  # raises: a book with two rows of one night
+        _checked_series(series.frame() if isinstance(series, SeriesArrays) else series)  # raises: two rows of a night
     as_of = pd.Timestamp(as_of_date)
     used = order[sorted_dates <= as_of.to_datetime64()]
     codes = codes_all[used]

@@ -135,7 +135,8 @@ def test_the_sessions_book_history_is_what_the_quality_query_reads(desk, tmp_pat
         history = BookHistory(con)
         for day in dates[1:]:
             tonight = con.sql(f"SELECT {columns} FROM book_pnl WHERE as_of = ?", params=[day]).to_arrow_table()
-            pd.testing.assert_frame_equal(history.series(day, tonight), quality_series(con, day), check_exact=True,
+            held = history.series(day, tonight).frame()
+            pd.testing.assert_frame_equal(held, quality_series(con, day), check_exact=True,
                                           check_dtype=False)  # the same values; books as objects or as text
         assert len(quality_series(con, dates[-1])) > len(dates)  # several books, several nights
 

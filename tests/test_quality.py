@@ -23,7 +23,7 @@ from attribution.quality import (
     spearman_rows,
     zone_of,
 )
-from attribution.quality_table import nightly_series, quality_frame
+from attribution.quality_table import SeriesArrays, nightly_series, quality_columns, quality_frame
 from attribution.schema import BOOK_QUALITY
 
 RTOL = 1e-12
@@ -288,6 +288,37 @@ def test_quality_frame_rejects_bad_series(change, message: str) -> None:
     series = change(_series(np.random.default_rng(3)))
     with pytest.raises(ValueError, match=message):
         quality_frame(series, dt.date(2024, 12, 31))
+
+
+def _as_arrays(series: pd.DataFrame) -> SeriesArrays:
+    return SeriesArrays(pd.to_datetime(series["as_of"]).to_numpy(), series["book"].to_numpy(dtype=object),
+                        series["hpl"].to_numpy(float), series["rtpl"].to_numpy(float))
+
+
+def test_quality_columns_of_arrays_are_those_of_the_frame() -> None:
+    """The series handed over as arrays (the archive session's history) gives the frame's columns to the bit."""
+    series = _series(np.random.default_rng(31)).sample(frac=1.0, random_state=2)
+    as_of = pd.bdate_range("2023-01-02", periods=260)[-3].date()
+    framed, direct = quality_frame(series, as_of), quality_columns(_as_arrays(series), as_of)
+    pd.testing.assert_frame_equal(pd.DataFrame(direct), framed, check_exact=True)
+
+
+@pytest.mark.parametrize(
+    ("change", "message"),
+    [
+        (lambda s: pd.concat([s, s.iloc[[5]]]), "one row per book and night"),
+        (lambda s: s.assign(hpl=s["hpl"].where(s.index != 3, np.nan)), "finite"),
+        (lambda s: s.assign(book=s["book"].where(s.index != 7, None)), "required"),
+    ],
+)
+def test_quality_columns_of_arrays_reject_what_the_frame_rejects(change, message: str) -> None:
+    """A duplicated night, a NaN amount or a missing book: the same error, naming the same row, as the frame's."""
+    series = change(_series(np.random.default_rng(3)))
+    with pytest.raises(ValueError, match=message) as framed:
+        quality_frame(series, dt.date(2024, 12, 31))
+    with pytest.raises(ValueError) as direct:
+        quality_columns(_as_arrays(series), dt.date(2024, 12, 31))
+    assert str(direct.value) == str(framed.value)
 
 
 def test_nightly_series_sums_positions_held_overnight() -> None:
