@@ -88,8 +88,10 @@ def _books_of_trades(trade_ids: np.ndarray, raws: tuple[RawNight, ...]) -> np.nd
 
 def rejected_positions(ledger: pd.DataFrame) -> pd.DataFrame:
     """One row per rejected input position (book, position identity)."""
-    rejected = ledger[(ledger["severity"] == REJECTED) & ledger["position"].notna()]
-    return rejected.drop_duplicates("position")[["book", "position"]]
+    position = ledger["position"].to_numpy(dtype=object)
+    rows = np.flatnonzero((ledger["severity"].to_numpy(dtype=object) == REJECTED) & ~pd.isna(position))
+    _, first = np.unique(pd.factorize(position[rows])[0], return_index=True)  # each position's first row
+    return ledger[["book", "position"]].iloc[rows[np.sort(first)]]
 
 
 def rejected_size(rejected: pd.DataFrame, raw0: RawNight, market0: InstrumentMarket, fx0: pd.Series) -> pd.DataFrame:

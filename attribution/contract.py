@@ -128,15 +128,13 @@ class _Rules:
         self.log, self.path, self.frame, self.key_column = log, path, frame, key_column
         self.ok = np.ones(len(frame), dtype=bool)
         self.reasons = np.full(len(frame), "", dtype=object)
-        self._codes: dict[str, _Codes] = {}
+        self._codes: dict[str, _Codes | None] = {}
 
     def _factorised(self, column: str) -> _Codes | None:
         """The column's codes (computed once), or None for a column that is not text."""
-        values = self.frame[column]
-        if values.dtype != object:
-            return None
         if column not in self._codes:
-            self._codes[column] = _Codes.of(values)
+            values = self.frame[column]
+            self._codes[column] = _Codes.of(values) if values.dtype == object else None
         return self._codes[column]
 
     def blank(self, column: str) -> np.ndarray:
@@ -295,12 +293,12 @@ def activity_rows(raw: RawNight, log: ExceptionLog) -> pd.DataFrame | None:
     rules = _Rules(log, raw.path(file), frame, "activity_id")
     rules.required("activity_id", "trade_id", "kind")
     rules.unique("activity_id")
-    rules.reject(~frame["kind"].isin(ACTIVITY_KINDS), "activity kind unknown",
+    rules.reject(~rules.isin("kind", ACTIVITY_KINDS), "activity kind unknown",
                  lambda m: shown(frame, "kind")(m) + "; one of " + ", ".join(ACTIVITY_KINDS))
     rules.finite("quantity")
     price = frame["price"].to_numpy(dtype=float)
     rules.reject(np.isinf(price), "price is not a finite number", shown(frame, "price"))
-    rules.reject(frame["kind"].isin(UNPRICED_ACTIVITY).to_numpy() & ~np.isnan(price),
+    rules.reject(rules.isin("kind", UNPRICED_ACTIVITY) & ~np.isnan(price),
                  "price must be null for a correction or cancel", shown(frame, "price"))
     return rules.clean().reset_index(drop=True)
 

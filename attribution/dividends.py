@@ -104,18 +104,32 @@ def income_per_unit(tonight: pd.DataFrame, underlying: NDArray[np.object_]) -> F
     return per_underlying.reindex(pd.Index(np.asarray(underlying, dtype=object))).fillna(0.0).to_numpy(dtype=float)
 
 
+def instrument_pairs(underlying: NDArray[np.object_], currency: NDArray[np.object_]) -> pd.DataFrame:
+    """The distinct (underlying, currency) of a date's instruments, in the order they first appear (each
+    row labelled by its first instrument), for :func:`schedule_frame`."""
+    u_code, _ = pd.factorize(np.asarray(underlying, dtype=object), use_na_sentinel=False)
+    c_code, c_names = pd.factorize(np.asarray(currency, dtype=object), use_na_sentinel=False)
+    _, first = np.unique(u_code.astype(np.int64) * (len(c_names) + 1) + c_code, return_index=True)
+    first = np.sort(first)
+    return pd.DataFrame({"underlying": np.asarray(underlying, dtype=object)[first],
+                         "currency": np.asarray(currency, dtype=object)[first]}, index=first)
+
+
 def schedule_frame(as_of: dt.date, prior_as_of: dt.date, run: pd.DataFrame, prior: pd.DataFrame,
-                   pairs: pd.DataFrame, curves: pd.DataFrame, basis: TimeBasis) -> pd.DataFrame:
+                   pairs: pd.DataFrame, curves: pd.DataFrame, basis: TimeBasis,
+                   gone: pd.DataFrame | None = None) -> pd.DataFrame:
     """The ``dividend_schedule`` rows of a night: every dividend in force on ``as_of`` (ex_date after it) with
     its present value on the curve of each currency its underlying's instruments trade in, and those that
     went ex tonight (``went_ex``, no present value).
 
-    ``pairs``: distinct (underlying, currency) of the run date's instruments. The rows are joined to them and
+    ``pairs``: distinct (underlying, currency) of the run date's instruments (:func:`instrument_pairs`);
+    ``gone``: :func:`going_ex` of the night when already known. The rows are joined to the pairs and
     ordered by (underlying, currency, ex_date) on integer codes: a night has a few hundred rows at most.
     """
     day = np.datetime64(as_of, "D")
     ahead = run[run["ex_date"].to_numpy(dtype="datetime64[D]") > day]
-    gone = going_ex(prior, run, prior_as_of, as_of)
+    if gone is None:
+        gone = going_ex(prior, run, prior_as_of, as_of)
     underlying = np.concatenate([ahead["underlying"].to_numpy(dtype=object), gone["underlying"].to_numpy(dtype=object)])
     ex_date = np.concatenate([ahead["ex_date"].to_numpy(dtype="datetime64[s]"),
                               gone["ex_date"].to_numpy(dtype="datetime64[s]")])

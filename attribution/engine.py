@@ -57,7 +57,7 @@ from attribution.contract import CleanNight, clean_night, trade_date_warnings, w
 from attribution.controls import BREACH
 from attribution.corporate_actions import restate_prior
 from attribution.date_cache import DateCache
-from attribution.dividends import going_ex, schedule_frame
+from attribution.dividends import going_ex, instrument_pairs, schedule_frame
 from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
 from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.lifecycle import Legs, match_legs
@@ -173,7 +173,8 @@ def _trade_activity(legs: Legs, clean0: CleanNight, clean1: CleanNight, market0:
         return legs, None
     path = clean1.raw.path("trade_activity.parquet")
     if whole:
-        known = pd.Index(pd.concat([c.raw.tables["positions.parquet"]["trade_id"] for c in (clean0, clean1)]))
+        known = pd.Index(np.concatenate([c.raw.tables["positions.parquet"]["trade_id"].to_numpy(dtype=object)
+                                         for c in (clean0, clean1)]), dtype=object)
         unknown_trades(clean1.activity, known, path, "activity_id", "activity of an unknown trade", log)
     qty0, qty1 = leg_quantities(legs, clean0, clean1)
     act = leg_activity(clean1.activity, legs, market0, market1)
@@ -273,8 +274,9 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     positions = stale_flags(positions, market1.ids[stale].to_numpy())
     went_ex = going_ex(clean0.dividends, clean1.dividends, prior_as_of, as_of)
     positions = corporate_flags(dividend_income(positions, went_ex), restated, went_ex)
-    pairs = pd.DataFrame({"underlying": market1.underlying, "currency": market1.currency}).drop_duplicates()
-    schedule = schedule_frame(as_of, prior_as_of, clean1.dividends, clean0.dividends, pairs, clean1.curves, basis)
+    pairs = instrument_pairs(market1.underlying, market1.currency)
+    schedule = schedule_frame(as_of, prior_as_of, clean1.dividends, clean0.dividends, pairs, clean1.curves, basis,
+                              went_ex)
     positions = cash_rows(positions, clean1, config.reporting_currency, log, books)
     watch.lap("explain")
     positions["limit_state"] = pd.Series(position_limit_states(positions, config), index=positions.index, dtype=object)

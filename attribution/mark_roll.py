@@ -88,4 +88,9 @@ def roll_dates(data_root: object, as_of: object, basis: TimeBasis, max_days: int
     holidays = np.array(basis.holidays, dtype="datetime64[D]")
     dates = available_dates(data_root) if listed is None else listed  # type: ignore[arg-type]
     earlier = [d for d in dates if d < as_of]  # type: ignore[operator]
-    return [d for d in reversed(earlier) if np.busday_count(d, as_of, holidays=holidays) <= max_days]
+    within = []
+    for day in reversed(earlier):  # the business days to as_of only grow going back: stop at the first too far
+        if np.busday_count(day, as_of, holidays=holidays) > max_days:
+            break
+        within.append(day)
+    return within

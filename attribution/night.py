@@ -329,6 +329,8 @@ def _strategy(legs: Legs, prior: CleanNight, run: CleanNight) -> NDArray[np.obje
 
 def stale_flags(frame: pd.DataFrame, stale_instruments: NDArray[np.object_]) -> pd.DataFrame:
     """Add the ``stale_mark`` flag to rows whose run-date mark was found stale."""
+    if not len(stale_instruments):  # the usual night: nothing to flag
+        return frame
     hit = frame["instrument_id"].isin(stale_instruments).to_numpy() & ~frame["status"].isin(EXPIRIES).to_numpy()
     if hit.any():
         flags = frame["flags"].to_numpy(dtype=object).copy()
@@ -340,6 +342,8 @@ def stale_flags(frame: pd.DataFrame, stale_instruments: NDArray[np.object_]) -> 
 def corporate_flags(frame: pd.DataFrame, restated: pd.Series, went_ex: pd.DataFrame) -> pd.DataFrame:
     """Flag the rows held over a night whose underlying was restated for a split (``restated``) or
     had a dividend going ex (``ex_dividend``); a reader sees why a strike or a spot jumped."""
+    if restated.empty and went_ex.empty:  # the usual night: nothing to flag
+        return frame
     held = frame["status"].isin([CARRIED, CLOSED, *EXPIRIES]).to_numpy()
     underlying = frame["underlying"]
     parts = [(held & underlying.isin(restated.index).to_numpy(), "restated"),
