@@ -37,6 +37,7 @@ package on each), and the data root must be a path every worker can read under t
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import datetime as dt
 import heapq
 import logging
@@ -264,8 +265,7 @@ def _unknown_activity(night: PreparedNight, config: JobConfig, as_of: dt.date,
         return night
     extra = extra.assign(book=None)[night.exceptions.columns]
     exceptions = pd.concat([night.exceptions, extra], ignore_index=True) if len(night.exceptions) else extra
-    return PreparedNight(night.as_of, night.prior_as_of, night.positions, night.books, exceptions, night.hashes,
-                         night.positions_in, night.rejected_positions, night.unaccounted, night.stages)
+    return dataclasses.replace(night, exceptions=exceptions)  # every other table as merged (dividends included)
 
 
 def _threads(client: Any) -> int:

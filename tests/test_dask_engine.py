@@ -166,6 +166,8 @@ def test_prepared_night_equals_local_in_row_order(desk, desks, client):
     _assert_same(_sorted_ledger(local.exceptions), _sorted_ledger(cluster.exceptions))
     assert (cluster.positions_in, cluster.rejected_positions, cluster.unaccounted, cluster.hashes) == (
         local.positions_in, local.rejected_positions, local.unaccounted, local.hashes)
+    assert local.dividend_schedule is not None and cluster.dividend_schedule is not None
+    pd.testing.assert_frame_equal(local.dividend_schedule, cluster.dividend_schedule, check_exact=True)
     assert [name for name, _ in cluster.stages] == ["cluster", "merge"]
 
 
