@@ -57,8 +57,12 @@ def nights_between(config: JobConfig, start: dt.date, end: dt.date) -> list[dt.d
 
 
 def backfill(config: JobConfig, start: dt.date, end: dt.date, reports_last: int = 1,
-             echo: Callable[[str], None] = print) -> int:
-    """Run every night of the range; stops at the first failed night. Returns the exit code."""
+             echo: Callable[[str], None] = print, workers: cf.ProcessPoolExecutor | None = None) -> int:
+    """Run every night of the range; stops at the first failed night. Returns the exit code.
+
+    ``workers``: processes from :func:`started_workers`, already started while the caller did other work (the
+    caller stops them); None starts them here when the plan calls for them.
+    """
     nights = nights_between(config, start, end)
     if not nights:
         raise InputFileError(f"{config.data_root}: no run date between {start} and {end} with a prior folder")
@@ -69,7 +73,7 @@ def backfill(config: JobConfig, start: dt.date, end: dt.date, reports_last: int 
     shared = DateCache()
     processes, block = worker_plan(config, nights)
     with open_archive(config, one_thread=processes > 1) as session, cluster(config) as client:
-        prepared = _prepared_elsewhere(config, nights, processes, block)
+        prepared = _prepared_elsewhere(config, nights, processes, block, workers)
         with contextlib.closing(prepared):  # the workers are stopped however the range ends
             outcomes = _run_in_order(config, nights, reports_last, prepared, session, client, shared, progress)
     progress.close()
@@ -108,8 +112,15 @@ def worker_plan(config: JobConfig, nights: list[dt.date]) -> tuple[int, int]:
     if rows is None or rows > LARGEST_NIGHT:
         return 1, BLOCK_NIGHTS
     block = max(1, min(BLOCK_NIGHTS, BLOCK_POSITIONS // max(rows, 1)))
-    wanted = config.backfill_processes or _available_cores()
-    return max(1, min(wanted, len(nights) // block)), block
+    return max(1, min(wanted_processes(config), len(nights) // block)), block
+
+
+def wanted_processes(config: JobConfig) -> int:
+    """Worker processes the job asks a backfill for: ``backfill_processes``, 0 meaning one per available core;
+    one (no worker) on the Dask engine, which has its own."""
+    if config.engine != "local":
+        return 1
+    return config.backfill_processes or _available_cores()
 
 
 def _positions_rows(config: JobConfig, night: dt.date) -> int | None:
@@ -168,26 +179,67 @@ def _prepare_block(config: JobConfig, nights: list[dt.date]) -> list[ArchiveRows
     return done
 
 
-def _prepared_elsewhere(config: JobConfig, nights: list[dt.date], processes: int,
-                        block_nights: int) -> Iterator[ArchiveRows]:
-    """Every night's archive rows in date order, computed by ``processes`` workers a block at a time (at most one block
-    ahead of the workers is kept). Stops early at a night a worker could not compute, or if the workers are lost.
-    With one process it yields nothing: every night is computed by the backfill's own process."""
+def night_blocks(nights: list[dt.date], block_nights: int, processes: int) -> list[list[dt.date]]:
+    """Consecutive blocks of ``block_nights`` nights, the last ``processes * block_nights`` nights in blocks a quarter
+    that size: the workers then finish at about the same time, and the archiving process, which takes the blocks in
+    date order, has only a short block left to archive after them."""
+    tail = min(len(nights), processes * block_nights) if processes > 1 else 0
+    head, small = len(nights) - tail, max(1, block_nights // 4)
+    return ([nights[i:min(i + block_nights, head)] for i in range(0, head, block_nights)]
+            + [nights[i:i + small] for i in range(head, len(nights), small)])
+
+
+@contextlib.contextmanager
+def started_workers(processes: int) -> Iterator[cf.ProcessPoolExecutor | None]:
+    """``processes`` worker processes for a backfill, started now: each loads the package while the caller goes
+    on (the demo writes its data meanwhile), so the backfill's first block does not wait for them. None for one
+    process. Stopped on leaving, however the caller ends."""
     if processes <= 1:
+        yield None
         return
-    blocks = [nights[i:i + block_nights] for i in range(0, len(nights), block_nights)]
     context = mp.get_context("spawn")  # a clean interpreter: no inherited threads or open archive
     counter = context.Value("i", 0)
     cores = sorted(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else []
     pool = cf.ProcessPoolExecutor(max_workers=processes, mp_context=context, initializer=_start_worker,
                                   initargs=(cores, counter, logging.getLogger().getEffectiveLevel()))
     try:
-        pending: collections.deque[cf.Future[list[ArchiveRows]]] = collections.deque()
-        queued = 0
-        with _main_not_inherited():  # the workers start on these first submissions
-            while queued < len(blocks) and len(pending) < processes + 1:
-                pending.append(pool.submit(_prepare_block, config, blocks[queued]))
-                queued += 1
+        with _main_not_inherited():  # one call each starts every worker (it imports this module to run it)
+            for _ in range(processes):
+                pool.submit(_loaded)
+        yield pool
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _loaded() -> None:
+    """A worker's first call: its start-up (imports, core) is all it does."""
+
+
+def _prepared_elsewhere(config: JobConfig, nights: list[dt.date], processes: int, block_nights: int,
+                        workers: cf.ProcessPoolExecutor | None = None) -> Iterator[ArchiveRows]:
+    """Every night's archive rows in date order, computed by ``processes`` workers a block at a time (at most one block
+    ahead of the workers is kept). Stops early at a night a worker could not compute, or if the workers are lost.
+    With one process it yields nothing: every night is computed by the backfill's own process."""
+    if processes <= 1:
+        return
+    blocks = night_blocks(nights, block_nights, processes)
+    with contextlib.ExitStack() as stack:
+        pool = workers if workers is not None else stack.enter_context(started_workers(processes))
+        if pool is None:
+            return
+        yield from _in_order(config, blocks, pool, processes)
+
+
+def _in_order(config: JobConfig, blocks: list[list[dt.date]], pool: cf.ProcessPoolExecutor,
+              processes: int) -> Iterator[ArchiveRows]:
+    """The blocks' archive rows in date order, ``processes`` blocks computed at a time and one more queued."""
+    pending: collections.deque[cf.Future[list[ArchiveRows]]] = collections.deque()
+    queued = 0
+    with _main_not_inherited():  # workers not started yet start on these first submissions
+        while queued < len(blocks) and len(pending) < processes + 1:
+            pending.append(pool.submit(_prepare_block, config, blocks[queued]))
+            queued += 1
+    try:
         for block in blocks:
             try:
                 done = pending.popleft().result()
@@ -200,4 +252,6 @@ def _prepared_elsewhere(config: JobConfig, nights: list[dt.date], processes: int
             if len(done) < len(block):
                 return
     finally:
-        pool.shutdown(wait=True, cancel_futures=True)
+        for future in pending:  # blocks no longer wanted (the range stopped early); workers of the caller's go on
+            future.cancel()
+

@@ -15,7 +15,7 @@ import pytest
 import attribution.archive as archive_module
 import attribution.backfill as backfill_module
 from attribution.archive import BookHistory, quality_series
-from attribution.backfill import backfill, worker_plan
+from attribution.backfill import backfill, night_blocks, started_workers, worker_plan
 from attribution.config import ConfigError, JobConfig, validate
 from attribution.engine import ArchiveRows, open_archive, run_night
 from attribution.loading import InputFileError
@@ -69,6 +69,40 @@ def test_worker_processes_archive_what_one_process_does(desk, tmp_path, monkeypa
     for name in one:
         pd.testing.assert_frame_equal(one[name], two[name], check_exact=True, obj=name)
     assert [line.split("  seconds")[0] for line in lines[1]] == [line.split("  seconds")[0] for line in lines[2]]
+
+
+def test_workers_started_ahead_archive_the_same(desk, tmp_path, monkeypatch):
+    """Workers started before the backfill (the demo starts them while it writes its data) compute every night,
+    and the archive is the one a backfill starting its own workers writes, to the last bit."""
+    config, dates = desk
+    monkeypatch.setattr(backfill_module, "BLOCK_NIGHTS", 2)
+    own = dataclasses.replace(config, archive_path=tmp_path / "own.duckdb", backfill_processes=2)
+    backfill(own, dates[1], dates[-1], reports_last=0, echo=lambda _: None)
+    ahead = dataclasses.replace(own, archive_path=tmp_path / "ahead.duckdb")
+    calls = []
+    monkeypatch.setattr(backfill_module, "run_night", lambda *a, **k: calls.append(a))  # no night computed here
+    with started_workers(2) as workers:
+        assert workers is not None
+        backfill(ahead, dates[1], dates[-1], reports_last=0, echo=lambda _: None, workers=workers)
+    assert calls == []
+    one, two = _tables(own.archive_path), _tables(ahead.archive_path)
+    for name in one:
+        pd.testing.assert_frame_equal(one[name], two[name], check_exact=True, obj=name)
+    with started_workers(1) as none:
+        assert none is None  # one process: nothing started
+
+
+def test_night_blocks_end_small():
+    """Blocks are consecutive and cover every night once; the last processes x block nights come in blocks of a
+    quarter the size, so that the workers finish together and little is left to archive after them."""
+    nights = [dt.date(2026, 1, 1) + dt.timedelta(days=k) for k in range(260)]
+    blocks = night_blocks(nights, 16, 2)
+    assert [d for b in blocks for d in b] == nights
+    assert [len(b) for b in blocks] == [16] * 14 + [4] + [4] * 8
+    assert [len(b) for b in night_blocks(nights[:20], 16, 2)] == [4] * 5  # all of a short range is tail
+    assert [len(b) for b in night_blocks(nights[:40], 16, 1)] == [16, 16, 8]  # one process: no tail
+    assert [len(b) for b in night_blocks(nights[:5], 2, 2)] == [1] * 5
+    assert [len(b) for b in night_blocks(nights[:50], 16, 2)] == [16, 2, 4, 4, 4, 4, 4, 4, 4, 4]
 
 
 def test_a_night_a_worker_cannot_compute_fails_as_in_one_process(desk, tmp_path, monkeypatch):

@@ -7,7 +7,7 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
-from attribution.backfill import backfill
+from attribution.backfill import backfill, started_workers, wanted_processes
 from attribution.config import CheckSettings, JobConfig, LimitSettings
 from attribution.demo.build import OFFICIAL_BREAK_LIMIT, build_demo
 from attribution.engine import EXIT_FINDINGS, EXIT_OK
@@ -37,11 +37,14 @@ def run_demo(into: Path, *, days: int = 261, seed: int = 7, reports_last: int = 
         shutil.rmtree(stale, ignore_errors=True)
     for stale in (into / "archive.duckdb", into / "archive.duckdb.wal"):
         stale.unlink(missing_ok=True)
-    summary = build_demo(into / "data", seed=seed, business_days=days)
-    echo(summary.describe())
-    echo(f"Data written in {time.perf_counter() - t0:.1f} s; explaining {len(summary.dates) - 1} nights ...")
-    config = demo_config(into, summary.holidays)
-    code = backfill(config, summary.dates[1], summary.dates[-1], reports_last=reports_last, echo=echo)
+    # The backfill's worker processes start first: they load the package while the data is written.
+    with started_workers(wanted_processes(demo_config(into, ()))) as workers:
+        summary = build_demo(into / "data", seed=seed, business_days=days)
+        echo(summary.describe())
+        echo(f"Data written in {time.perf_counter() - t0:.1f} s; explaining {len(summary.dates) - 1} nights ...")
+        config = demo_config(into, summary.holidays)
+        code = backfill(config, summary.dates[1], summary.dates[-1], reports_last=reports_last, echo=echo,
+                        workers=workers)
     index = config.reports_dir / summary.dates[-1].isoformat() / "index.html"
     echo(f"Demo finished in {time.perf_counter() - t0:.0f} s. Open the report: {index}")
     echo(f"Archive: {config.archive_path} (try: attribution quality --archive {config.archive_path} "
