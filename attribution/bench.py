@@ -48,8 +48,11 @@ RSS_GOAL_MB = 1_000.0    # peak memory of the night
 
 def _night_in_child(config: JobConfig, as_of: object, queue: mp.Queue) -> None:
     import traceback
+    import warnings
 
+    from attribution.console import warning_to_log
     from attribution.runner import run_night
+    warnings.showwarning = warning_to_log  # as in the command: library warnings go to the debug log
     try:
         outcome = run_night(config, as_of)  # type: ignore[arg-type]
     except Exception:  # noqa: BLE001 - sent to the parent, which reports it

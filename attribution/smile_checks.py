@@ -97,8 +97,9 @@ def butterfly(smile: IntArray, strike: FloatArray, spot: FloatArray, tau: FloatA
                            np.ones(keep.size))
     g, kk = smile[keep], strike[keep]
     same = (g[:-2] == g[1:-1]) & (g[1:-1] == g[2:])
-    lam = (kk[2:] - kk[1:-1]) / (kk[2:] - kk[:-2])
-    bound = lam * call[:-2] + (1.0 - lam) * call[2:]
+    with np.errstate(invalid="ignore", divide="ignore"):  # triples across two smiles (not ``same``) may divide by 0
+        lam = (kk[2:] - kk[1:-1]) / (kk[2:] - kk[:-2])
+        bound = lam * call[:-2] + (1.0 - lam) * call[2:]
     bad = same & (call[1:-1] > bound + PRICE_SLACK * spot[keep[1:-1]])
     bad_pair = np.zeros(keep.size, dtype=bool)
     bad_pair[1:-1] = bad

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 
 from attribution.smile_checks import butterfly, calendar, off_smile
@@ -68,6 +70,18 @@ def test_butterfly_reads_each_smile_separately_and_one_mark_per_strike():
                       np.concatenate([vol, vol2, [0.2]]), np.concatenate([rate, rate, [0.02]]),
                       np.concatenate([div, div, [0.0]]))
     assert sorted(found.index.tolist()) == [STRIKES.size + 2, 2 * STRIKES.size]
+
+
+def test_butterfly_across_two_smiles_is_quiet_where_their_strikes_meet():
+    """A smile ending at strike 110 next to one starting 90, 110: the triple across them (110, 90, 110) has no
+    width and is never read (each smile on its own, Carr and Madan 2005), and it raises no numpy warning either."""
+    strike = np.array([100.0, 110.0, 90.0, 110.0, 120.0])
+    smile = np.array([0, 0, 1, 1, 1], dtype=np.intp)
+    ones = np.ones(strike.size)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        found = butterfly(smile, strike, 100.0 * ones, 0.5 * ones, 0.2 * ones, 0.02 * ones, 0.0 * ones)
+    assert found.index.size == 0
 
 
 def test_total_variance_falling_between_neighbouring_expiries_is_calendar_arbitrage():
