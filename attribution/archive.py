@@ -251,18 +251,19 @@ class BookHistory:
                       np.ma.filled(np.ma.asarray(found["pnl_actual"], dtype=np.float64), np.nan),
                       np.ma.filled(np.ma.asarray(found["pnl_explained"], dtype=np.float64), np.nan))
 
-    @staticmethod
-    def _night(as_of: dt.date, tonight: pa.Table) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        books, hpl, rtpl = _held_book_rows(tonight)
-        return np.full(len(books), np.datetime64(as_of, "D")), books, hpl, rtpl
+    def _kept_with(self, kept: np.ndarray, as_of: dt.date,
+                   tonight: pa.Table | None) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """The ``kept`` rows and, dated ``as_of``, ``tonight``'s held book rows (None: none) after them."""
+        parts = [tuple(column[kept] for column in self._rows)]
+        if tonight is not None:
+            books, hpl, rtpl = _held_book_rows(tonight)
+            parts.append((np.full(len(books), np.datetime64(as_of, "D")), books, hpl, rtpl))
+        dates, books, hpl, rtpl = (np.concatenate([part[k] for part in parts]) for k in range(4))
+        return dates, books, hpl, rtpl
 
     def series(self, up_to: dt.date, tonight: pa.Table | None) -> SeriesArrays:
         """What :func:`quality_series` returns once ``tonight``'s ``book_pnl`` rows replace those of ``up_to``."""
-        before = self._rows[0] < np.datetime64(up_to, "D")
-        parts = [tuple(column[before] for column in self._rows)]
-        if tonight is not None:
-            parts.append(self._night(up_to, tonight))
-        dates, books, hpl, rtpl = (np.concatenate([part[k] for part in parts]) for k in range(4))
+        dates, books, hpl, rtpl = self._kept_with(self._rows[0] < np.datetime64(up_to, "D"), up_to, tonight)
         codes, names = pd.factorize(books, sort=True)
         codes = np.where(codes < 0, len(names), codes)  # NULL books last, as ORDER BY puts them
         order = np.lexsort((dates, codes))
@@ -270,12 +271,7 @@ class BookHistory:
 
     def record(self, as_of: dt.date, tonight: pa.Table | None) -> None:
         """Note ``as_of``'s book rows just committed (None: none)."""
-        kept = self._rows[0] != np.datetime64(as_of, "D")
-        parts = [tuple(column[kept] for column in self._rows)]
-        if tonight is not None:
-            parts.append(self._night(as_of, tonight))
-        dates, books, hpl, rtpl = (np.concatenate([part[k] for part in parts]) for k in range(4))
-        self._rows = (dates, books, hpl, rtpl)
+        self._rows = self._kept_with(self._rows[0] != np.datetime64(as_of, "D"), as_of, tonight)
 
 
 def dates_with_rows(con: duckdb.DuckDBPyConnection) -> set[dt.date]:
