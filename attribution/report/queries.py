@@ -110,20 +110,23 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
                          WHERE abs(n.residual) >= cut.least OR n.residual IS NULL  -- the candidates only
                          QUALIFY row_number() OVER (PARTITION BY n.book ORDER BY abs(n.residual) DESC,
                                                     abs(n.total) DESC, n.underlying) <= ?),
-                 others AS (SELECT n.book, count(*) AS underlyings FROM n LEFT JOIN top
-                            ON n.book = top.book AND n.underlying IS NOT DISTINCT FROM top.underlying
-                            WHERE top.book IS NULL GROUP BY n.book),
-                 x AS (SELECT p.*, top.book IS NOT NULL AS shown FROM position_pnl p LEFT JOIN top
-                       ON p.book = top.book AND p.underlying IS NOT DISTINCT FROM top.underlying WHERE p.as_of = ?)
+                 others AS (SELECT n.book, count(*) AS underlyings FROM n ANTI JOIN top
+                            ON n.book = top.book AND n.underlying IS NOT DISTINCT FROM top.underlying GROUP BY n.book)
+            -- each part reads the rows it sums (semi and anti joins on the few shown pairs): no copy of the night's
+            -- rows is kept between the two parts
             SELECT {underlying_cols} FROM (
-                SELECT 0 AS rest, book, underlying, count(*) AS positions,
+                SELECT 0 AS rest, p.book, p.underlying, count(*) AS positions,
                        count(*) FILTER (WHERE status = 'new_unpriced') AS unpriced, {terms}
-                FROM x WHERE shown GROUP BY book, underlying
+                FROM position_pnl p SEMI JOIN top
+                     ON p.book = top.book AND p.underlying IS NOT DISTINCT FROM top.underlying
+                WHERE p.as_of = ? GROUP BY p.book, p.underlying
                 UNION ALL  -- the rest of a book's underlyings in one line (delta units do not add up across them)
-                SELECT 1, x.book, '(' || any_value(o.underlyings) || ' other underlyings)', count(*)::BIGINT,
+                SELECT 1, p.book, '(' || any_value(o.underlyings) || ' other underlyings)', count(*)::BIGINT,
                        (count(*) FILTER (WHERE status = 'new_unpriced'))::BIGINT, {rest_terms}
-                FROM x JOIN others o ON x.book = o.book WHERE NOT x.shown GROUP BY x.book)
-            ORDER BY book, rest, underlying""", [as_of, TOP_UNDERLYINGS, TOP_UNDERLYINGS, as_of]),
+                FROM position_pnl p JOIN others o ON p.book = o.book
+                     ANTI JOIN top ON p.book = top.book AND p.underlying IS NOT DISTINCT FROM top.underlying
+                WHERE p.as_of = ? GROUP BY p.book)
+            ORDER BY book, rest, underlying""", [as_of, TOP_UNDERLYINGS, TOP_UNDERLYINGS, as_of, as_of]),
         positions=_frame(con, f"""
             WITH p AS (SELECT rowid AS r, book, abs(coalesce(pnl_residual, 0)) AS a FROM position_pnl WHERE as_of = ?),
                  -- the candidates: residuals at least the book's N-th largest; only they are ranked and read whole
@@ -181,8 +184,14 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
                    sum(coalesce(quantity_run_date * multiplier * price_run * fx_rate, 0)) / 100 AS fx_move_1pct,
                    sum(pnl_fx_translation) AS pnl_fx_translation
             FROM position_pnl WHERE as_of = ? GROUP BY book, currency ORDER BY book, currency""", [as_of]),
-        **(_dividends(con, as_of) if "dividend_schedule" in tables else {}),
+        **(_dividends(con, as_of) if "dividend_schedule" in tables and _has_rows(con, "dividend_schedule", as_of)
+           else {}),
     )
+
+
+def _has_rows(con: duckdb.DuckDBPyConnection, table: str, as_of: dt.date) -> bool:
+    """Whether ``table`` (a name of the archive schema, never a value) holds a row of ``as_of``."""
+    return con.execute(f"SELECT 1 FROM {table} WHERE as_of = ? LIMIT 1", [as_of]).fetchone() is not None
 
 
 def _dividends(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> dict[str, pd.DataFrame]:
@@ -285,14 +294,14 @@ HEDGING_SQL = """
                       sum(pnl) FILTER (WHERE NOT is_option) AS hedges_pnl,
                       sum(cash) AS cash_pnl
                FROM p GROUP BY book, underlying),
-         -- the book's sums added in the table's order (cash row, largest book delta first)
-         s AS (SELECT book, coalesce(sum(options_pnl ORDER BY is_cash DESC, abs(book_delta_cash) DESC NULLS LAST,
-                                         underlying), 0) AS book_options_pnl,
-                      coalesce(sum(hedges_pnl ORDER BY is_cash DESC, abs(book_delta_cash) DESC NULLS LAST,
-                                   underlying), 0) AS book_hedges_pnl,
-                      coalesce(sum(cash_pnl ORDER BY is_cash DESC, abs(book_delta_cash) DESC NULLS LAST,
-                                   underlying), 0) AS book_cash_pnl
+         -- the book's sums added in the table's order (cash row, largest book delta first): its rows sorted once,
+         -- each sum added along them one by one as an ordered sum() adds (list_sum skips NULLs as sum does)
+         o AS (SELECT book, list(struct_pack(o := options_pnl, h := hedges_pnl, c := cash_pnl)
+                                 ORDER BY is_cash DESC, abs(book_delta_cash) DESC NULLS LAST, underlying) AS rows
                FROM g GROUP BY book),
+         s AS (SELECT book, coalesce(list_sum([r.o FOR r IN rows]), 0) AS book_options_pnl,
+                      coalesce(list_sum([r.h FOR r IN rows]), 0) AS book_hedges_pnl,
+                      coalesce(list_sum([r.c FOR r IN rows]), 0) AS book_cash_pnl FROM o),
          -- ranked among the candidates only: the cash row and book deltas at least the book's N-th largest
          cut AS (SELECT book, list_min(max(abs(book_delta_cash), ?)) AS least FROM g WHERE NOT is_cash GROUP BY book),
          c AS (SELECT g.* FROM g LEFT JOIN cut ON g.book = cut.book
