@@ -184,14 +184,13 @@ def load_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, history_nights: i
                    sum(coalesce(quantity_run_date * multiplier * price_run * fx_rate, 0)) / 100 AS fx_move_1pct,
                    sum(pnl_fx_translation) AS pnl_fx_translation
             FROM position_pnl WHERE as_of = ? GROUP BY book, currency ORDER BY book, currency""", [as_of]),
-        **(_dividends(con, as_of) if "dividend_schedule" in tables and _has_rows(con, "dividend_schedule", as_of)
-           else {}),
+        **(_dividends(con, as_of) if "dividend_schedule" in tables and _has_schedule(con, as_of) else {}),
     )
 
 
-def _has_rows(con: duckdb.DuckDBPyConnection, table: str, as_of: dt.date) -> bool:
-    """Whether ``table`` (a name of the archive schema, never a value) holds a row of ``as_of``."""
-    return con.execute(f"SELECT 1 FROM {table} WHERE as_of = ? LIMIT 1", [as_of]).fetchone() is not None
+def _has_schedule(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> bool:
+    """Whether ``dividend_schedule`` holds a row of ``as_of`` (without one, both dividend queries read nothing)."""
+    return con.execute("SELECT 1 FROM dividend_schedule WHERE as_of = ? LIMIT 1", [as_of]).fetchone() is not None
 
 
 def _dividends(con: duckdb.DuckDBPyConnection, as_of: dt.date) -> dict[str, pd.DataFrame]:
