@@ -162,15 +162,11 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
     amounts = list(PNL_COLUMNS) + list(REVAL_COLUMNS) + list(EXPOSURE_COLUMNS) + list(V2_AMOUNT_COLUMNS)
     # the books sorted, hashed once: every per-book figure below is a bincount or a sum over these codes
     book_code, book_names = pd.factorize(positions["book"].to_numpy(dtype=object), sort=True)
-    # the amounts as one float block, summed by one groupby (pandas' compensated sums, column by column)
-    block = np.empty((len(positions), len(amounts)))
-    for j, column in enumerate(amounts):
-        block[:, j] = positions[column].to_numpy(dtype=float)
-    grouped = pd.DataFrame(block, copy=False).groupby(book_code, sort=True)
-    sums = grouped.sum(min_count=0)
-    reval = [amounts.index(c) for c in REVAL_COLUMNS]
-    reval_sums = grouped[reval].sum(min_count=1)  # NULL when the method is off
-    names = pd.Index(book_names[sums.index], dtype=object, name="book")
+    # the amounts summed per book by pandas' compensated sums, column by column: a block of a few columns at a
+    # time (one block of them all would hold a copy of every amount of the night at once)
+    summed, present = _book_sums(positions, [c for c in amounts if c not in REVAL_COLUMNS], book_code, 0)
+    reval_summed, _ = _book_sums(positions, list(REVAL_COLUMNS), book_code, 1)  # NULL when the method is off
+    names = pd.Index(book_names[present], dtype=object, name="book")
     rejected_books = rejected["book"].value_counts()
     books = names.union(rejected_books.index)
     row = names.get_indexer(books)  # each book's row among the sums; -1: a book with rejected rows only
@@ -181,12 +177,10 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
         return np.where(found, values[at], fill) if len(values) else np.full(len(books), fill)
 
     columns: dict[str, object] = {"book": books.to_numpy(dtype=object)}
-    summed = sums.to_numpy(dtype=float)
-    for j, column in enumerate(amounts):
-        columns[column] = per_book(summed[:, j], 0.0)
-    summed = reval_sums.to_numpy(dtype=float)
-    for j, column in enumerate(REVAL_COLUMNS):
-        columns[column] = per_book(summed[:, j], np.nan)
+    for column, values in summed.items():
+        columns[column] = per_book(values, 0.0)
+    for column, values in reval_summed.items():
+        columns[column] = per_book(values, np.nan)
     status_code = pd.Index(STATUSES, dtype=object).get_indexer(pd.Index(positions["status"].to_numpy(dtype=object),
                                                                          dtype=object, copy=False))
     known = status_code >= 0  # a status outside STATUSES (a book's cash row) is no position
@@ -217,6 +211,28 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
         columns[column] = values.reindex(book_index).fillna(0).to_numpy()
     columns["rejected_unvalued"] = columns["rejected_unvalued"].astype(np.int64)  # type: ignore[attr-defined]
     return pd.DataFrame({name: columns[name] for name, _ in BOOK_PNL})
+
+
+SUM_BLOCK_COLUMNS = 8  # amounts summed per book in one groupby (a block of 8 columns: 64 MB at 1M positions)
+
+
+def _book_sums(positions: pd.DataFrame, amounts: list[str], book_code: np.ndarray,
+               min_count: int) -> tuple[dict[str, np.ndarray], np.ndarray]:
+    """Per column of ``amounts``, its sum per book code (pandas' compensated groupby sum, ``min_count`` as
+    there), and the codes summed (sorted). Each column's sums are its own whatever block it is summed in."""
+    sums: dict[str, np.ndarray] = {}
+    present = np.unique(book_code[book_code >= 0])
+    for start in range(0, len(amounts), SUM_BLOCK_COLUMNS):
+        part = amounts[start:start + SUM_BLOCK_COLUMNS]
+        block = np.empty((len(positions), len(part)))
+        for j, column in enumerate(part):
+            block[:, j] = positions[column].to_numpy(dtype=float)
+        grouped = pd.DataFrame(block, copy=False).groupby(book_code, sort=True).sum(min_count=min_count)
+        del block
+        present = grouped.index.to_numpy()
+        values = grouped.to_numpy(dtype=float)
+        sums.update((column, values[:, j]) for j, column in enumerate(part))
+    return sums, present
 
 
 def _desks_of(books: pd.Index, desks: pd.Series | None) -> np.ndarray:

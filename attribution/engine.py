@@ -64,6 +64,7 @@ from attribution.lifecycle import Legs, match_legs
 from attribution.loading import folder_for, folder_stamp, prior_date, read_night
 from attribution.mark_roll import roll_dates, roll_marks
 from attribution.market import InstrumentMarket, build_market, flag_stale_marks, instrument_terms
+from attribution.memory import free_large_arrays_at_once
 from attribution.night import corporate_flags, dividend_income, position_rows, reject_non_finite, stale_flags
 from attribution.smile_night import check_smiles, night_smiles
 from attribution.timebasis import TimeBasis
@@ -230,6 +231,7 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     ``cache``: a backfill's :class:`~attribution.date_cache.DateCache`; a date's reading, row rules
     and market state computed for the previous night are reused where they are the same work.
     """
+    free_large_arrays_at_once()  # a night's freed columns leave the process (not one value changes)
     watch = Stopwatch(progress)
     shared = cache if books is None else None  # a part of a night (one group of books) is never shared
     prior_as_of = resolve_prior(config, as_of, prior, None if shared is None else
@@ -459,7 +461,9 @@ def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
             return run_night(config, as_of, prior, progress, own, prepare)
     started, t0 = dt.datetime.now(), time.perf_counter()
     night = (prepare or prepare_night)(config, as_of, prior, progress)
-    return archive_night(config, archive_rows(night), session, progress, started, t0)
+    rows = archive_rows(night)
+    del night  # its frames: the Arrow rows hold what the archive takes (their numbers without a copy)
+    return archive_night(config, rows, session, progress, started, t0)
 
 
 def archive_night(config: JobConfig, night: ArchiveRows, session: ArchiveSession, progress: Progress | None = None,
@@ -467,8 +471,10 @@ def archive_night(config: JobConfig, night: ArchiveRows, session: ArchiveSession
     """Archive a night computed already (one transaction), then write its reports if the job asks.
 
     ``started`` and ``t0`` (``time.perf_counter()``): when the run began, if before this call (the night
-    computed by the caller); the run record's clock starts here otherwise.
+    computed by the caller); the run record's clock starts here otherwise. ``night.tables`` is emptied once
+    the rows are committed: a large night's rows are not held in memory while its reports are written.
     """
+    free_large_arrays_at_once()
     if started is None or t0 is None:
         started, t0 = dt.datetime.now(), time.perf_counter()
     as_of = night.as_of
@@ -487,6 +493,8 @@ def archive_night(config: JobConfig, night: ArchiveRows, session: ArchiveSession
     con = session.con
     quality = write_night(con, as_of, tables, replace=session.holds(as_of), history=session.history)
     session.written(as_of)
+    tables.clear()
+    night.tables.clear()  # archived: the reports read the archive
     watch.lap("archive")
     index_path = None
     if config.write_reports:

@@ -227,6 +227,8 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         # the prior date to its next business day / 365 (3/365 from a Friday), not a year / 252.
         one_day = float(basis.year_fraction(prior_as_of, basis.next_business_day(prior_as_of))[0])
         cols["theta_per_business_day"][p] = units0[p] * g0.theta_per_year * one_day
+        del s0
+    del g0, exercised0, in_p  # the prior greeks of a million rows: freed before the columns below are made
 
     # Decay expected to the next business day, from the run-date state of what is still held.
     h = np.flatnonzero(held1)
@@ -237,6 +239,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         g1, _ = value_and_greeks(strike[h], cp[h], s1, american[h], kind=kind[h], scheme=scheme, group=i1[h],
                                  full=False)
         cols["theta_next_business_day"][h] = units1[h] * g1.theta_per_year * step_years
+        del s1, g1
 
     # Lifecycle lines.
     cols["pnl_new_trade"] = np.where(is_new, units1 * (market1.price[i1] - trade_price1), 0.0)

@@ -353,3 +353,51 @@ def test_a_file_holding_a_foreign_position_pnl_table_is_left_as_it_was(tmp_path,
     with duckdb.connect(str(path), read_only=True) as con:
         assert [r[0] for r in con.execute("SELECT table_name FROM information_schema.tables").fetchall()] == [
             "position_pnl"]
+
+
+def _memory_limit(con: duckdb.DuckDBPyConnection) -> str:
+    return con.execute("SELECT current_setting('memory_limit')").fetchall()[0][0]
+
+
+def test_night_rows_go_in_with_duckdbs_memory_capped_and_the_cap_is_lifted_after(archived, desk, tmp_path,
+                                                                                 monkeypatch):
+    """Every insert of a night runs under the write cap (DuckDB lets go of the blocks it wrote); after the
+    transaction the connection has its memory limit as before (the reports' queries run uncapped)."""
+    box = copy_of(archived, tmp_path / "box")
+    during, around = [], []
+    insert, write = archive_module._insert, engine_module.write_night
+
+    def capped_insert(con, table, rows):
+        during.append(_memory_limit(con))
+        insert(con, table, rows)
+
+    def write_night(con, *args, **kwargs):
+        before = _memory_limit(con)
+        quality = write(con, *args, **kwargs)
+        around.append((before, _memory_limit(con)))
+        return quality
+
+    monkeypatch.setattr(archive_module, "_insert", capped_insert)
+    monkeypatch.setattr(engine_module, "write_night", write_night)
+    assert run(desk, box) == 3
+    cap = duckdb.connect()
+    cap.execute(archive_module.SET_WRITE_MEMORY)
+    assert len(during) >= 4 and set(during) == {_memory_limit(cap)}
+    cap.close()
+    [(before, after)] = around
+    assert before == after != during[0]
+
+
+def test_archive_night_lets_go_of_the_rows_once_committed(archived, desk, tmp_path):
+    """The night's Arrow rows are dropped once archived, before the reports: a large night's rows are not held
+    in memory through them. What the run reports is unchanged, and the archive holds the rows."""
+    box = copy_of(archived, tmp_path / "box")
+    config = JobConfig(data_root=desk, archive_path=Path("a.duckdb"), reports_dir=Path("reports"),
+                       write_reports=False, time_basis="BUS/252")
+    with contextlib.chdir(box), engine_module.open_archive(config) as session:
+        rows = engine_module.archive_rows(engine_module.prepare_night(config, RUN))
+        held = rows.tables["position_pnl"].num_rows
+        outcome = engine_module.archive_night(config, rows, session)
+    assert rows.tables == {}
+    assert outcome.archived == held > 0
+    assert read_archive(box / "a.duckdb", RUN)[1]["position_pnl"].shape[0] == held

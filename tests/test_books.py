@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+import attribution.books as books_module
 from attribution.books import (
     NO_BOOK,
     book_frame,
@@ -130,3 +131,29 @@ def test_book_frame_sums_counts_and_applies_the_book_limits():
     assert frame["residual_limit"].tolist() == [1_000.0] * 3
     assert np.isnan(frame["reval_spot"]).all()  # no revaluation share given: NULL, not zero
     assert (frame["as_of"] == pd.Timestamp(RUN)).all() and (frame["prior_as_of"] == pd.Timestamp(PRIOR)).all()
+
+
+def test_book_sums_a_few_columns_at_a_time_are_those_of_one_groupby_of_every_column():
+    """The book sums, taken a block of a few columns at a time (not one copy of every amount at once), are bit for
+    bit pandas' compensated groupby sums of all the amounts at once; a book without revaluation shares stays NULL."""
+    rng = np.random.default_rng(5)
+    n = 20_000
+    amounts = [*PNL_COLUMNS, *REVAL_COLUMNS, *EXPOSURE_COLUMNS, *V2_AMOUNT_COLUMNS]
+    assert len(amounts) > 3 * books_module.SUM_BLOCK_COLUMNS  # several blocks
+    book = rng.choice(["alpha", "beta", "gamma", "delta"], n).astype(object)
+    values = rng.standard_normal((n, len(amounts))) * 10.0 ** rng.integers(-3, 9, (n, 1))  # rounding-sensitive sums
+    pos = pd.DataFrame({"book": book, "trade_id": [f"T{k}" for k in range(n)], "instrument_id": "X",
+                        "status": "carried", "limit_state": "within"})
+    pos = pd.concat([pos, pd.DataFrame(values, columns=amounts)], axis=1)
+    pos.loc[pos["book"] == "delta", list(REVAL_COLUMNS)] = np.nan
+    frame = book_frame(pos, ledger([]), pd.DataFrame({"book": [], "position": []}), JobConfig(), RUN, PRIOR)
+    code, names = pd.factorize(book, sort=True)
+    whole = pd.DataFrame(pos[amounts].to_numpy(), copy=False).groupby(code, sort=True)
+    sums, reval = whole.sum(min_count=0).to_numpy(), whole[[amounts.index(c) for c in REVAL_COLUMNS]].sum(min_count=1)
+    assert frame["book"].tolist() == list(names)
+    for j, column in enumerate(amounts):
+        if column == "delta_units":  # units of different underlyings: not summed per book (NULL)
+            continue
+        want = reval[amounts.index(column)].to_numpy() if column in REVAL_COLUMNS else sums[:, j]
+        np.testing.assert_array_equal(frame[column].to_numpy(), want, err_msg=column)
+    assert np.isnan(frame.loc[frame["book"] == "delta", "reval_spot"]).all()
