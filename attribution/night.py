@@ -189,32 +189,6 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     in_p = np.full(n, -1, dtype=np.intp)
     in_p[p] = np.arange(p.size)
 
-    k = np.flatnonzero(overnight)
-    if k.size:
-        s0, s1 = _state(market0, i0[k]), _state(market1, i1[k])
-        pair = i0[k] * (len(market1.ids) + 1) + i1[k]  # one instrument on both dates: priced once (American)
-        kp = in_p[k]
-        prior_greeks = (Greeks(*(getattr(g0, name)[kp] for name in Greeks.__slots__)), exercised0[kp])
-        ex = explain_overnight(strike[k], cp[k], units0[k], s0, s1, price0[k], price1[k], np.full(k.size, dt_years),
-                               american[k], scheme=scheme, group=pair, prior=prior_greeks, kind=kind[k])
-        crossed[k] = ex.crossed_boundary
-        for name in ("actual", *TAYLOR_TERMS, "explained", "residual", "model", "higher_order", "mark_gap"):
-            cols[f"pnl_{name}"][k] = getattr(ex, name)
-        for name, values in _vol_and_time(ex, units0[k], s0, s1, dt_years, i0[k], i1[k], smiles, smile_dynamics,
-                                          clock).items():
-            cols[name][k] = values
-        if revaluation:
-            shares = revaluation_shares(strike[k], cp[k], s0, s1, american[k], kind=kind[k], scheme=scheme,
-                                        group=pair)
-            for factor in FACTOR_NAMES:
-                cols[f"reval_{factor}"][k] = units0[k] * getattr(shares, factor)
-            del shares
-        del ex, prior_greeks, s0, s1  # a million rows of states, greeks and terms: freed before the next steps
-
-    expiring_option = (status == EXPIRED) & option
-    _explain_expiring(cols, np.flatnonzero(expiring_option), market0, market1, i0, i1, strike, cp, units0, price0,
-                      dt_years, revaluation, american, scheme)
-
     # Exposures at the prior state, for everything held on the prior date.
     if p.size:
         s0 = _state(market0, i0[p])
@@ -228,7 +202,35 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         one_day = float(basis.year_fraction(prior_as_of, basis.next_business_day(prior_as_of))[0])
         cols["theta_per_business_day"][p] = units0[p] * g0.theta_per_year * one_day
         del s0
-    del g0, exercised0, in_p  # the prior greeks of a million rows: freed before the columns below are made
+
+    k = np.flatnonzero(overnight)
+    if k.size:
+        kp = in_p[k]
+        prior_greeks = (Greeks(*(getattr(g0, name)[kp] for name in Greeks.__slots__)), exercised0[kp])
+    del g0, exercised0, in_p  # the prior greeks of a million rows: the overnight rows' copy is all that is used now
+    if k.size:
+        s0, s1 = _state(market0, i0[k]), _state(market1, i1[k])
+        pair = i0[k] * (len(market1.ids) + 1) + i1[k]  # one instrument on both dates: priced once (American)
+        ex = explain_overnight(strike[k], cp[k], units0[k], s0, s1, price0[k], price1[k], np.full(k.size, dt_years),
+                               american[k], scheme=scheme, group=pair, prior=prior_greeks, kind=kind[k])
+        crossed[k] = ex.crossed_boundary
+        for name in ("actual", *TAYLOR_TERMS, "explained", "residual", "model", "higher_order", "mark_gap"):
+            cols[f"pnl_{name}"][k] = getattr(ex, name)
+        for name, values in _vol_and_time(ex, units0[k], s0, s1, dt_years, i0[k], i1[k], smiles, smile_dynamics,
+                                          clock).items():
+            cols[name][k] = values
+        del ex, prior_greeks  # the terms and greeks of a million rows: freed before the revaluation's states
+        if revaluation:
+            shares = revaluation_shares(strike[k], cp[k], s0, s1, american[k], kind=kind[k], scheme=scheme,
+                                        group=pair)
+            for factor in FACTOR_NAMES:
+                cols[f"reval_{factor}"][k] = units0[k] * getattr(shares, factor)
+            del shares
+        del s0, s1  # a million rows of states: freed before the next steps
+
+    expiring_option = (status == EXPIRED) & option
+    _explain_expiring(cols, np.flatnonzero(expiring_option), market0, market1, i0, i1, strike, cp, units0, price0,
+                      dt_years, revaluation, american, scheme)
 
     # Decay expected to the next business day, from the run-date state of what is still held.
     h = np.flatnonzero(held1)
@@ -264,6 +266,8 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
                                           * (legs.fx_rate - np.nan_to_num(legs.fx_rate_prior)), 0.0)
     cols["pnl_total"] = (cols["pnl_actual"] + np.nan_to_num(cols["pnl_new_trade"]) + cols["pnl_expiry"]
                          + cols["pnl_amendment"] + cols["pnl_fx_translation"] + cols["pnl_cash"])
+
+    del units0, units1, trade_price1, settle_spot, intrinsic, fill_price, value0  # freed before the columns below
 
     late = trade_date_flags(run, legs, prior_as_of)
     moved_book = (status == CARRIED) & (legs.row1 >= 0) & (
