@@ -77,7 +77,28 @@ def _vol_and_time(ex: Explain, units: FloatArray, s0: MarketState, s1: MarketSta
         out.update(pnl_explained=explained, pnl_residual=ex.actual - explained, pnl_higher_order=ex.model - explained)
         vega_u, volga_u, vega, volga = t["vega_per_unit"], t["volga_per_unit"], t["vega"], t["volga"]
     if smiles is not None:
-        out.update(vol_columns(smiles, i0, i1, units, vega_u, volga_u, vega, volga, dynamics))
+        out.update(_vol_parts(smiles, i0, i1, units, vega_u, volga_u, vega, volga, dynamics))
+    return out
+
+
+VOL_PARTS_ROWS = 1 << 18  # rows whose smile parts are computed at once (each part of each row is its own)
+
+
+def _vol_parts(smiles: NightSmiles, i0: NDArray[np.intp], i1: NDArray[np.intp], units: FloatArray,
+               vega_u: FloatArray, volga_u: FloatArray, vega: FloatArray, volga: FloatArray,
+               dynamics: str) -> dict[str, FloatArray]:
+    """:func:`~attribution.smile_night.vol_columns` over blocks of :data:`VOL_PARTS_ROWS` rows: the same values,
+    without a dozen temporary arrays of every row at once (a million-position night: 100 MB less at its peak)."""
+    n = len(units)
+    if n <= VOL_PARTS_ROWS:
+        return vol_columns(smiles, i0, i1, units, vega_u, volga_u, vega, volga, dynamics)
+    out: dict[str, FloatArray] = {}
+    for lo in range(0, n, VOL_PARTS_ROWS):
+        rows = slice(lo, lo + VOL_PARTS_ROWS)
+        part = vol_columns(smiles, i0[rows], i1[rows], units[rows], vega_u[rows], volga_u[rows], vega[rows],
+                           volga[rows], dynamics)
+        for name, values in part.items():
+            out.setdefault(name, np.empty(n))[rows] = values
     return out
 
 

@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+import attribution.night as night_module
 from attribution.config import ConfigError, JobConfig, SmileSettings, load_job
 from attribution.engine import prepare_night
 from attribution.pricing import bsm_greeks, bsm_price
@@ -183,3 +184,19 @@ def test_smile_settings_are_read_from_the_job_file(tmp_path):
     assert load_job(job).smile == SmileSettings("sticky moneyness", 0.03)
     job.write_text("")
     assert dataclasses.asdict(load_job(job).smile) == {"dynamics": "sticky strike", "off_smile_vol": 0.02}
+
+
+@pytest.mark.parametrize("dynamics", ["sticky strike", "sticky moneyness"])
+def test_vol_parts_in_blocks_of_rows_are_those_of_every_row_at_once(tmp_path, monkeypatch, dynamics):
+    """The smile parts are computed a block of rows at a time (memory): each row's values are its own, so a night
+    split into blocks of 3 rows archives every vol column bit for bit as one block."""
+    root = _write(tmp_path, {PRIOR: 100.0, RUN: 97.0},
+                  {PRIOR: lambda i, k, t, s: _prior_smile(k, t, s),
+                   RUN: lambda i, k, t, s: _prior_smile(k, t, s) + 0.01 + 0.002 * (k - 100.0) / 10.0})
+    whole = _night(root, dynamics).positions
+    monkeypatch.setattr(night_module, "VOL_PARTS_ROWS", 3)
+    blocks = _night(root, dynamics).positions
+    assert len(whole) > 3 * 3
+    for column in (*PARTS, "pnl_vega", "pnl_volga", "pnl_smile_delta", "pnl_explained", "pnl_residual"):
+        np.testing.assert_array_equal(blocks[column].to_numpy(), whole[column].to_numpy(), err_msg=column)
+    assert np.abs(whole["pnl_vol_skew"]).max() > 0.0
