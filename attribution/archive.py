@@ -101,12 +101,15 @@ def connect(archive: Path, read_only: bool = False) -> duckdb.DuckDBPyConnection
     archive.parent.mkdir(parents=True, exist_ok=True)
     con = duckdb.connect(str(archive))
     try:
-        _refuse_foreign_tables(con, archive)
+        present = _present_columns(con)
+        _refuse_foreign_tables(present, archive)
         con.execute("BEGIN TRANSACTION")
         for table, columns in TABLES.items():
-            body = ", ".join(f'"{name}" {sql_type}' for name, sql_type in columns)
-            con.execute(f"CREATE TABLE IF NOT EXISTS {table} ({body})")
-            _add_missing_columns(con, table, columns)
+            if table not in present:
+                body = ", ".join(f'"{name}" {sql_type}' for name, sql_type in columns)
+                con.execute(f"CREATE TABLE IF NOT EXISTS {table} ({body})")
+            else:
+                _add_missing_columns(con, table, columns, present[table])
         con.execute("COMMIT")
         con.execute(SET_CHECKPOINT_THRESHOLD)
     except BaseException:
@@ -115,32 +118,39 @@ def connect(archive: Path, read_only: bool = False) -> duckdb.DuckDBPyConnection
     return con
 
 
-def _refuse_foreign_tables(con: duckdb.DuckDBPyConnection, archive: Path) -> None:
+def _present_columns(con: duckdb.DuckDBPyConnection) -> dict[str, list[str]]:
+    """The columns, in order, of each of the archive schema's tables the file holds (one catalogue read)."""
+    present: dict[str, list[str]] = {}
+    for table, column in con.execute(
+            "SELECT table_name, column_name FROM information_schema.columns WHERE table_schema = 'main' "
+            "AND table_name IN (SELECT unnest(?::VARCHAR[])) ORDER BY table_name, ordinal_position",
+            [list(TABLES)]).fetchall():
+        present.setdefault(table, []).append(column)
+    return present
+
+
+def _refuse_foreign_tables(present: dict[str, list[str]], archive: Path) -> None:
     """Stop before any change when a table of ours exists with other columns (a file of another program).
 
     An archive of this job holds, per table, the schema's first columns in order (an earlier version
-    has a prefix of them); anything else is not ours to alter.
+    has a prefix of them); anything else is not ours to alter. ``present``: see :func:`_present_columns`.
     """
     for table, columns in TABLES.items():
-        present = [r[0] for r in con.execute(
-            "SELECT column_name FROM information_schema.columns WHERE table_name = ? AND table_schema = 'main' "
-            "ORDER BY ordinal_position", [table]).fetchall()]
+        found = present.get(table, [])
         expected = [name for name, _ in columns]
-        if present and present != expected[: len(present)]:
+        if found and found != expected[: len(found)]:
             raise ArchiveFormatError(
                 f"{archive}: table {table} is not an archive table of this job (its columns begin "
-                f"{', '.join(present[:5])}); point --archive at another file")
+                f"{', '.join(found[:5])}); point --archive at another file")
 
 
-def _add_missing_columns(con: duckdb.DuckDBPyConnection, table: str, columns: tuple[tuple[str, str], ...]) -> None:
+def _add_missing_columns(con: duckdb.DuckDBPyConnection, table: str, columns: tuple[tuple[str, str], ...],
+                         present: list[str]) -> None:
     """Give an archive written by an earlier version the columns added since (NULL on its old rows).
 
     New columns only ever stand after the existing ones in :mod:`attribution.schema`, so appending
     them keeps the table's column order equal to the schema's and the positional insert right.
     """
-    present = {r[0] for r in con.execute(
-        "SELECT column_name FROM information_schema.columns WHERE table_name = ? AND table_schema = 'main'",
-        [table]).fetchall()}
     for name, sql_type in columns:
         if name not in present:
             column = f'"{name}" {sql_type}'
