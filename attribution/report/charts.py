@@ -9,6 +9,7 @@ the same everywhere.
 from __future__ import annotations
 
 import datetime as dt
+import functools
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
@@ -229,21 +230,32 @@ def waterfall(steps: Sequence[tuple[str, str, float | None, str]], total: tuple[
     domain = _domain([*ends, total_end])
     left, right, top = 168.0, width - 96.0, 22.0  # room for the longest label, 'Dividend / foreign rate (FX)'
     to_x = _scale(*domain, left, right)
-    rows = [(k, lab, v, note, ends[i], ends[i + 1], False) for i, (k, lab, v, note) in enumerate(steps)]
-    rows.append((key, label, total_value, "", 0.0, total_end, True))
+    # Each running end placed once (a step starts where the one before it ends; the total starts at 0.0, ends[0]).
+    xs = [to_x(e) for e in ends]
+    spans = list(zip(xs[:-1], xs[1:], strict=True)) + [(xs[0], to_x(total_end))]
+    values = [v for _, _, v, _ in steps] + [total_value]
+    texts = format_amounts(values)
+    text_ys = _row_text_ys(top, row_height, len(values))
     laid = []
-    for row, (k, lab, v, note, start, end, is_total) in enumerate(rows):
-        a, b = to_x(start), to_x(end)
-        falls = not is_missing(v) and float(v) < 0  # type: ignore[arg-type]
-        style = "bar-total" if is_total else ("bar-fall" if falls else "bar-rise")
-        y = top + row * row_height
-        laid.append(WaterfallStep(k, lab, v, format_amount(v), min(a, b), round(abs(b - a), 1), round(y + 3.0, 1),
-                                  round(y + row_height * 0.62, 1), style, is_total, note))
-    bottom = top + len(rows) * row_height
+    for row, ((k, lab, note), v, (a, b)) in enumerate(zip(
+            [(k, lab, note) for k, lab, _, note in steps] + [(key, label, "")], values, spans, strict=True)):
+        is_total = row == len(steps)
+        style = "bar-total" if is_total else ("bar-rise" if v is None or not float(v) < 0 else "bar-fall")
+        bar_y, text_y = text_ys[row]
+        laid.append(WaterfallStep(k, lab, v, texts[row], min(a, b), round(abs(b - a), 1), bar_y, text_y, style,
+                                  is_total, note))
+    bottom = top + len(values) * row_height
     ticks = tuple(Tick(to_x(t), format_compact(t)) for t in nice_ticks(*domain))
     grid = "".join(f"M{t.position} {top - 4.0}V{bottom:.1f}" for t in ticks)
-    return Waterfall(width, round(bottom + 8.0, 1), left, right, top, round(bottom, 1), to_x(0.0),
+    return Waterfall(width, round(bottom + 8.0, 1), left, right, top, round(bottom, 1), xs[0],
                      round(row_height * 0.66, 1), left - 8.0, width - 6.0, ticks, grid, tuple(laid))
+
+
+@functools.lru_cache(maxsize=16)
+def _row_text_ys(top: float, row_height: float, rows: int) -> tuple[tuple[float, float], ...]:
+    """(bar top, text baseline) of each waterfall row: the same on every chart of a layout, so worked out once."""
+    return tuple((round(top + row * row_height + 3.0, 1), round(top + row * row_height + row_height * 0.62, 1))
+                 for row in range(rows))
 
 
 @dataclass(frozen=True, slots=True)
