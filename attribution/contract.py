@@ -19,6 +19,7 @@ import pandas as pd
 
 from attribution.config import CheckSettings
 from attribution.exceptions_log import WARNING, ExceptionLog
+from attribution.keys import KeyCodes, blank_text
 from attribution.loading import RawNight
 
 
@@ -42,6 +43,8 @@ class CleanNight:
     activity: pd.DataFrame | None  # trade_activity rows (None without the file: the two-snapshot fallback)
     cash_flows: pd.DataFrame       # cash_flows rows (empty without the file)
     official: pd.Series            # official P&L per book (empty without the file)
+    # the clean positions' text columns as codes from reading (attribution.keys), row for row (empty without them)
+    position_keys: dict[str, KeyCodes] = dataclasses.field(default_factory=dict)
 
 
 Detail = str | Callable[[np.ndarray], object]
@@ -61,15 +64,7 @@ def _key(frame: pd.DataFrame, column: str, mask: np.ndarray) -> np.ndarray:
     return keys
 
 
-def _blank_text(text: np.ndarray) -> np.ndarray:
-    """Per non-null value: empty or only white space once read as text (trailing NUL characters
-    count as nothing, as they did when the values were converted to fixed-width numpy text).
-
-    One ``strip`` per distinct value: several times faster than converting a million ids to
-    fixed-width text for ``np.strings`` (which copies every one of them).
-    """
-    return np.fromiter((not (v if type(v) is str else str(v)).rstrip("\x00").strip() for v in text),
-                       dtype=bool, count=len(text))
+_blank_text = blank_text  # the per-value blank rule (see :func:`attribution.keys.blank_text`)
 
 
 def _blank(values: pd.Series) -> np.ndarray:
@@ -86,18 +81,25 @@ class _Codes:
 
     codes: np.ndarray    # per row, the index of its value in ``uniques``; -1 where null
     uniques: np.ndarray  # the distinct non-null values
+    keyed: KeyCodes | None = None  # the column's codes from reading (blank values tested on its Arrow text)
 
     @classmethod
     def of(cls, values: pd.Series) -> _Codes:
         codes, uniques = pd.factorize(values.to_numpy(dtype=object), use_na_sentinel=True)
         return cls(codes, np.asarray(uniques, dtype=object))
 
+    @classmethod
+    def read(cls, keyed: KeyCodes) -> _Codes:
+        """The codes the reader made (:func:`attribution.loading.read_night`): no second hash pass."""
+        return cls(keyed.codes, keyed.uniques, keyed)
+
     def blank(self) -> np.ndarray:
         """Per row: null, or a text of only white space."""
         null = self.codes < 0
         if not len(self.uniques):
             return null
-        return null | _blank_text(self.uniques)[np.where(null, 0, self.codes)]
+        per_value = _blank_text(self.uniques) if self.keyed is None else self.keyed.blank_values()
+        return null | per_value[np.where(null, 0, self.codes)]
 
     def per_row(self, per_value: np.ndarray, null: bool) -> np.ndarray:
         """A value per row from one per distinct value (``null`` where the row is null)."""
@@ -124,18 +126,30 @@ def shown(frame: pd.DataFrame, column: str) -> Callable[[np.ndarray], object]:
 class _Rules:
     """Applies masks to one file and records what they reject."""
 
-    def __init__(self, log: ExceptionLog, path: str, frame: pd.DataFrame, key_column: str) -> None:
+    def __init__(self, log: ExceptionLog, path: str, frame: pd.DataFrame, key_column: str,
+                 keys: dict[str, KeyCodes] | None = None) -> None:
+        """``keys``: the codes of the file's text columns from reading, over the rows of ``frame``."""
         self.log, self.path, self.frame, self.key_column = log, path, frame, key_column
         self.ok = np.ones(len(frame), dtype=bool)
         self.reasons = np.full(len(frame), "", dtype=object)
         self._codes: dict[str, _Codes | None] = {}
+        self._keys = keys or {}
 
     def _factorised(self, column: str) -> _Codes | None:
-        """The column's codes (computed once), or None for a column that is not text."""
+        """The column's codes (from reading, else computed once), or None for a column that is not text."""
         if column not in self._codes:
             values = self.frame[column]
-            self._codes[column] = _Codes.of(values) if values.dtype == object else None
+            keyed = self._keys.get(column)
+            if keyed is not None and len(keyed) == len(values):
+                self._codes[column] = _Codes.read(keyed)
+            else:
+                self._codes[column] = _Codes.of(values) if values.dtype == object else None
         return self._codes[column]
+
+    def clean_keys(self, column: str) -> KeyCodes | None:
+        """The codes from reading of the rows left in the clean table (None without them)."""
+        keyed = self._keys.get(column)
+        return None if keyed is None or len(keyed) != len(self.ok) else keyed.take(self.ok)
 
     def blank(self, column: str) -> np.ndarray:
         """Per row: null, or a text of only white space."""
@@ -202,10 +216,11 @@ class _Rules:
         return self.frame[self.ok]
 
 
-def _positions(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> tuple[pd.DataFrame, pd.DataFrame]:
+def _positions(raw: RawNight, log: ExceptionLog,
+               checks: CheckSettings) -> tuple[pd.DataFrame, pd.DataFrame, dict[str, KeyCodes]]:
     file = "positions.parquet"
     frame = raw.tables[file]
-    rules = _Rules(log, raw.path(file), frame, "trade_id")
+    rules = _Rules(log, raw.path(file), frame, "trade_id", raw.keys.get(file))
     rules.required("trade_id", "book", "instrument_id")
     rules.unique("trade_id")
     rules.finite("quantity")
@@ -218,7 +233,8 @@ def _positions(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> tuple
     keyed = ~rules.ok & frame["trade_id"].notna().to_numpy()
     rejected = frame.loc[keyed, ["trade_id", "book"]].copy()
     rejected["rule"] = rules.reasons[keyed]
-    return rules.clean().reset_index(drop=True), rejected
+    keys = {c: k for c in ("trade_id", "book", "instrument_id") if (k := rules.clean_keys(c)) is not None}
+    return rules.clean().reset_index(drop=True), rejected, keys
 
 
 KINDS = ("option", "underlying", "future", "forward")
@@ -234,7 +250,7 @@ TERM_KINDS: dict[str, tuple[str, ...]] = {
 def _instruments(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
     file = "instruments.parquet"
     frame = raw.tables[file]
-    rules = _Rules(log, raw.path(file), frame, "instrument_id")
+    rules = _Rules(log, raw.path(file), frame, "instrument_id", raw.keys.get(file))
     kind = frame["kind"].where(frame["kind"].notna(), "option")  # null or absent: an option (version 1)
     # each row's kind as its place in KINDS (-1: not a kind), so every rule below is an integer mask
     kind_code = pd.Index(KINDS, dtype=object).get_indexer(pd.Index(kind.to_numpy(dtype=object), dtype=object))
@@ -272,7 +288,7 @@ def _future_marks(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
     frame = raw.tables.get(file)
     if frame is None:
         return pd.DataFrame({"price": pd.Series(dtype=float)}, index=pd.Index([], name="instrument_id", dtype=object))
-    rules = _Rules(log, raw.path(file), frame, "instrument_id")
+    rules = _Rules(log, raw.path(file), frame, "instrument_id", raw.keys.get(file))
     rules.required("instrument_id")
     rules.unique("instrument_id")
     rules.finite("price")
@@ -290,7 +306,7 @@ def activity_rows(raw: RawNight, log: ExceptionLog) -> pd.DataFrame | None:
     frame = raw.tables.get(file)
     if frame is None:
         return None
-    rules = _Rules(log, raw.path(file), frame, "activity_id")
+    rules = _Rules(log, raw.path(file), frame, "activity_id", raw.keys.get(file))
     rules.required("activity_id", "trade_id", "kind")
     rules.unique("activity_id")
     rules.reject(~rules.isin("kind", ACTIVITY_KINDS), "activity kind unknown",
@@ -309,7 +325,7 @@ def _cash_flows(raw: RawNight, log: ExceptionLog) -> pd.DataFrame:
     if frame is None:
         return pd.DataFrame({c: pd.Series(dtype=object if c != "amount" else float)
                              for c in ("flow_id", "book", "trade_id", "currency", "amount", "kind")})
-    rules = _Rules(log, raw.path(file), frame, "flow_id")
+    rules = _Rules(log, raw.path(file), frame, "flow_id", raw.keys.get(file))
     rules.required("flow_id", "book", "currency", "kind")
     rules.unique("flow_id")
     rules.finite("amount")
@@ -324,7 +340,7 @@ def _official_pnl(raw: RawNight, log: ExceptionLog) -> pd.Series:
     frame = raw.tables.get(file)
     if frame is None:
         return pd.Series(dtype=float)
-    rules = _Rules(log, raw.path(file), frame, "book")
+    rules = _Rules(log, raw.path(file), frame, "book", raw.keys.get(file))
     rules.required("book")
     rules.unique("book")
     rules.finite("pnl")
@@ -334,7 +350,7 @@ def _official_pnl(raw: RawNight, log: ExceptionLog) -> pd.Series:
 def _marks(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.DataFrame:
     file = "option_marks.parquet"
     frame = raw.tables[file]
-    rules = _Rules(log, raw.path(file), frame, "instrument_id")
+    rules = _Rules(log, raw.path(file), frame, "instrument_id", raw.keys.get(file))
     rules.required("instrument_id")
     rules.unique("instrument_id")
     rules.finite("price")
@@ -353,7 +369,7 @@ def _marks(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.DataFr
 def _underlyings(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.DataFrame:
     file = "underlying_marks.parquet"
     frame = raw.tables[file]
-    rules = _Rules(log, raw.path(file), frame, "underlying")
+    rules = _Rules(log, raw.path(file), frame, "underlying", raw.keys.get(file))
     rules.required("underlying")
     rules.unique("underlying")
     rules.finite("spot", "dividend_yield")
@@ -376,7 +392,7 @@ def _curves(raw: RawNight, log: ExceptionLog, checks: CheckSettings) -> pd.DataF
     named = ~pd.isna(currency) & ~np.isnan(tenor_years)
     point[named] = [f"{c} @ {t + 0.0}y" for c, t in zip(currency[named], tenor_years[named], strict=True)]
     frame = source.assign(point=pd.Series(point, index=source.index, dtype=object))
-    rules = _Rules(log, raw.path(file), frame, "point")
+    rules = _Rules(log, raw.path(file), frame, "point", raw.keys.get(file))
     rules.required("currency")
     rules.finite("tenor_years", "zero_rate")
     rules.reject(tenor_years < 0, "tenor_years must be >= 0", shown(frame, "tenor_years"))
@@ -400,7 +416,7 @@ def _fx(raw: RawNight, log: ExceptionLog, reporting_currency: str) -> pd.Series:
     frame = raw.tables.get(file)
     if frame is None:
         return pd.Series({reporting_currency: 1.0}, dtype=float)
-    rules = _Rules(log, raw.path(file), frame, "currency")
+    rules = _Rules(log, raw.path(file), frame, "currency", raw.keys.get(file))
     rules.required("currency")
     rules.unique("currency")
     rules.finite("rate")
@@ -420,7 +436,7 @@ def _desks(raw: RawNight, log: ExceptionLog) -> pd.Series:
     frame = raw.tables.get(file)
     if frame is None:
         return pd.Series(dtype=object)
-    rules = _Rules(log, raw.path(file), frame, "book")
+    rules = _Rules(log, raw.path(file), frame, "book", raw.keys.get(file))
     rules.required("book", "desk")
     rules.unique("book")
     return rules.clean().set_index("book")["desk"].astype(object)
@@ -478,7 +494,7 @@ def _dated_rules(raw: RawNight, log: ExceptionLog, file: str, value: str) -> tup
     if frame is None:
         return None
     frame = frame.assign(key=_dated_key(frame))
-    rules = _Rules(log, raw.path(file), frame, "key")
+    rules = _Rules(log, raw.path(file), frame, "key", raw.keys.get(file))
     rules.required("underlying", "ex_date")
     rules.finite(value)
     rules.positive(value)
@@ -512,7 +528,7 @@ def clean_holdings(raw: RawNight, log: ExceptionLog, checks: CheckSettings, repo
     """The row rules of the files that describe the date's holdings and market (every file but the
     run date's events, which are left empty): the same whether the date is a night's prior or run date,
     so a backfill checks them once per date (:mod:`attribution.date_cache`)."""
-    positions, rejected = _positions(raw, log, checks)
+    positions, rejected, position_keys = _positions(raw, log, checks)
     dividends, broken_schedules = _dividends(raw, log)
     instruments = _instruments(raw, log)
     marks = _marks(raw, log, checks)
@@ -527,7 +543,7 @@ def clean_holdings(raw: RawNight, log: ExceptionLog, checks: CheckSettings, repo
                       curves=curves, fx=fx, rejected_trades=rejected, desks=desks, dividends=dividends,
                       broken_schedules=broken_schedules, corporate_actions=corporate, future_marks=future_marks,
                       activity=activity_rows(none, log), cash_flows=_cash_flows(none, log),
-                      official=_official_pnl(none, log))
+                      official=_official_pnl(none, log), position_keys=position_keys)
 
 
 def with_events(held: CleanNight, log: ExceptionLog) -> CleanNight:

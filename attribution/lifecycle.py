@@ -25,6 +25,7 @@ import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 
+from attribution import keys
 from attribution.contract import CleanNight
 from attribution.exceptions_log import ExceptionLog
 from attribution.market import InstrumentMarket, take
@@ -124,6 +125,15 @@ def match_keys(left: NDArray[np.object_], right: NDArray[np.object_]) -> tuple[N
     return where_right[left_codes], where_left[right_codes]
 
 
+def _locate(market: InstrumentMarket, night: CleanNight, instrument_ids: NDArray[np.object_]) -> NDArray[np.intp]:
+    """Index in ``market`` of the instrument of each of ``night``'s clean positions (``instrument_ids``), -1
+    where absent: by the codes from reading when the night has them (each distinct id looked up once)."""
+    coded = night.position_keys.get("instrument_id")
+    if coded is None or len(coded) != len(instrument_ids):
+        return market.locate(instrument_ids)
+    return market.locate_codes(coded)
+
+
 def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, market1: InstrumentMarket,
                log: ExceptionLog) -> Legs:
     """Match trades across the two dates, run each leg's checks, and return the accepted ones."""
@@ -131,7 +141,11 @@ def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, ma
     file0, file1 = prior.raw.path("positions.parquet"), run.raw.path("positions.parquet")
     run_day = np.datetime64(run.raw.as_of, "D")
     ids0, ids1 = p0["trade_id"].to_numpy(dtype=object), p1["trade_id"].to_numpy(dtype=object)
-    j1, j0 = match_keys(ids0, ids1)               # prior row -> run row, run row -> prior row
+    coded = [night.position_keys.get("trade_id") for night in (prior, run)]
+    if coded[0] is not None and coded[1] is not None and (len(coded[0]), len(coded[1])) == (len(ids0), len(ids1)):
+        j1, j0 = keys.match(coded[0], coded[1])  # prior row -> run row, run row -> prior row
+    else:
+        j1, j0 = match_keys(ids0, ids1)
     ok0 = np.ones(len(p0), dtype=bool)
     ok1 = np.ones(len(p1), dtype=bool)
 
@@ -155,9 +169,9 @@ def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, ma
     ok0 &= ~changed
     ok1[j1[changed]] = False
 
-    i0 = market0.locate(inst_p0)
-    i1_of_p1 = market1.locate(inst_p1)
-    i1_of_p0 = market1.locate(inst_p0)
+    i0 = _locate(market0, prior, inst_p0)
+    i1_of_p1 = _locate(market1, run, inst_p1)
+    i1_of_p0 = _locate(market1, prior, inst_p0)
     expiry0 = take(market0.expiry, i0, np.datetime64("NaT"))
     expired = (i0 >= 0) & (expiry0 <= run_day)
 
@@ -165,7 +179,7 @@ def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, ma
     # rejected (the instrument gets a row of its own); a carried trade gets one row, on the prior date.
     moved = _terms_changed(market0, market1, run.raw.path("instruments.parquet"), log)
     moved0 = ok0 & take(moved, i0, False)
-    moved1 = ok1 & (j0 < 0) & take(moved, market0.locate(inst_p1), False)
+    moved1 = ok1 & (j0 < 0) & take(moved, _locate(market0, run, inst_p1), False)
     for file, ids, inst, bad in ((file0, ids0, inst_p0, moved0), (file1, ids1, inst_p1, moved1)):  # two dates
         detail = np.full(len(inst), "", dtype=object)  # texts for the rejected rows only
         detail[bad] = ("the terms of " + inst[bad].astype(str)

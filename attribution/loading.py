@@ -10,7 +10,7 @@ from __future__ import annotations
 import datetime as dt
 import hashlib
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -20,6 +20,7 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from attribution.errors import JobFailure
+from attribution.keys import KeyCodes, encode
 
 FOLDER_PATTERN = re.compile(r"^as_of=(\d{4}-\d{2}-\d{2})$")
 
@@ -82,6 +83,9 @@ class RawNight:
     folder: Path
     tables: dict[str, pd.DataFrame]
     hashes: dict[str, str]
+    # per file, the codes of its text columns over the rows of its frame (:mod:`attribution.keys`); a file
+    # left out (a frame built by hand) is factorised by the row rules themselves
+    keys: dict[str, dict[str, KeyCodes]] = field(default_factory=dict)
 
     def path(self, file: str) -> str:
         """The file's path as shown in messages and exception rows."""
@@ -139,7 +143,8 @@ def _cast(column: pa.ChunkedArray, kind: str) -> pa.ChunkedArray:
     return column.cast(target)
 
 
-# Text columns whose values are (nearly) all distinct: a dictionary would only add a hash pass.
+# Text columns whose values are (nearly) all distinct: read plain and hashed once by :func:`encode` (a dictionary
+# read would hash them a second time).
 DISTINCT_COLUMNS = frozenset({"trade_id", "activity_id", "flow_id"})
 
 
@@ -151,22 +156,12 @@ def _dictionary_columns(schema: pa.Schema, columns: tuple[tuple[str, str], ...])
                                           or pa.types.is_large_string(schema.field(name).type))]
 
 
-def _text_values(column: pa.ChunkedArray) -> np.ndarray:
-    """A text column as an object array of ``str`` (None where null), one object per distinct value
-    when the column is dictionary-encoded."""
-    if not pa.types.is_dictionary(column.type):
-        return _cast(column, STRING).to_numpy(zero_copy_only=False)
-    parts = []
-    for chunk in column.chunks:
-        words = chunk.dictionary.cast(pa.string()).to_numpy(zero_copy_only=False)
-        codes = chunk.indices.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.intp, copy=False)
-        parts.append(np.take(np.append(words, None).astype(object), codes))  # code -1 takes the None at the end
-    return np.concatenate(parts) if parts else np.full(0, None, dtype=object)
-
-
 def _to_frame(path: Path, table: pa.Table, columns: tuple[tuple[str, str], ...],
-              index: pd.Index | None = None) -> pd.DataFrame:
+              index: pd.Index | None = None) -> tuple[pd.DataFrame, dict[str, KeyCodes]]:
+    """The table as a frame of the contract's columns, and each text column's codes (:mod:`attribution.keys`):
+    a text column is hashed once here, and its values are one Python string per distinct value."""
     data: dict[str, pd.Series] = {}
+    keys: dict[str, KeyCodes] = {}
     rows = pd.RangeIndex(table.num_rows) if index is None else index
     for name, kind in columns:
         if name not in table.column_names:  # an optional column the file leaves out
@@ -175,11 +170,15 @@ def _to_frame(path: Path, table: pa.Table, columns: tuple[tuple[str, str], ...],
             continue
         try:
             column = table.column(name)
-            values = _text_values(column) if kind == STRING else _cast(column, kind).to_numpy(zero_copy_only=False)
+            if kind == STRING:
+                keys[name] = encode(column)
+                values = keys[name].per_row()
+            else:
+                values = _cast(column, kind).to_numpy(zero_copy_only=False)
         except pa.ArrowException as exc:
             raise InputFileError(f"{path}: column '{name}' cannot be read as {kind} ({exc})") from exc
         data[name] = pd.Series(values, index=rows, dtype=object if kind == STRING else None, copy=False)
-    return pd.DataFrame(data, index=rows, copy=False)
+    return pd.DataFrame(data, index=rows, copy=False), keys
 
 
 def blank_books(book: pa.Array | pa.ChunkedArray) -> np.ndarray:
@@ -203,6 +202,17 @@ def read_file(folder: Path, file: str, books: frozenset[str] | None = None,
               keep_null_books: bool = True) -> tuple[pd.DataFrame | None, str]:
     """One file as a frame (None when an optional file is absent) and its SHA-256 (of the whole file).
 
+    See :func:`read_keyed_file` (which also gives the codes of its text columns).
+    """
+    frame, _, digest = read_keyed_file(folder, file, books, keep_null_books)
+    return frame, digest
+
+
+def read_keyed_file(folder: Path, file: str, books: frozenset[str] | None = None, keep_null_books: bool = True,
+                    ) -> tuple[pd.DataFrame | None, dict[str, KeyCodes], str]:
+    """One file as a frame (None when an optional file is absent), the codes of its text columns
+    (:mod:`attribution.keys`) and its SHA-256 (of the whole file).
+
     ``books`` (positions.parquet only): keep only the rows of these books, plus those with a null
     or blank book when ``keep_null_books``; the frame's index is then each row's number in the
     file, so messages name the same row as a whole read would. None reads every row.
@@ -211,7 +221,7 @@ def read_file(folder: Path, file: str, books: frozenset[str] | None = None,
     columns = FILE_COLUMNS[file]
     if not path.exists():
         if file in OPTIONAL_FILES:
-            return None, ""
+            return None, {}, ""
         raise InputFileError(f"{path}: required file is missing")
     try:
         raw = path.read_bytes()
@@ -234,13 +244,13 @@ def read_file(folder: Path, file: str, books: frozenset[str] | None = None,
     columns = columns + OPTIONAL_COLUMNS.get(file, ())
     digest = hashlib.sha256(raw).hexdigest()
     if books is None or file != "positions.parquet":
-        return _to_frame(path, table, columns), digest
+        return (*_to_frame(path, table, columns), digest)
     try:
         rows = _book_rows(table, books, keep_null_books)
     except pa.ArrowException:
         _to_frame(path, table, columns)  # raises the error a whole read gives, naming the column
         raise
-    return _to_frame(path, table.take(pa.array(rows, type=pa.int64())), columns, pd.Index(rows)), digest
+    return (*_to_frame(path, table.take(pa.array(rows, type=pa.int64())), columns, pd.Index(rows)), digest)
 
 
 def folder_stamp(data_root: Path, as_of: dt.date) -> tuple[tuple[str, int, int, int], ...]:
@@ -270,9 +280,11 @@ def read_night(data_root: Path, as_of: dt.date, books: frozenset[str] | None = N
         raise InputFileError(f"{folder}: folder for {as_of} not found")
     tables: dict[str, pd.DataFrame] = {}
     hashes: dict[str, str] = {}
+    keys: dict[str, dict[str, KeyCodes]] = {}
     for file in FILE_COLUMNS:
-        frame, digest = read_file(folder, file, books, keep_null_books)
+        frame, codes, digest = read_keyed_file(folder, file, books, keep_null_books)
         if frame is not None:
             tables[file] = frame
             hashes[file] = digest
-    return RawNight(as_of, folder, tables, hashes)
+            keys[file] = codes
+    return RawNight(as_of, folder, tables, hashes, keys)

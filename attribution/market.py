@@ -25,6 +25,7 @@ from attribution.curves import zero_rates
 from attribution.dividends import schedule_pv
 from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.implied_vol import implied_vol
+from attribution.keys import KeyCodes
 from attribution.pricing import no_arbitrage_bounds, price_unchecked
 from attribution.timebasis import TimeBasis
 from attribution.valuation import FORWARD, FUTURE, OPTION, UNDERLYING, MarketState, kind_codes, value
@@ -100,6 +101,11 @@ class InstrumentMarket:
         # the ids passed as an object index: a bare object array would first be inferred as pandas' string type
         found = self.ids.get_indexer(pd.Index(distinct, dtype=object, copy=False))
         return found[codes].astype(np.intp, copy=False)
+
+    def locate_codes(self, coded: KeyCodes) -> NDArray[np.intp]:
+        """:meth:`locate` of a column already coded (:mod:`attribution.keys`): only its distinct ids looked up."""
+        found = self.ids.get_indexer(pd.Index(coded.uniques, dtype=object, copy=False))
+        return np.append(found, -1).astype(np.intp, copy=False)[coded.codes]
 
 
 def take(values: NDArray[np.generic], index: NDArray[np.intp], fill: object) -> NDArray[np.generic]:

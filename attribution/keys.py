@@ -1,0 +1,115 @@
+"""Text keys as integer codes: each key column hashed once, by Arrow, where it is read.
+
+A key column (trade_id, book, instrument_id, ...) becomes :class:`KeyCodes`: per row the place of
+its value among the column's distinct values (-1 where null), and those distinct values once, as
+Arrow text and as Python strings. The row rules of :mod:`attribution.contract` (null, blank,
+duplicate, one of a list) and the matching of the two dates' trades (:mod:`attribution.lifecycle`)
+then work on the integer codes and test each distinct value once; no later step hashes the
+millions of trade ids again as Python objects (Arrow hashes their bytes several times faster).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+from numpy.typing import NDArray
+
+from attribution.arrays import BoolArray, IntArray, ObjectArray
+
+# A text whose first character is a printable ASCII character other than the space is surely not blank
+# (``str.strip`` removes only white space, the trailing-NUL rule only NULs): tested on the whole dictionary
+# by Arrow. Any other value (empty, or starting with white space, a control or a non-ASCII character) is
+# tested by Python's own rule below: exactly the rule of the row checks, on the few values that need it.
+_SURELY_NOT_BLANK = "^[!-~]"
+
+
+def blank_text(text: ObjectArray) -> BoolArray:
+    """Per non-null value: empty or only white space once read as text (trailing NUL characters
+    count as nothing, as they did when the values were converted to fixed-width numpy text)."""
+    return np.fromiter((not (v if type(v) is str else str(v)).rstrip("\x00").strip() for v in text),
+                       dtype=bool, count=len(text))
+
+
+@dataclass(frozen=True, slots=True)
+class KeyCodes:
+    """A text column as integer codes over its distinct values."""
+
+    codes: NDArray[np.int32]  # per row, the index of its value in ``values``; -1 where null
+    values: pa.Array       # the distinct non-null values (Arrow text), in order of first appearance
+    uniques: ObjectArray   # the same as Python strings
+
+    def __len__(self) -> int:
+        return len(self.codes)
+
+    def per_row(self) -> ObjectArray:
+        """The column as an object array of ``str`` (None where null): one object per distinct value."""
+        return np.append(self.uniques, None).astype(object, copy=False)[self.codes]
+
+    def blank_values(self) -> BoolArray:
+        """Per distinct value: empty or only white space (see :func:`blank_text`)."""
+        blank = np.zeros(len(self.uniques), dtype=bool)
+        if not len(blank):
+            return blank
+        surely = pc.match_substring_regex(self.values, _SURELY_NOT_BLANK)
+        check = np.flatnonzero(~np.asarray(surely.to_numpy(zero_copy_only=False), dtype=bool))
+        if check.size:
+            blank[check] = blank_text(self.uniques[check])
+        return blank
+
+    def take(self, rows: IntArray | BoolArray) -> KeyCodes:
+        """The codes of some rows (a mask or row numbers), over the same distinct values."""
+        return KeyCodes(self.codes[rows], self.values, self.uniques)
+
+
+def encode(column: pa.ChunkedArray | pa.Array) -> KeyCodes:
+    """One hash pass (Arrow's) over a text column, plain or dictionary-encoded, of any chunking.
+
+    A dictionary-encoded column has its (short) dictionaries encoded again, so the distinct values
+    are distinct even where a file's dictionary repeats a value or its row groups have dictionaries
+    of their own.
+    """
+    chunks = column.chunks if isinstance(column, pa.ChunkedArray) else [column]
+    if chunks and pa.types.is_dictionary(chunks[0].type):
+        words = pa.concat_arrays([c.dictionary.cast(pa.string()) for c in chunks])
+        encoded = words.dictionary_encode()
+        remap = np.append(encoded.indices.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int32), -1)
+        parts, start = [], 0
+        for chunk in chunks:
+            local = chunk.indices.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64, copy=False)
+            parts.append(remap[np.where(local < 0, -1, local + start)])
+            start += len(chunk.dictionary)
+        codes = np.concatenate(parts).astype(np.int32, copy=False)
+        values = encoded.dictionary
+    else:
+        text = pa.concat_arrays([c.cast(pa.string()) for c in chunks]) if chunks else pa.array([], pa.string())
+        encoded = text.dictionary_encode()
+        codes = encoded.indices.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int32, copy=False)
+        values = encoded.dictionary
+    uniques = values.to_numpy(zero_copy_only=False).astype(object, copy=False)
+    return KeyCodes(codes, values, uniques)
+
+
+def lookup(values: pa.Array, among: pa.Array) -> IntArray:
+    """The place of each of ``values`` among the distinct texts ``among`` (-1 where absent)."""
+    found = pc.index_in(values, value_set=among)
+    return found.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.intp, copy=False)
+
+
+def match(left: KeyCodes, right: KeyCodes) -> tuple[IntArray, IntArray]:
+    """For keys unique and non-null on each side: the row of each left key on the right (-1 if absent), and back.
+
+    The two sides' distinct values are matched once (Arrow); the rows follow by integer look-ups.
+    """
+    at = lookup(right.values, left.values)  # each right value's place among the left values
+    row_of_left = np.full(len(left.values), -1, dtype=np.intp)
+    row_of_left[left.codes] = np.arange(len(left.codes), dtype=np.intp)
+    row_of_right = np.full(len(right.values), -1, dtype=np.intp)
+    row_of_right[right.codes] = np.arange(len(right.codes), dtype=np.intp)
+    right_of_left = np.full(len(left.values) + 1, -1, dtype=np.intp)  # the last slot: a value on no side
+    found = np.flatnonzero(at >= 0)
+    right_of_left[at[found]] = row_of_right[found]
+    left_rows = np.append(row_of_left, -1)[at[right.codes]]
+    return right_of_left[left.codes], left_rows
