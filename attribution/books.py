@@ -12,12 +12,15 @@ import datetime as dt
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from attribution.activity import POSITION_BREAK
 from attribution.config import JobConfig
 from attribution.contract import NULL_KEY
 from attribution.controls import BREACH, WATCH, book_states, position_states
 from attribution.exceptions_log import REJECTED, WARNING
+from attribution.keys import NightTrades
 from attribution.lifecycle import STATUSES
 from attribution.loading import RawNight
 from attribution.market import InstrumentMarket
@@ -132,9 +135,23 @@ def rejected_size(rejected: pd.DataFrame, raw0: RawNight, market0: InstrumentMar
     return sized.groupby("book", as_index=False, sort=True)[columns].sum()
 
 
-def conservation(raw0: RawNight, raw1: RawNight, archived: pd.Series,
-                  rejected: pd.DataFrame) -> tuple[int, tuple[str, ...]]:
-    """Positions in (distinct trades over both dates, plus keyless rows) and any unaccounted."""
+def conservation(raw0: RawNight, raw1: RawNight, archived: pd.Series, rejected: pd.DataFrame,
+                 trades: NightTrades | None = None) -> tuple[int, tuple[str, ...]]:
+    """Positions in (distinct trades over both dates, plus keyless rows) and any unaccounted.
+
+    ``trades``: the two files' trade ids as read, matched once (:class:`attribution.keys.NightTrades`): the
+    distinct ids are then its values, and each is looked for among the accounted ones by Arrow."""
+    if trades is not None:
+        accounted = np.concatenate([archived.to_numpy(dtype=object), rejected["position"].to_numpy(dtype=object)])
+        try:
+            accounted_text = pa.array(accounted, type=pa.string(), from_pandas=True)
+        except (pa.ArrowInvalid, pa.ArrowTypeError):  # a value that is not text: compared as pandas compares it
+            accounted_text = None
+        if accounted_text is not None:
+            universe = trades.universe()
+            found = pc.is_in(universe, value_set=accounted_text).to_numpy(zero_copy_only=False)
+            missing = universe.filter(pa.array(~np.asarray(found, dtype=bool))).to_numpy(zero_copy_only=False)
+            return len(universe) + trades.nulls(), tuple(np.sort(missing.astype(object))[:20].tolist())
     ids = []
     keyless = 0
     for raw in (raw0, raw1):

@@ -60,6 +60,7 @@ from attribution.date_cache import DateCache
 from attribution.dividends import going_ex, instrument_pairs, schedule_frame
 from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
 from attribution.exceptions_log import WARNING, ExceptionLog
+from attribution.keys import NightTrades
 from attribution.lifecycle import Legs, match_legs
 from attribution.loading import folder_for, folder_stamp, prior_date, read_night
 from attribution.mark_roll import roll_dates, roll_marks
@@ -260,7 +261,8 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     market1 = _market(config, basis, clean1, terms1, log, shared)
     stale = flag_stale_marks(market0, market1, config.checks.stale_spot_move,
                              raw1.path("option_marks.parquet"), log)
-    legs = match_legs(clean0, clean1, market0, market1, log)
+    trades = NightTrades.of(*(raw.keys.get("positions.parquet", {}).get("trade_id") for raw in (raw0, raw1)))
+    legs = match_legs(clean0, clean1, market0, market1, log, trades)
     legs, activity = _trade_activity(legs, clean0, clean1, market0, market1, log, books is None)
     clock = variance_clock(basis, config.vol_time, prior_as_of, as_of, market0.expiry, market0.tau_years,
                            market1.expiry, market1.tau_years)
@@ -289,7 +291,7 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
                        rejected_size(rejected, raw0, market0, clean0.fx))
     frame, exceptions = _official(frame, exceptions, clean1, config, books)
     books = frame
-    positions_in, missing = conservation(raw0, raw1, positions["trade_id"], rejected)
+    positions_in, missing = conservation(raw0, raw1, positions["trade_id"], rejected, trades)
     watch.lap("controls")
     hashes = {raw.path(f): h for raw in (raw0, raw1) for f, h in raw.hashes.items()}
     return PreparedNight(as_of, prior_as_of, positions, books, exceptions, hashes, positions_in, len(rejected),

@@ -83,6 +83,11 @@ def encode(column: pa.ChunkedArray | pa.Array) -> KeyCodes:
             start += len(chunk.dictionary)
         codes = np.concatenate(parts).astype(np.int32, copy=False)
         values = encoded.dictionary
+        used = np.bincount(codes[codes >= 0], minlength=len(values)) > 0
+        if not used.all():  # a dictionary value no row holds is no value of the column
+            renumber = np.append(np.cumsum(used) - 1, -1).astype(np.int32)
+            codes = renumber[codes]
+            values = values.filter(pa.array(used))
     else:
         text = pa.concat_arrays([c.cast(pa.string()) for c in chunks]) if chunks else pa.array([], pa.string())
         encoded = text.dictionary_encode()
@@ -98,12 +103,14 @@ def lookup(values: pa.Array, among: pa.Array) -> IntArray:
     return found.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.intp, copy=False)
 
 
-def match(left: KeyCodes, right: KeyCodes) -> tuple[IntArray, IntArray]:
+def match(left: KeyCodes, right: KeyCodes, at: IntArray | None = None) -> tuple[IntArray, IntArray]:
     """For keys unique and non-null on each side: the row of each left key on the right (-1 if absent), and back.
 
-    The two sides' distinct values are matched once (Arrow); the rows follow by integer look-ups.
+    The two sides' distinct values are matched once (Arrow; ``at``: that match when already made, each right
+    value's place among the left values); the rows follow by integer look-ups.
     """
-    at = lookup(right.values, left.values)  # each right value's place among the left values
+    if at is None:
+        at = lookup(right.values, left.values)
     row_of_left = np.full(len(left.values), -1, dtype=np.intp)
     row_of_left[left.codes] = np.arange(len(left.codes), dtype=np.intp)
     row_of_right = np.full(len(right.values), -1, dtype=np.intp)
@@ -113,3 +120,33 @@ def match(left: KeyCodes, right: KeyCodes) -> tuple[IntArray, IntArray]:
     right_of_left[at[found]] = row_of_right[found]
     left_rows = np.append(row_of_left, -1)[at[right.codes]]
     return right_of_left[left.codes], left_rows
+
+
+@dataclass(frozen=True, slots=True)
+class NightTrades:
+    """The trade ids of a night's two positions files as read (every row, before the row rules), matched once:
+    the trades' matching (:mod:`attribution.lifecycle`) and the conservation count (:mod:`attribution.books`)
+    share the one hash pass over the two dates' distinct ids."""
+
+    prior: KeyCodes
+    run: KeyCodes
+    run_in_prior: IntArray  # each distinct run-date id's place among the prior date's (-1: not there)
+
+    @classmethod
+    def of(cls, prior: KeyCodes | None, run: KeyCodes | None) -> NightTrades | None:
+        """None unless both dates' trade ids were coded where read."""
+        if prior is None or run is None:
+            return None
+        return cls(prior, run, lookup(run.values, prior.values))
+
+    def universe(self) -> pa.Array:
+        """The distinct non-null trade ids over both files."""
+        return pa.concat_arrays([self.prior.values, self.run.values.filter(pa.array(self.run_in_prior < 0))])
+
+    def nulls(self) -> int:
+        """Rows without a trade_id, over both files."""
+        return int((self.prior.codes < 0).sum() + (self.run.codes < 0).sum())
+
+    def matches(self, left: KeyCodes, right: KeyCodes) -> bool:
+        """Whether ``left`` and ``right`` (codes of some rows of the prior and run files) use this night's values."""
+        return left.values is self.prior.values and right.values is self.run.values

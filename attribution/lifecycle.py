@@ -135,15 +135,18 @@ def _locate(market: InstrumentMarket, night: CleanNight, instrument_ids: NDArray
 
 
 def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, market1: InstrumentMarket,
-               log: ExceptionLog) -> Legs:
-    """Match trades across the two dates, run each leg's checks, and return the accepted ones."""
+               log: ExceptionLog, trades: keys.NightTrades | None = None) -> Legs:
+    """Match trades across the two dates, run each leg's checks, and return the accepted ones.
+
+    ``trades``: the two files' trade ids already matched (:class:`attribution.keys.NightTrades`), if done."""
     p0, p1 = prior.positions, run.positions
     file0, file1 = prior.raw.path("positions.parquet"), run.raw.path("positions.parquet")
     run_day = np.datetime64(run.raw.as_of, "D")
     ids0, ids1 = p0["trade_id"].to_numpy(dtype=object), p1["trade_id"].to_numpy(dtype=object)
     coded = [night.position_keys.get("trade_id") for night in (prior, run)]
     if coded[0] is not None and coded[1] is not None and (len(coded[0]), len(coded[1])) == (len(ids0), len(ids1)):
-        j1, j0 = keys.match(coded[0], coded[1])  # prior row -> run row, run row -> prior row
+        at = trades.run_in_prior if trades is not None and trades.matches(coded[0], coded[1]) else None
+        j1, j0 = keys.match(coded[0], coded[1], at)  # prior row -> run row, run row -> prior row
     else:
         j1, j0 = match_keys(ids0, ids1)
     ok0 = np.ones(len(p0), dtype=bool)

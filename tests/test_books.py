@@ -11,6 +11,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import pytest
 
 import attribution.books as books_module
@@ -25,6 +26,7 @@ from attribution.books import (
 from attribution.config import JobConfig, LimitSettings
 from attribution.contract import NULL_KEY
 from attribution.exceptions_log import REJECTED, WARNING
+from attribution.keys import NightTrades, encode
 from attribution.loading import RawNight
 from attribution.schema import BOOK_PNL, EXPOSURE_COLUMNS, PNL_COLUMNS, REVAL_COLUMNS, V2_AMOUNT_COLUMNS
 
@@ -93,6 +95,20 @@ def test_conservation_counts_distinct_trades_and_keyless_rows_and_names_the_miss
     assert count == 3 + 2  # T1, T2, T3 and one keyless row on each date
     assert missing == ("T2",)
     assert conservation(RAW0, RAW1, pd.Series(["T1", "T2"]), rejected)[1] == ()
+
+
+def test_conservation_on_the_trade_ids_coded_where_read_counts_the_same():
+    """With the two files' trade ids coded and matched once (attribution.keys.NightTrades), the count and the
+    trades named are the same as from the Python strings: distinct ids over both dates, keyless rows, the
+    missing ones sorted (and a cash row's id, in no file, changes nothing)."""
+    ids = [raw.tables["positions.parquet"]["trade_id"].tolist() for raw in (RAW0, RAW1)]
+    trades = NightTrades.of(encode(pa.array(ids[0], pa.string())), encode(pa.array(ids[1], pa.string())))
+    assert trades is not None
+    rejected = pd.DataFrame({"book": ["beta"], "position": ["T3"]})
+    for archived in (["T1"], [], ["T2", "(cash) alpha"], ["T1", "T2"]):
+        assert conservation(RAW0, RAW1, pd.Series(archived, dtype=object), rejected, trades) == \
+            conservation(RAW0, RAW1, pd.Series(archived, dtype=object), rejected)
+    assert conservation(RAW0, RAW1, pd.Series([], dtype=object), rejected.iloc[:0], trades) == (5, ("T1", "T2", "T3"))
 
 
 def test_position_limit_states_use_each_books_own_limit():
