@@ -281,9 +281,10 @@ def _apply_fx(legs: Legs, prior: CleanNight, run: CleanNight, market1: Instrumen
     trade like a missing run-date rate.
     """
     currency = market1.currency[legs.inst1]
-    fx_rate = rates_of(run.fx, currency)
+    # each instrument's rates, looked up once per instrument (its currency coded once), then taken per trade
+    fx_rate = rates_of(run.fx, market1.currency)[legs.inst1]
     held0 = legs.row0 >= 0
-    fx_rate_prior = np.where(held0, rates_of(prior.fx, currency), np.nan)
+    fx_rate_prior = np.where(held0, rates_of(prior.fx, market1.currency)[legs.inst1], np.nan)
     missing = np.isnan(fx_rate)
     _reject_no_fx(log, prior, run, legs, currency, missing, run)
     missing_prior = ~missing & held0 & np.isnan(fx_rate_prior)
@@ -318,7 +319,9 @@ def _reject_no_fx(log: ExceptionLog, prior: CleanNight, run: CleanNight, legs: L
 
 
 def select(legs: Legs, keep: NDArray[np.bool_]) -> Legs:
-    """The legs where ``keep`` is True."""
+    """The legs where ``keep`` is True (the same legs when it holds everywhere: no copy of every array)."""
+    if keep.all():
+        return legs
     return Legs(*(getattr(legs, f)[keep] for f in Legs.__dataclass_fields__))
 
 
