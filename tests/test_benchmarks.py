@@ -34,6 +34,8 @@ def _run(script: str, *args: str, expect: int = 0) -> str:
     ("bench_report.py", ("--books", "2", "--positions", "4", "--history", "3", "--repeat", "1"), "book page"),
     ("bench_american.py", ("--n", "100", "--quantlib-sample", "10", "--repeats", "1", "--night-instruments", "50"),
      "American work"),
+    ("bench_memory.py", ("--positions", "2000", "--books", "4", "--instruments", "40", "--underlyings", "4"),
+     "the highest samples"),
 ])
 def test_a_benchmark_script_runs_its_whole_path(script: str, args: tuple[str, ...], printed: str) -> None:
     pytest.importorskip("QuantLib")  # the scripts compare against it where it is installed (the test extra)
