@@ -17,10 +17,15 @@ WITHIN, WATCH, BREACH = "within", "watch", "breach"
 STATE_ORDER = {WITHIN: 0, WATCH: 1, BREACH: 2}
 
 
+_STATES = np.array([WITHIN, WATCH, BREACH], dtype=object)
+
+
 def _state(usage: NDArray[np.float64], watch_fraction: ArrayLike) -> NDArray[np.object_]:
-    """usage = |residual| / limit (the worst test); > 1 breaches, >= watch_fraction watches."""
+    """usage = |residual| / limit (the worst test); > 1 breaches, >= watch_fraction watches. The states as
+    text objects picked by code (no fixed-width text array of every row between)."""
     watch = np.asarray(watch_fraction, dtype=float)
-    return np.where(usage > 1.0, BREACH, np.where(usage >= watch, WATCH, WITHIN)).astype(object)
+    code = np.where(usage > 1.0, 2, np.where(usage >= watch, 1, 0)).astype(np.intp)
+    return _STATES[code.ravel()].reshape(code.shape)  # an array whatever the shape (a 0-d one too)
 
 
 def limit_usage(residual: ArrayLike, actual: ArrayLike, abs_limit: ArrayLike, rel_limit: ArrayLike,

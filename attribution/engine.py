@@ -282,6 +282,7 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     schedule = schedule_frame(as_of, prior_as_of, clean1.dividends, clean0.dividends, pairs, clean1.curves, basis,
                               went_ex)
     positions = cash_rows(positions, clean1, config.reporting_currency, log, books)
+    del legs, activity  # matched legs of every trade: the rows hold what they need of them
     watch.lap("explain")
     positions["limit_state"] = pd.Series(position_limit_states(positions, config), index=positions.index, dtype=object)
     ledger = position_books(raw0, raw1, log.frame(keyless=True))

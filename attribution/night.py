@@ -191,6 +191,11 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     units0 = qty0 * mult * legs.fx_rate
     units1 = qty1 * mult * legs.fx_rate
     dt_years = float(basis.year_fraction(prior_as_of, as_of)[0])
+    # What the rows take from the positions files' other columns, while no column of the night is made yet
+    late = trade_date_flags(run, legs, prior_as_of)
+    moved_book = (status == CARRIED) & (legs.row1 >= 0) & (
+        take(run.positions["book"].to_numpy(dtype=object), legs.row1, None) != legs.book)
+    strategy = _strategy(legs, prior, run)
 
     cols: dict[str, object] = {c: np.zeros(n) for c in PNL_COLUMNS}
     cols.update({c: np.full(n, np.nan) for c in REVAL_COLUMNS})
@@ -290,9 +295,6 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
 
     del units0, units1, trade_price1, settle_spot, intrinsic, fill_price, value0  # freed before the columns below
 
-    late = trade_date_flags(run, legs, prior_as_of)
-    moved_book = (status == CARRIED) & (legs.row1 >= 0) & (
-        take(run.positions["book"].to_numpy(dtype=object), legs.row1, None) != legs.book)
     flags = _flags([
         (amended, "amended"),
         (crossed, "crossed_exercise_boundary"),
@@ -328,7 +330,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         "limit_state": np.full(n, "within", dtype=object),
         "kind": _names(kind, KIND_NAMES),
         "exercise": np.where(option, np.where(american, "american", "european"), None).astype(object),
-        "strategy": _strategy(legs, prior, run),
+        "strategy": strategy,
     }
     return position_frame(values, n)
 
