@@ -29,6 +29,7 @@ import pandas as pd
 from attribution.arrays import BoolArray, FloatArray
 from attribution.contract import UNPRICED_ACTIVITY, CleanNight
 from attribution.exceptions_log import WARNING, ExceptionLog
+from attribution.group_sums import sums_by_group
 from attribution.lifecycle import CARRIED, CLOSED, EXERCISED, NEW, NEW_UNPRICED, Legs
 from attribution.market import InstrumentMarket
 from attribution.schema import POSITION_PNL
@@ -178,9 +179,13 @@ def cash_rows(positions: pd.DataFrame, run: CleanNight, reporting_currency: str,
                 ("trade_id " + flows.loc[named_elsewhere, "trade_id"].astype(str) + " is not a position of book "
                  + flows.loc[named_elsewhere, "book"].astype(str) + " tonight; counted on the book's cash row")
                 .to_numpy(dtype=object), WARNING)
-    per_book = flows[~on_trade].groupby("book", sort=True)["amount_reporting"].sum()
-    if per_book.empty:
+    book_flows = flows[~on_trade]
+    if book_flows.empty:
         return positions
+    code, books = pd.factorize(book_flows["book"].to_numpy(dtype=object), sort=True)
+    keep = code >= 0  # a flow without a book was refused when the file was read
+    sums, _ = sums_by_group([book_flows["amount_reporting"].to_numpy(dtype=float)[keep]], code[keep], len(books))
+    per_book = pd.Series(sums[0], index=pd.Index(books, dtype=object, name="book"), name="amount_reporting")
     return pd.concat([positions, _book_cash_rows(per_book, positions, reporting_currency)], ignore_index=True)
 
 

@@ -16,7 +16,8 @@ spot. For each distinct boundary state:
 
 The integrals use Gauss-Legendre quadrature. Every boundary read sits at the same Chebyshev
 coordinate for every option (the nodes and quadrature points scale with the option's own expiry),
-so each interpolation is one fixed matrix product over all options. The iteration counts are fixed
+so each interpolation is one fixed matrix, applied to each option's row alone and summed in a fixed order (an
+option's value never depends on what else is priced with it). The iteration counts are fixed
 (no tolerance test), so the price is a smooth function of every input and its finite-difference
 greeks are clean. In the exercise region (spot at or beyond the boundary) the price is exactly the
 intrinsic value; elsewhere it is never below ``max(intrinsic, European)``.
@@ -31,6 +32,8 @@ Limits, as the published method and its reference implementation treat them:
 
 from __future__ import annotations
 
+import dataclasses
+import threading
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -90,6 +93,19 @@ def in_chunks(n: int, size: int, block: Callable[[slice], None], threads: int | 
         return
     with ThreadPoolExecutor(max_workers=workers) as pool:
         list(pool.map(block, chunks))
+
+
+def _interpolate(values: FloatArray, matrix: FloatArray) -> FloatArray:
+    """``values @ matrix.T``, each row's sums added term by term in node order: a row's result depends on that
+    row alone.
+
+    A BLAS matrix product blocks and vectorises its sums differently with the number of rows, so an option's
+    last bits would depend on what else is priced in the same batch (and a night split by book would archive
+    other bits than the whole night). ``einsum`` (never BLAS without ``optimize``) multiplies and adds in
+    node order for every row; ``tests/test_american.py`` checks the independence bit for bit.
+    """
+    out: FloatArray = np.einsum("mk,kp->mp", values, np.ascontiguousarray(matrix.T))
+    return out
 
 
 def _col(a: FloatArray) -> FloatArray:
@@ -224,7 +240,7 @@ def _solve_chunk(T: FloatArray, vol: FloatArray, r: FloatArray, q: FloatArray, b
     n, L = g.node_c.size, g.fp_y.size
     with np.errstate(all="ignore"):  # a non-finite iterate keeps its previous value below
         for step in range(scheme.newton_steps + scheme.fixed_point_steps):
-            s_read = _signed_sqrt((s_node * np.abs(s_node)) @ g.fp_interp.T).reshape(m, n, L)
+            s_read = _signed_sqrt(_interpolate(s_node * np.abs(s_node), g.fp_interp)).reshape(m, n, L)
             log_z = s_read - s_node[:, 1:, None]  # ln(b_i / B(u_j))
             dp = log_z * inv_s_m + shift
             num_int = (a_n * ndtr(dp - s_m)).sum(axis=2)
@@ -259,17 +275,80 @@ class PutBoundaries:
     scheme: Scheme
 
 
+class BoundaryMemo:
+    """Boundaries already solved in this process, by their exact state (T, vol, r, q) and scheme.
+
+    A night solves the same state several times: the run-date state of an option for its model price, its
+    greeks, its run-date value and the corner of its revaluation where every factor has moved; the prior
+    state again in the revaluation, after the night before solved it for its own greeks. A boundary depends on
+    its state alone (never on what else is solved with it), so a remembered one is the very array a new
+    solve gives. At most ``capacity`` states are kept (about 380 bytes each: 12 MB by default, a demo night
+    solves about 3,000); the least recently used go first.
+    """
+
+    def __init__(self, capacity: int = 32_768) -> None:
+        self.capacity = capacity
+        self._rows: dict[bytes, FloatArray] = {}  # the scheme's key then the state's 32 bytes
+        self._lock = threading.Lock()  # threads of one process share it (the solves themselves run outside)
+
+    def clear(self) -> None:
+        with self._lock:
+            self._rows.clear()
+
+    def __len__(self) -> int:
+        return len(self._rows)
+
+    def solve(self, T: FloatArray, vol: FloatArray, r: FloatArray, q: FloatArray, scheme: Scheme,
+              solve: Callable[[NDArray[np.intp]], FloatArray]) -> FloatArray:
+        """H of every state: remembered rows, and ``solve(rows)`` for the others (then remembered)."""
+        blob = np.stack([T, vol, r, q], axis=1).tobytes()  # 32 bytes a state: its four floats, exactly
+        prefix = np.array(dataclasses.astuple(scheme), dtype=np.int64).tobytes()  # the scheme's six counts
+        keys = [prefix + blob[i:i + 32] for i in range(0, len(blob), 32)]
+        with self._lock:
+            found = [self._rows.pop(key, None) for key in keys]
+            for key, row in zip(keys, found, strict=True):  # a state used again becomes the newest
+                if row is not None:
+                    self._rows[key] = row
+        missing = np.fromiter((row is None for row in found), dtype=bool, count=len(found))
+        h = np.empty((T.size, scheme.nodes + 1))
+        if (~missing).any():
+            h[~missing] = np.stack([row for row in found if row is not None])
+        rows = np.flatnonzero(missing)
+        if rows.size:
+            solved = solve(rows)
+            h[rows] = solved
+            with self._lock:
+                for j in rows.tolist():
+                    self._rows[keys[j]] = h[j].copy()
+                while len(self._rows) > self.capacity:  # insertion order: the least recently used first
+                    del self._rows[next(iter(self._rows))]
+        return h
+
+
+BOUNDARY_MEMO = BoundaryMemo()
+
+
 def solve_put_boundaries(T: FloatArray, vol: FloatArray, r: FloatArray, q: FloatArray,
-                         scheme: Scheme = STANDARD, *, threads: int | None = None) -> PutBoundaries:
-    """Boundaries of unit-strike puts (requires T > 0, vol > 0, r > 0). No checks: callers validate."""
+                         scheme: Scheme = STANDARD, *, threads: int | None = None,
+                         memo: BoundaryMemo | None = BOUNDARY_MEMO) -> PutBoundaries:
+    """Boundaries of unit-strike puts (requires T > 0, vol > 0, r > 0). No checks: callers validate.
+
+    States solved before in this process come from ``memo`` (the same bits); ``memo=None`` solves every one.
+    """
     g = _grid(scheme)
     b_max = put_boundary_at_zero(r, q)
-    h = np.empty((T.size, scheme.nodes + 1))
 
-    def block(c: slice) -> None:
-        h[c] = _solve_chunk(T[c], vol[c], r[c], q[c], b_max[c], scheme, g)
+    def solved(rows: NDArray[np.intp]) -> FloatArray:
+        h = np.empty((rows.size, scheme.nodes + 1))
+        t, v, rr, qq, bm = T[rows], vol[rows], r[rows], q[rows], b_max[rows]
 
-    in_chunks(T.size, _CHUNK_STATES, block, threads)
+        def block(c: slice) -> None:
+            h[c] = _solve_chunk(t[c], v[c], rr[c], qq[c], bm[c], scheme, g)
+
+        in_chunks(rows.size, _CHUNK_STATES, block, threads)
+        return h
+
+    h = solved(np.arange(T.size)) if memo is None else memo.solve(T, vol, r, q, scheme, solved)
     return PutBoundaries(T, vol, r, q, b_max, h, scheme)
 
 
@@ -315,7 +394,7 @@ def _put_values_chunk(bounds: PutBoundaries, state: NDArray[np.intp], x: FloatAr
     zk = col(sqrt_t_total) * (0.5 * (1.0 + g.px_y))[None, :]
     t = zk * zk
     s_t = col(vol) * zk
-    log_b = col(np.log(bounds.b_max[state])) - _signed_sqrt(h @ g.px_interp.T)
+    log_b = col(np.log(bounds.b_max[state])) - _signed_sqrt(_interpolate(h, g.px_interp))
     dp = (col(np.log(x)) - log_b + col(r - q) * t) / s_t + 0.5 * s_t
     dm = dp - s_t
     weight = col(sqrt_t_total) * g.px_w[None, :] * zk  # (sqrt(T) / 2) w_k * 2 z_k

@@ -20,6 +20,7 @@ from attribution.config import JobConfig
 from attribution.contract import NULL_KEY
 from attribution.controls import BREACH, WATCH, book_states, position_states
 from attribution.exceptions_log import REJECTED, WARNING
+from attribution.group_sums import sums_by_group
 from attribution.keys import NightTrades
 from attribution.lifecycle import STATUSES
 from attribution.loading import RawNight
@@ -130,9 +131,13 @@ def rejected_size(rejected: pd.DataFrame, raw0: RawNight, market0: InstrumentMar
                                      scheme=market0.american_scheme, group=j)
         value[k] = units * market0.price[j]
         vega[k] = units * greeks.vega / 100.0
-    sized = pd.DataFrame({"book": prior["book"].to_numpy(dtype=object), "rejected_prior_value": value,
-                          "rejected_vega_per_vol_point": vega, "rejected_unvalued": (~ok).astype(np.int64)})
-    return sized.groupby("book", as_index=False, sort=True)[columns].sum()
+    code, books = pd.factorize(prior["book"].to_numpy(dtype=object), sort=True)
+    keep = code >= 0  # every rejected row has a book (NO_BOOK when its file row had none)
+    code, ok = code[keep], ok[keep]
+    sums, _ = sums_by_group([value[keep], vega[keep]], code, len(books))  # a book's own rows, in order
+    unvalued = np.bincount(code[~ok], minlength=len(books)).astype(np.int64)
+    return pd.DataFrame({"book": books.astype(object), columns[0]: sums[0], columns[1]: sums[1],
+                         columns[2]: unvalued})
 
 
 def conservation(raw0: RawNight, raw1: RawNight, archived: pd.Series, rejected: pd.DataFrame,
@@ -179,11 +184,12 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
     amounts = list(PNL_COLUMNS) + list(REVAL_COLUMNS) + list(EXPOSURE_COLUMNS) + list(V2_AMOUNT_COLUMNS)
     # the books sorted, hashed once: every per-book figure below is a bincount or a sum over these codes
     book_code, book_names = pd.factorize(positions["book"].to_numpy(dtype=object), sort=True)
-    # the amounts summed per book by pandas' compensated sums, column by column: a block of a few columns at a
-    # time (one block of them all would hold a copy of every amount of the night at once)
-    summed, present = _book_sums(positions, [c for c in amounts if c not in REVAL_COLUMNS], book_code, 0)
-    reval_summed, _ = _book_sums(positions, list(REVAL_COLUMNS), book_code, 1)  # NULL when the method is off
-    names = pd.Index(book_names[present], dtype=object, name="book")
+    # the amounts summed book by book over each book's own rows in order, a few columns at a time (sums_by_group)
+    summed, counted = sums_by_group([positions[column].to_numpy(dtype=float) for column in amounts], book_code,
+                                    len(book_names))
+    reval = [amounts.index(c) for c in REVAL_COLUMNS]
+    reval_summed = np.where(counted[reval] > 0, summed[reval], np.nan)  # NULL when the method is off
+    names = pd.Index(book_names, dtype=object, name="book")
     rejected_books = rejected["book"].value_counts()
     books = names.union(rejected_books.index)
     row = names.get_indexer(books)  # each book's row among the sums; -1: a book with rejected rows only
@@ -194,10 +200,10 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
         return np.where(found, values[at], fill) if len(values) else np.full(len(books), fill)
 
     columns: dict[str, object] = {"book": books.to_numpy(dtype=object)}
-    for column, values in summed.items():
-        columns[column] = per_book(values, 0.0)
-    for column, values in reval_summed.items():
-        columns[column] = per_book(values, np.nan)
+    for j, column in enumerate(amounts):
+        columns[column] = per_book(summed[j], 0.0)
+    for j, column in enumerate(REVAL_COLUMNS):
+        columns[column] = per_book(reval_summed[j], np.nan)
     status_code = pd.Index(STATUSES, dtype=object).get_indexer(pd.Index(positions["status"].to_numpy(dtype=object),
                                                                          dtype=object, copy=False))
     known = status_code >= 0  # a status outside STATUSES (a book's cash row) is no position
@@ -228,28 +234,6 @@ def book_frame(positions: pd.DataFrame, exceptions: pd.DataFrame, rejected: pd.D
         columns[column] = values.reindex(book_index).fillna(0).to_numpy()
     columns["rejected_unvalued"] = columns["rejected_unvalued"].astype(np.int64)  # type: ignore[attr-defined]
     return pd.DataFrame({name: columns[name] for name, _ in BOOK_PNL})
-
-
-SUM_BLOCK_COLUMNS = 8  # amounts summed per book in one groupby (a block of 8 columns: 64 MB at 1M positions)
-
-
-def _book_sums(positions: pd.DataFrame, amounts: list[str], book_code: np.ndarray,
-               min_count: int) -> tuple[dict[str, np.ndarray], np.ndarray]:
-    """Per column of ``amounts``, its sum per book code (pandas' compensated groupby sum, ``min_count`` as
-    there), and the codes summed (sorted). Each column's sums are its own whatever block it is summed in."""
-    sums: dict[str, np.ndarray] = {}
-    present = np.unique(book_code[book_code >= 0])
-    for start in range(0, len(amounts), SUM_BLOCK_COLUMNS):
-        part = amounts[start:start + SUM_BLOCK_COLUMNS]
-        block = np.empty((len(positions), len(part)))
-        for j, column in enumerate(part):
-            block[:, j] = positions[column].to_numpy(dtype=float)
-        grouped = pd.DataFrame(block, copy=False).groupby(book_code, sort=True).sum(min_count=min_count)
-        del block
-        present = grouped.index.to_numpy()
-        values = grouped.to_numpy(dtype=float)
-        sums.update((column, values[:, j]) for j, column in enumerate(part))
-    return sums, present
 
 
 def _desks_of(books: pd.Index, desks: pd.Series | None) -> np.ndarray:

@@ -114,9 +114,24 @@ def shapley_allocate(values_by_state: ArrayLike) -> FloatArray:
     shares = np.empty((n_factors, *rest))
     for factor in range(n_factors):
         axis = n_factors - 1 - factor
-        moved = np.take(cube, 1, axis=axis) - np.take(cube, 0, axis=axis)
-        shares[factor] = np.tensordot(pair_weights[factor], moved.reshape((n_states // 2, *rest)), axes=1)
+        moved = (np.take(cube, 1, axis=axis) - np.take(cube, 0, axis=axis)).reshape((n_states // 2, *rest))
+        _weighted_sum(pair_weights[factor], moved, shares[factor, ...])  # a view even for 0-d shares
     return shares
+
+
+def _weighted_sum(weights: FloatArray, terms: FloatArray, out: FloatArray) -> None:
+    """``out = sum_k weights[k] * terms[k]``, multiplied and added term by term in ``k`` order.
+
+    Each position's share depends on its own values alone, never on where it sits in the array or on how
+    many positions are split together: a BLAS product blocks its sums by position (and ``einsum`` sums a
+    single position with another kernel than many), so a night split by book would archive other last bits
+    than the whole night. ``tests/test_revaluation.py`` checks the independence bit for bit.
+    """
+    np.multiply(terms[0], weights[0], out=out)
+    product = np.empty_like(out)
+    for k in range(1, weights.size):
+        np.multiply(terms[k], weights[k], out=product)
+        np.add(out, product, out=out)
 
 
 def _check_inputs(arrays: dict[str, FloatArray]) -> None:

@@ -208,8 +208,8 @@ def _delta_one_shares(kind: NDArray[np.int8], strike: FloatArray, pairs: list[tu
         spot, _vol, tau, rate, div = (pair[state >> f & 1][u] for f, pair in enumerate(pairs))
         escrowed = spot - pv[state >> 4 & 1][u]  # the dividends' value moves with the dividend factor
         by_state[state] = delta_one_price(kind[u], spot, escrowed, strike[u], tau, rate, div)
-    # the split itself runs over every row, as it always has (its sums depend on where a row sits in the array)
-    return shapley_allocate(by_state if inverse is None else by_state[:, inverse])
+    shares = shapley_allocate(by_state)  # each row's split depends on its own states alone
+    return shares if inverse is None else shares[:, inverse]
 
 
 def _european_shares(strike: FloatArray, cp: FloatArray, state0: MarketState, state1: MarketState,

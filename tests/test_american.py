@@ -20,9 +20,12 @@ from attribution.american import (
     PRECISE,
     STANDARD,
     TWO_BOUNDARY_RULE,
+    BoundaryMemo,
     american_invalid_reasons,
     american_price,
     exercise_boundary,
+    put_values,
+    solve_put_boundaries,
 )
 from attribution.american_greeks import NOT_IDENTIFIABLE_RULE, american_greeks, american_implied_vol
 from attribution.pricing import InvalidPricingInput, bsm_greeks, bsm_price
@@ -139,6 +142,95 @@ def test_spot_only_revaluation_reuses_the_boundary_and_equals_separate_calls() -
     together = american_price(spot, 100.0, 0.75, 0.35, 0.06, 0.01, False)
     alone = np.array([american_price(s, 100.0, 0.75, 0.35, 0.06, 0.01, False)[0] for s in spot])
     np.testing.assert_array_equal(together, alone)
+
+
+def test_an_options_value_does_not_depend_on_what_is_priced_with_it() -> None:
+    """Bit for bit: boundaries and values solved in one batch equal those solved alone or in other batches.
+
+    A night split by book (the Dask engine) prices each part's options together, so an option's bits must
+    not depend on its batch; a BLAS product in the boundary interpolation broke that in the last bits.
+    Reference: the functions' own results on the whole batch (exact equality, no tolerance).
+    """
+    rng = np.random.default_rng(5)
+    n = 300
+    T, vol = rng.uniform(0.02, 3.0, n), rng.uniform(0.05, 0.8, n)
+    r, q = rng.uniform(0.001, 0.08, n), rng.uniform(0.0, 0.1, n)
+    whole = solve_put_boundaries(T, vol, r, q, threads=1)
+    for size in (1, 7, 127, 129):
+        for lo in range(0, n, size * 5):
+            part = solve_put_boundaries(T[lo:lo + size], vol[lo:lo + size], r[lo:lo + size], q[lo:lo + size],
+                                        threads=1)
+            np.testing.assert_array_equal(part.h, whole.h[lo:lo + size])
+    order = rng.permutation(n)
+    np.testing.assert_array_equal(solve_put_boundaries(T[order], vol[order], r[order], q[order], threads=1).h,
+                                  whole.h[order])
+    x = rng.uniform(0.5, 1.6, 2_000)
+    state = rng.integers(0, n, 2_000)
+    values = put_values(whole, state, x, threads=1)
+    for lo, hi in ((0, 1), (9, 10), (500, 1_531), (1_999, 2_000)):
+        part = put_values(whole, state[lo:hi], x[lo:hi], threads=1)
+        for name in ("price", "delta", "gamma"):
+            np.testing.assert_array_equal(getattr(part, name), getattr(values, name)[lo:hi])
+
+
+def test_remembered_boundaries_are_the_solved_ones_and_the_memo_stays_bounded() -> None:
+    """A state solved before comes from the memo, bit for bit what a new solve gives; only new states are
+    solved; the memo keeps at most its capacity, dropping the least recently used. Reference: ``memo=None``
+    solves."""
+    rng = np.random.default_rng(9)
+    n = 60
+    T, vol = rng.uniform(0.02, 3.0, n), rng.uniform(0.05, 0.8, n)
+    r, q = rng.uniform(0.001, 0.08, n), rng.uniform(0.0, 0.1, n)
+    memo = BoundaryMemo(capacity=50)
+    first = solve_put_boundaries(T[:40], vol[:40], r[:40], q[:40], memo=memo)
+    assert len(memo) == 40
+    solved: list[int] = []
+    original = memo.solve
+
+    def counting(T, vol, r, q, scheme, solve):
+        return original(T, vol, r, q, scheme, lambda rows: (solved.append(rows.size), solve(rows))[1])
+
+    memo.solve = counting  # type: ignore[method-assign]
+    mix = np.r_[np.arange(20, 60), np.arange(0, 5)]  # 20 remembered, 20 new, then 5 of the first solved
+    again = solve_put_boundaries(T[mix], vol[mix], r[mix], q[mix], memo=memo)
+    fresh = solve_put_boundaries(T[mix], vol[mix], r[mix], q[mix], memo=None)
+    np.testing.assert_array_equal(again.h, fresh.h)
+    np.testing.assert_array_equal(first.h, solve_put_boundaries(T[:40], vol[:40], r[:40], q[:40], memo=None).h)
+    assert solved == [20]  # states 40-59 only: 0-4 and 20-39 were remembered
+    assert len(memo) == 50  # 60 distinct states seen, the 10 least recently used (5-14) dropped
+    solved.clear()
+    solve_put_boundaries(T[:10], vol[:10], r[:10], q[:10], memo=memo)
+    assert solved == [5]  # 0-4 were used again in the mix, so kept
+
+
+def test_the_memo_serves_threads_at_once() -> None:
+    """Threads solving overlapping states through one small memo (entries dropped while others read) get
+    the solved boundaries and no error (the demo's build prices on two threads). Reference: ``memo=None``."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    rng = np.random.default_rng(12)
+    n = 400
+    T, vol = rng.uniform(0.02, 3.0, n), rng.uniform(0.05, 0.8, n)
+    r, q = rng.uniform(0.001, 0.08, n), rng.uniform(0.0, 0.1, n)
+    expected = solve_put_boundaries(T, vol, r, q, memo=None, threads=1).h
+    memo = BoundaryMemo(capacity=64)
+    picks = [rng.choice(n, 60, replace=False) for _ in range(200)]
+
+    def work(i: np.ndarray) -> np.ndarray:
+        return solve_put_boundaries(T[i], vol[i], r[i], q[i], memo=memo, threads=1).h
+
+    import sys
+
+    interval = sys.getswitchinterval()
+    sys.setswitchinterval(1e-6)  # threads switch as often as they can: any unguarded step shows
+    try:
+        with ThreadPoolExecutor(max_workers=4) as pool:
+            results = list(pool.map(work, picks))
+    finally:
+        sys.setswitchinterval(interval)
+    for i, h in zip(picks, results, strict=True):
+        np.testing.assert_array_equal(h, expected[i])
+    assert len(memo) <= 64
 
 
 def test_price_is_smooth_across_r_equal_q() -> None:

@@ -18,7 +18,7 @@ import attribution
 PACKAGE = Path(attribution.__file__).parent
 CORE = frozenset({"attribution.arrays", "attribution.pricing", "attribution.implied_vol", "attribution.explain",
                   "attribution.american", "attribution.american_greeks", "attribution.valuation",
-                  "attribution.revaluation", "attribution.quality", "attribution.controls"})
+                  "attribution.revaluation", "attribution.quality", "attribution.controls", "attribution.group_sums"})
 CORE_MAY_USE = frozenset({"numpy", "scipy"})  # besides the standard library and the core itself
 DEMO = "attribution.demo"
 DEMO_USERS = frozenset({"attribution.cli"})  # its ``demo`` command

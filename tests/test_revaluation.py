@@ -253,6 +253,26 @@ def test_vectorised_equals_loop_of_single_positions(monkeypatch: pytest.MonkeyPa
     assert_allclose(together, one_by_one, rtol=1e-13, atol=1e-14)
 
 
+def test_a_positions_shares_do_not_depend_on_its_neighbours() -> None:
+    """Bit for bit: a position's split is the same whatever else is split with it and wherever it sits.
+
+    A night split by book (the Dask engine) must archive the very bits of the whole night; a BLAS product
+    over the states blocks its sums by position and broke that in the last bits. Reference: the function's
+    own result on the whole book (exact equality, no tolerance).
+    """
+    rng = np.random.default_rng(11)
+    values = rng.normal(0.0, 10.0, (32, 2_000))
+    whole = shapley_allocate(values)
+    for lo, hi in ((0, 1), (1, 2), (3, 10), (5, 1_029), (777, 2_000), (1_999, 2_000)):
+        assert_array_equal(shapley_allocate(values[:, lo:hi]), whole[:, lo:hi])
+    shuffled = rng.permutation(2_000)
+    assert_array_equal(shapley_allocate(values[:, shuffled]), whole[:, shuffled])
+    book = _book(500, seed=4)
+    together = _as_matrix(shapley_shares(**book))
+    for lo, hi in ((0, 1), (13, 14), (100, 357)):
+        assert_array_equal(_as_matrix(shapley_shares(**{k: v[lo:hi] for k, v in book.items()})), together[:, lo:hi])
+
+
 def test_bad_inputs_are_refused_with_a_reason() -> None:
     """Mismatched shapes, cp other than +-1 and invalid states raise, naming the index and the rule."""
     book = _book(5)
