@@ -347,10 +347,12 @@ def book_pages(frames: NightFrames, settings: NightSettings) -> list[BookPage]:
     hedging, hedge_waterfalls = _hedging(frames.hedging, settings.reporting_currency)
     currencies = tables.currency_rows(frames.currencies, CURRENCY_VALUES)
     numeric = [c for c, kind in BOOK_PNL if kind == "DOUBLE"]
+    # the books' amounts as one float block (NULL as NaN, shown as None): no per-value conversion
+    amounts = frames.books[numeric].to_numpy(dtype=float, na_value=np.nan).tolist() if len(frames.books) else []
     pages = []
-    for record in frames.books.to_dict("records"):
+    for record, row in zip(frames.books.to_dict("records"), amounts, strict=True):
         name = _text(record["book"])
-        figures = {c: _number(record[c]) for c in numeric}
+        figures = {c: None if v != v else v for c, v in zip(numeric, row, strict=True)}
         counts = {c: int(_number(record[c]) or 0) for c in _COUNT_COLUMNS}
         limit_code = _text(record["limit_state"])
         q = quality.get(name)
