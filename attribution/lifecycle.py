@@ -134,6 +134,18 @@ def _locate(market: InstrumentMarket, night: CleanNight, instrument_ids: NDArray
     return market.locate_codes(coded)
 
 
+def _other_instrument(at0: NDArray[np.intp], at1: NDArray[np.intp], ids0: NDArray[np.object_],
+                      ids1: NDArray[np.object_]) -> NDArray[np.bool_]:
+    """Per pair of rows: their instrument ids differ. ``at0``, ``at1``: the ids' places in one market (whose ids are
+    distinct; -1 where absent), so two places found differ exactly when the ids do; only ids found in neither
+    are compared as text."""
+    differs = at0 != at1
+    neither = np.flatnonzero((at0 < 0) & (at1 < 0))
+    if neither.size:
+        differs[neither] = ids0[neither] != ids1[neither]
+    return differs
+
+
 def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, market1: InstrumentMarket,
                log: ExceptionLog, trades: keys.NightTrades | None = None) -> Legs:
     """Match trades across the two dates, run each leg's checks, and return the accepted ones.
@@ -165,16 +177,16 @@ def match_legs(prior: CleanNight, run: CleanNight, market0: InstrumentMarket, ma
     inst_p0 = p0["instrument_id"].to_numpy(dtype=object)
     inst_p1 = p1["instrument_id"].to_numpy(dtype=object)
     both = j1 >= 0
+    i0 = _locate(market0, prior, inst_p0)
+    i1_of_p1 = _locate(market1, run, inst_p1)
+    i1_of_p0 = _locate(market1, prior, inst_p0)
     changed = np.zeros(len(p0), dtype=bool)
-    changed[both] = inst_p0[both] != inst_p1[j1[both]]
+    changed[both] = _other_instrument(i1_of_p0[both], i1_of_p1[j1[both]], inst_p0[both], inst_p1[j1[both]])
     _reject(log, file1, ids0, ok0 & changed, "trade changed instrument between dates",
             "a trade_id must keep its instrument; book a close and a new trade instead")
     ok0 &= ~changed
     ok1[j1[changed]] = False
 
-    i0 = _locate(market0, prior, inst_p0)
-    i1_of_p1 = _locate(market1, run, inst_p1)
-    i1_of_p0 = _locate(market1, prior, inst_p0)
     expiry0 = take(market0.expiry, i0, np.datetime64("NaT"))
     expired = (i0 >= 0) & (expiry0 <= run_day)
 

@@ -4,7 +4,8 @@ what the same work on the Python strings gives.
 References: pandas.factorize (pandas, a reference library) for the codes; the row rule's own per-value
 test (``str.strip`` after dropping trailing NULs, README.md, "Input files": a null or blank key is no
 key) for the blank values; attribution.lifecycle.match_keys (the matching on Python strings) for the
-matching.
+matching;
+the text comparison of instrument ids for a trade that changed instrument.
 """
 
 from __future__ import annotations
@@ -23,7 +24,7 @@ from attribution.config import CheckSettings
 from attribution.contract import clean_night
 from attribution.exceptions_log import ExceptionLog
 from attribution.keys import KeyCodes, blank_text, encode, match
-from attribution.lifecycle import match_keys
+from attribution.lifecycle import _other_instrument, match_keys
 from attribution.loading import folder_for, read_night
 from tests.mini_desk import RUN, write_mini_desk
 
@@ -110,3 +111,16 @@ def test_row_rules_on_the_codes_read_equal_the_rules_on_the_strings(tmp_path: Pa
     ledger, positions, instruments = frames[0]
     assert len(ledger) == 5 and ledger.equals(frames[1][0])
     assert positions.equals(frames[1][1]) and instruments.equals(frames[1][2])
+
+
+@given(st.lists(st.tuples(st.sampled_from("abcde"), st.sampled_from("abcde")), max_size=30),
+       st.sets(st.sampled_from("abcde")))
+def test_instrument_change_by_market_places_is_the_text_comparison(pairs: list[tuple[str, str]],
+                                                                   listed: set[str]) -> None:
+    """A trade changed instrument exactly when its two dates' instrument ids differ as text; compared by their
+    places in one market of distinct ids (and as text where neither is listed there)."""
+    ids = pd.Index(sorted(listed), dtype=object)
+    left = np.array([a for a, _ in pairs], dtype=object)
+    right = np.array([b for _, b in pairs], dtype=object)
+    got = _other_instrument(ids.get_indexer(left), ids.get_indexer(right), left, right)
+    assert got.tolist() == (left != right).tolist()
