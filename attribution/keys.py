@@ -60,7 +60,10 @@ class KeyCodes:
         return blank
 
     def take(self, rows: IntArray | BoolArray) -> KeyCodes:
-        """The codes of some rows (a mask or row numbers), over the same distinct values."""
+        """The codes of some rows (a mask or row numbers), over the same distinct values (these codes themselves
+        for a mask of every row: a file without a rejected row costs no copy)."""
+        if rows.dtype == np.bool_ and len(rows) == len(self.codes) and rows.all():
+            return self
         return KeyCodes(self.codes[rows], self.values, self.uniques)
 
 
