@@ -110,28 +110,22 @@ def shapley_allocate(values_by_state: ArrayLike) -> FloatArray:
         weights = shapley_weight_matrix(n_factors)
         pair_weights = tuple(_pair_weights(weights, i) for i in range(n_factors))
     rest = values.shape[1:]
-    cube = values.reshape((2,) * n_factors + rest)  # axis n-1-i holds bit i (C order)
-    shares = np.empty((n_factors, *rest))
+    flat = values.reshape(n_states, -1)  # (states, positions): a view
+    shares = np.empty((n_factors, flat.shape[1]))
+    difference = np.empty(flat.shape[1])
     for factor in range(n_factors):
-        axis = n_factors - 1 - factor
-        moved = (np.take(cube, 1, axis=axis) - np.take(cube, 0, axis=axis)).reshape((n_states // 2, *rest))
-        _weighted_sum(pair_weights[factor], moved, shares[factor, ...])  # a view even for 0-d shares
-    return shares
-
-
-def _weighted_sum(weights: FloatArray, terms: FloatArray, out: FloatArray) -> None:
-    """``out = sum_k weights[k] * terms[k]``, multiplied and added term by term in ``k`` order.
-
-    Each position's share depends on its own values alone, never on where it sits in the array or on how
-    many positions are split together: a BLAS product blocks its sums by position (and ``einsum`` sums a
-    single position with another kernel than many), so a night split by book would archive other last bits
-    than the whole night. ``tests/test_revaluation.py`` checks the independence bit for bit.
-    """
-    np.multiply(terms[0], weights[0], out=out)
-    product = np.empty_like(out)
-    for k in range(1, weights.size):
-        np.multiply(terms[k], weights[k], out=product)
-        np.add(out, product, out=out)
+        bit = 1 << factor
+        out = shares[factor]
+        # V(S + {factor}) - V(S) for the subsets S without the factor, in ascending order, weighted and added
+        # one at a time in that order (each position's share depends on its own values alone)
+        for k, state in enumerate(s for s in range(n_states) if not s & bit):
+            np.subtract(flat[state | bit], flat[state], out=difference)
+            if k == 0:
+                np.multiply(difference, pair_weights[factor][0], out=out)
+            else:
+                np.multiply(difference, pair_weights[factor][k], out=difference)
+                np.add(out, difference, out=out)
+    return shares.reshape((n_factors, *rest))
 
 
 def _check_inputs(arrays: dict[str, FloatArray]) -> None:
