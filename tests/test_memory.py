@@ -6,6 +6,7 @@ unless set, rising to the size of each freed mapping up to 32 MiB); checked here
 
 from __future__ import annotations
 
+import os
 import platform
 import subprocess
 import sys
@@ -40,8 +41,13 @@ CHILD = textwrap.dedent("""
 
 
 def held_after_free(mode: str) -> float:
-    """MB still held by the process for the 24 temporary columns of 8 MB, freed."""
-    done = subprocess.run([sys.executable, "-c", CHILD, mode], capture_output=True, text=True, check=True)
+    """MB still held by the process for the 24 temporary columns of 8 MB, freed.
+
+    The child gets glibc's defaults: no ``MALLOC_*`` or ``GLIBC_TUNABLES`` variable of this process (a Dask
+    cluster started earlier in the test session sets ``MALLOC_TRIM_THRESHOLD_`` here, and the heap is then
+    trimmed at every free)."""
+    env = {k: v for k, v in os.environ.items() if not k.startswith("MALLOC_") and k != "GLIBC_TUNABLES"}
+    done = subprocess.run([sys.executable, "-c", CHILD, mode], capture_output=True, text=True, check=True, env=env)
     return float(done.stdout)
 
 
