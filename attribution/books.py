@@ -24,7 +24,7 @@ from attribution.group_sums import sums_by_group
 from attribution.keys import NightTrades
 from attribution.lifecycle import STATUSES
 from attribution.loading import RawNight
-from attribution.market import InstrumentMarket
+from attribution.market import InstrumentMarket, take
 from attribution.schema import (
     BOOK_PNL,
     EXPOSURE_COLUMNS,
@@ -115,10 +115,11 @@ def rejected_size(rejected: pd.DataFrame, raw0: RawNight, market0: InstrumentMar
     prior = rejected.merge(prior[["trade_id", "instrument_id", "quantity"]], how="left",
                            left_on="position", right_on="trade_id")
     idx = market0.locate(prior["instrument_id"].to_numpy(dtype=object))
-    i = np.maximum(idx, 0)
+    i = np.maximum(idx, 0)  # read only where idx >= 0 (a prior market may price no instrument at all)
     quantity = prior["quantity"].to_numpy(dtype=float)
-    fx = pd.Series(market0.currency[i], dtype=object).map(fx0).to_numpy(dtype=float)
-    ok = (idx >= 0) & market0.usable[i] & np.isfinite(market0.price[i]) & np.isfinite(quantity) & np.isfinite(fx)
+    fx = pd.Series(take(market0.currency, idx, None), dtype=object).map(fx0).to_numpy(dtype=float)
+    ok = ((idx >= 0) & take(market0.usable, idx, False).astype(bool) & np.isfinite(take(market0.price, idx, np.nan))
+          & np.isfinite(quantity) & np.isfinite(fx))
     value = np.zeros(len(prior))
     vega = np.zeros(len(prior))
     k = np.flatnonzero(ok)

@@ -106,3 +106,21 @@ def test_rejected_positions_are_sized_at_the_prior_state(tmp_path):
     assert value == pytest.approx(units * mark(inst, PRIOR), rel=1e-12)
     assert vega == pytest.approx(units * ql_option(inst, PRIOR).vega() / 100.0, rel=1e-9)  # QuantLib reference
     assert rows["Index vol"][0] == 1 and rows["Index vol"][1:] == (0.0, 0.0, 1)
+
+
+def test_rejected_positions_are_counted_unvalued_when_no_instrument_is_priced(tmp_path):
+    """With no instrument row on either date nothing is priced: every position is rejected and counted as not
+    valued (no prior value, no vega), and the night ends with its findings, not a traceback."""
+    write_mini_desk(tmp_path / "data")
+    for day in (PRIOR, RUN):
+        path = folder_for(tmp_path / "data", day) / "instruments.parquet"
+        pq.write_table(pq.read_table(path).slice(0, 0), path)   # the columns kept, every row gone
+    code, con = _night(tmp_path)
+    try:
+        rejected, value, vega, unvalued = con.execute(
+            "SELECT sum(rejected), sum(rejected_prior_value), sum(rejected_vega_per_vol_point), "
+            "sum(rejected_unvalued) FROM book_pnl").fetchone()
+    finally:
+        con.close()
+    assert code == 3
+    assert rejected > 0 and unvalued == rejected and (value, vega) == (0.0, 0.0)
