@@ -90,13 +90,23 @@ class _Codes:
 
     @classmethod
     def read(cls, keyed: KeyCodes) -> _Codes:
-        """The codes the reader made (:func:`attribution.loading.read_night`): no second hash pass."""
-        return cls(keyed.codes, keyed.uniques, keyed)
+        """The codes the reader made (:func:`attribution.loading.read_night`): no second hash pass. The distinct
+        values' Python strings are made only if a rule asks for them (:meth:`texts`)."""
+        return cls(keyed.codes, np.zeros(0, dtype=object) if keyed.uniques is None else keyed.uniques, keyed)
+
+    @property
+    def size(self) -> int:
+        """How many distinct values."""
+        return len(self.uniques) if self.keyed is None else len(self.keyed.values)
+
+    def texts(self) -> np.ndarray:
+        """The distinct values as Python strings."""
+        return self.uniques if self.keyed is None else self.keyed.texts()
 
     def blank(self) -> np.ndarray:
         """Per row: null, or a text of only white space."""
         null = self.codes < 0
-        if not len(self.uniques):
+        if not self.size:
             return null
         per_value = _blank_text(self.uniques) if self.keyed is None else self.keyed.blank_values()
         return null | per_value[np.where(null, 0, self.codes)]
@@ -109,9 +119,9 @@ class _Codes:
     def duplicated(self) -> np.ndarray:
         """Non-null values that appear more than once (every copy)."""
         null = self.codes < 0
-        if not len(self.uniques):
+        if not self.size:
             return np.zeros(len(self.codes), dtype=bool)
-        counts = np.bincount(self.codes[~null], minlength=len(self.uniques))
+        counts = np.bincount(self.codes[~null], minlength=self.size)
         return ~null & (counts[np.where(null, 0, self.codes)] > 1)
 
 
@@ -166,7 +176,7 @@ class _Rules:
         codes = self._factorised(column)
         if codes is None:
             return self.frame[column].isin(values).to_numpy()
-        return codes.per_row(pd.Index(codes.uniques, dtype=object).isin(values), False)
+        return codes.per_row(pd.Index(codes.texts(), dtype=object).isin(values), False)
 
     def currency_code(self, column: str) -> np.ndarray:
         """Per row: three capital letters A-Z (the form of an ISO 4217 code); tested once per distinct value."""
@@ -174,7 +184,7 @@ class _Rules:
         if codes is None:
             return self.frame[column].astype(str).str.fullmatch(CURRENCY_CODE.pattern).to_numpy(dtype=bool)
         return codes.per_row(np.array([type(v) is str and CURRENCY_CODE.fullmatch(v) is not None
-                                       for v in codes.uniques], dtype=bool), False)
+                                       for v in codes.texts()], dtype=bool), False)
 
     def reject(self, bad: np.ndarray | pd.Series, rule: str, detail: Detail = "") -> None:
         """Rows where ``bad`` holds (and no earlier rule fired) leave the clean table with a ledger row.

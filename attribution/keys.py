@@ -39,24 +39,37 @@ class KeyCodes:
 
     codes: NDArray[np.int32]  # per row, the index of its value in ``values``; -1 where null
     values: pa.Array       # the distinct non-null values (Arrow text), in order of first appearance
-    uniques: ObjectArray   # the same as Python strings
+    # the same as Python strings; None where not kept (a column of distinct ids: its frame holds the strings,
+    # and a pointer per distinct value would add 8 bytes a row): made from ``values`` when asked
+    uniques: ObjectArray | None
 
     def __len__(self) -> int:
         return len(self.codes)
 
+    def texts(self) -> ObjectArray:
+        """The distinct values as Python strings (new ones when they are not kept)."""
+        if self.uniques is not None:
+            return self.uniques
+        return self.values.to_numpy(zero_copy_only=False).astype(object, copy=False)
+
+    def without_texts(self) -> KeyCodes:
+        """The same codes without the Python strings of the distinct values kept."""
+        return KeyCodes(self.codes, self.values, None)
+
     def per_row(self) -> ObjectArray:
         """The column as an object array of ``str`` (None where null): one object per distinct value."""
-        return np.append(self.uniques, None).astype(object, copy=False)[self.codes]
+        return np.append(self.texts(), None).astype(object, copy=False)[self.codes]
 
     def blank_values(self) -> BoolArray:
         """Per distinct value: empty or only white space (see :func:`blank_text`)."""
-        blank = np.zeros(len(self.uniques), dtype=bool)
+        blank = np.zeros(len(self.values), dtype=bool)
         if not len(blank):
             return blank
         surely = pc.match_substring_regex(self.values, _SURELY_NOT_BLANK)
         check = np.flatnonzero(~np.asarray(surely.to_numpy(zero_copy_only=False), dtype=bool))
         if check.size:
-            blank[check] = blank_text(self.uniques[check])
+            texts = self.values.take(pa.array(check)).to_numpy(zero_copy_only=False).astype(object, copy=False)
+            blank[check] = blank_text(texts)
         return blank
 
     def take(self, rows: IntArray | BoolArray) -> KeyCodes:

@@ -173,6 +173,8 @@ def _to_frame(path: Path, table: pa.Table, columns: tuple[tuple[str, str], ...],
             if kind == STRING:
                 keys[name] = encode(column)
                 values = keys[name].per_row()
+                if name in DISTINCT_COLUMNS:  # the frame holds the strings: no second array of them
+                    keys[name] = keys[name].without_texts()
             else:
                 values = _cast(column, kind).to_numpy(zero_copy_only=False)
         except pa.ArrowException as exc:

@@ -104,7 +104,7 @@ class InstrumentMarket:
 
     def locate_codes(self, coded: KeyCodes) -> NDArray[np.intp]:
         """:meth:`locate` of a column already coded (:mod:`attribution.keys`): only its distinct ids looked up."""
-        found = self.ids.get_indexer(pd.Index(coded.uniques, dtype=object, copy=False))
+        found = self.ids.get_indexer(pd.Index(coded.texts(), dtype=object, copy=False))
         return np.append(found, -1).astype(np.intp, copy=False)[coded.codes]
 
 

@@ -70,6 +70,10 @@ def test_blank_values_follow_the_row_rule(values: list[str | None]) -> None:
     """Blank per distinct value, tested on the Arrow text, is the row rule's test of each Python string."""
     keyed = encode(pa.array(values, pa.string()))
     assert keyed.blank_values().tolist() == blank_text(keyed.uniques).tolist()
+    bare = keyed.without_texts()  # a column of distinct ids keeps no Python strings: the same answers
+    assert bare.uniques is None
+    assert bare.blank_values().tolist() == keyed.blank_values().tolist()
+    assert bare.per_row().tolist() == values
     assert blank_text(np.array(["", " ", "\x00", " a", "a", "\u3000", "\u200b"], dtype=object)).tolist() == \
         [True, True, True, False, False, True, False]
 
