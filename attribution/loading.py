@@ -289,4 +289,7 @@ def read_night(data_root: Path, as_of: dt.date, books: frozenset[str] | None = N
             tables[file] = frame
             hashes[file] = digest
             keys[file] = codes
+    # Arrow's allocator keeps what it freed (the hash tables of the key columns' encoding, the files' buffers) for
+    # its own later use; handed back here, so the night's numpy arrays can have it
+    pa.default_memory_pool().release_unused()
     return RawNight(as_of, folder, tables, hashes, keys)
