@@ -319,7 +319,7 @@ class BoundaryMemo:
             h[rows] = solved
             with self._lock:
                 for j in rows.tolist():
-                    self._rows[keys[j]] = h[j].copy()
+                    self._rows[keys[j]] = h[j].copy()  # its own copy: a dropped row frees its memory
                 while len(self._rows) > self.capacity:  # insertion order: the least recently used first
                     del self._rows[next(iter(self._rows))]
         return h
@@ -510,9 +510,11 @@ def american_price_unchecked(s: FloatArray, k: FloatArray, t: FloatArray, v: Flo
 
 def american_price_and_exercised_unchecked(
     s: FloatArray, k: FloatArray, t: FloatArray, v: FloatArray, r: FloatArray, q: FloatArray, cp: FloatArray, *,
-    scheme: Scheme = STANDARD, threads: int | None = None,
+    scheme: Scheme = STANDARD, threads: int | None = None, memo: BoundaryMemo | None = BOUNDARY_MEMO,
 ) -> tuple[FloatArray, NDArray[np.bool_]]:
-    """Price and, per option, whether spot sits in the exercise region (time and vol left, exercised early)."""
+    """Price and, per option, whether spot sits in the exercise region (time and vol left, exercised early).
+
+    ``memo=None``: every boundary solved, none remembered (for callers whose states never come back)."""
     frame = put_frame(s, k, r, q, cp)
     limit, european, early = regimes(t, v, frame.rr)
     out = np.empty(s.size)
@@ -528,7 +530,7 @@ def american_price_and_exercised_unchecked(
     if early.any():
         i = np.flatnonzero(early)
         (T, vol, rr, qq), state = distinct_states(t[i], v[i], frame.rr[i], frame.qq[i])
-        bounds = solve_put_boundaries(T, vol, rr, qq, scheme, threads=threads)
+        bounds = solve_put_boundaries(T, vol, rr, qq, scheme, threads=threads, memo=memo)
         values = put_values(bounds, state, frame.x[i], derivatives=False, threads=threads)
         out[i] = in_option_units(values, frame.scale[i], s[i], k[i], t[i], v[i], r[i], q[i], cp[i])
         exercised[i] = values.exercised

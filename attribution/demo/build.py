@@ -186,7 +186,7 @@ def _clean_close(desk: DeskSpec, market: MarketPaths, d: int, store: ListedInstr
         a = np.flatnonzero(american)
         price[a], exercised[a] = american_price_and_exercised_unchecked(
             spot[a], strike[a], tau[a], vol[a], rate[a], div[a], np.where(is_call[a], 1.0, -1.0), scheme=FAST,
-            threads=1)
+            threads=1, memo=None)  # each close's states are its own: nothing to remember
         lower[a] = np.maximum(lower[a], sign[a] * (spot[a] - strike[a]))
         upper[a] = np.where(is_call[a], spot[a], strike[a])
     floor = lower + desk.min_time_value_share * spot
