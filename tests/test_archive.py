@@ -361,8 +361,10 @@ def _memory_limit(con: duckdb.DuckDBPyConnection) -> str:
 
 def test_night_rows_go_in_with_duckdbs_memory_capped_and_the_cap_is_lifted_after(archived, desk, tmp_path,
                                                                                  monkeypatch):
-    """Every insert of a night runs under the write cap (DuckDB lets go of the blocks it wrote); after the
-    transaction the connection has its memory limit as before (the reports' queries run uncapped)."""
+    """Every insert of a large night runs under the write cap (DuckDB lets go of the blocks it wrote); after the
+    transaction the connection has its memory limit as before (the reports' queries run uncapped). The mini
+    desk's night is made "large" by a threshold of 0 bytes."""
+    monkeypatch.setattr(archive_module, "CAP_WRITE_FROM_BYTES", 0)
     box = copy_of(archived, tmp_path / "box")
     during, around = [], []
     insert, write = archive_module._insert, engine_module.write_night
@@ -386,6 +388,22 @@ def test_night_rows_go_in_with_duckdbs_memory_capped_and_the_cap_is_lifted_after
     cap.close()
     [(before, after)] = around
     assert before == after != during[0]
+
+
+def test_a_small_night_goes_in_uncapped(archived, desk, tmp_path, monkeypatch):
+    """Below the threshold (the mini desk's night is a few kB) the memory limit is never changed."""
+    box = copy_of(archived, tmp_path / "box")
+    during = []
+    insert = archive_module._insert
+
+    def watched_insert(con, table, rows):
+        during.append(_memory_limit(con))
+        insert(con, table, rows)
+
+    monkeypatch.setattr(archive_module, "_insert", watched_insert)
+    assert run(desk, box) == 3
+    default = _memory_limit(duckdb.connect())
+    assert len(during) >= 4 and set(during) == {default}
 
 
 def test_archive_night_lets_go_of_the_rows_once_committed(archived, desk, tmp_path):
