@@ -183,8 +183,7 @@ def cash_rows(positions: pd.DataFrame, run: CleanNight, reporting_currency: str,
     if book_flows.empty:
         return positions
     code, books = pd.factorize(book_flows["book"].to_numpy(dtype=object), sort=True)
-    keep = code >= 0  # a flow without a book was refused when the file was read
-    sums, _ = sums_by_group([book_flows["amount_reporting"].to_numpy(dtype=float)[keep]], code[keep], len(books))
+    sums, _ = sums_by_group([book_flows["amount_reporting"].to_numpy(dtype=float)], code, len(books))
     per_book = pd.Series(sums[0], index=pd.Index(books, dtype=object, name="book"), name="amount_reporting")
     return pd.concat([positions, _book_cash_rows(per_book, positions, reporting_currency)], ignore_index=True)
 

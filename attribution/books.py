@@ -133,10 +133,8 @@ def rejected_size(rejected: pd.DataFrame, raw0: RawNight, market0: InstrumentMar
         value[k] = units * market0.price[j]
         vega[k] = units * greeks.vega / 100.0
     code, books = pd.factorize(prior["book"].to_numpy(dtype=object), sort=True)
-    keep = code >= 0  # every rejected row has a book (NO_BOOK when its file row had none)
-    code, ok = code[keep], ok[keep]
-    sums, _ = sums_by_group([value[keep], vega[keep]], code, len(books))  # a book's own rows, in order
-    unvalued = np.bincount(code[~ok], minlength=len(books)).astype(np.int64)
+    sums, _ = sums_by_group([value, vega], code, len(books))  # a book's own rows, in order
+    unvalued = np.bincount(code[~ok & (code >= 0)], minlength=len(books)).astype(np.int64)
     return pd.DataFrame({"book": books.astype(object), columns[0]: sums[0], columns[1]: sums[1],
                          columns[2]: unvalued})
 
