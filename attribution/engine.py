@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import collections
 import contextlib
+import dataclasses
 import datetime as dt
 import json
 import time
@@ -44,6 +45,7 @@ from attribution.archive import (
     dates_with_rows,
     write_night,
 )
+from attribution.arrow_ipc import from_ipc, to_ipc
 from attribution.books import (
     book_frame,
     conservation,
@@ -344,6 +346,21 @@ class ArchiveRows:
     unpriced_new: int
     official_breaks: int
     missing_days: tuple[str, ...]  # business days without a folder between the prior and run dates
+
+    def __reduce__(self) -> tuple[Callable[..., ArchiveRows], tuple[object, ...]]:
+        """Pickled with each table as Arrow IPC bytes (:mod:`attribution.arrow_ipc`): a backfill's worker hands
+        a night back at a fraction of the cost of pickling its Arrow columns one by one, the same rows arriving."""
+        values = tuple({name: to_ipc(table) for name, table in self.tables.items()} if f.name == "tables"
+                       else getattr(self, f.name) for f in dataclasses.fields(self))
+        return _unpickled_rows, values
+
+
+def _unpickled_rows(*values: object) -> ArchiveRows:
+    """The :class:`ArchiveRows` that :meth:`ArchiveRows.__reduce__` pickled."""
+    names = [f.name for f in dataclasses.fields(ArchiveRows)]
+    fields = dict(zip(names, values, strict=True))
+    fields["tables"] = {name: from_ipc(data) for name, data in fields["tables"].items()}  # type: ignore[attr-defined]
+    return ArchiveRows(**fields)  # type: ignore[arg-type]
 
 
 def archive_rows(night: PreparedNight) -> ArchiveRows:
