@@ -9,11 +9,13 @@ and hands it back when it is provably the same computation:
 * the row rules of the holdings and market files (:func:`attribution.contract.clean_holdings`): the
   same frames read, the same check settings and reporting currency. The run date's event files
   (trade activity, cash flows, official P&L) are checked apart, on the run date only, as before;
-* the market state (:func:`attribution.market.build_market` then the mark roll): the same clean
-  tables (the very objects: a prior date restated for a split tonight is a new table, priced again),
-  the same instrument terms (a date's own instruments plus the other date's that it no longer lists,
-  so a night where the listing changed prices again), the same settings, and the same files on the
-  earlier dates a missing mark may be rolled from.
+* the market state (:func:`attribution.market.build_market` then the mark roll) of the date's own
+  instruments: the same clean tables (the very objects: a prior date restated for a split tonight is a
+  new table, priced again), the same settings, and the same files on the earlier dates a missing mark
+  may be rolled from. A night's market also holds the other date's instruments that this one no longer
+  lists (they differ between the date's two nights when the listing changed): those are priced on
+  their own and appended when that is provably the market a whole build gives (see
+  :meth:`DateCache.market`), and the whole market is built again otherwise.
 
 Each piece of work keeps the exception rows it added to the ledger, and a reuse adds the same rows at
 the same place, so each night's ``input_exceptions`` are what a fresh night writes. The rules that
@@ -55,11 +57,11 @@ class _Date:
     held: CleanNight | None = None
     held_key: Hashable = None
     held_parts: Parts = ()
-    market: InstrumentMarket | None = None
+    market: InstrumentMarket | None = None  # the date's own instruments' market (see DateCache.market)
     market_key: Hashable = None
     market_inputs: tuple[object, ...] = ()
-    market_terms: pd.DataFrame | None = None
     market_parts: Parts = ()
+    market_none: Parts | None = None  # the ledger rows of a build over no instrument (see DateCache.market)
 
 
 def _market_inputs(clean: CleanNight) -> tuple[object, ...]:
@@ -132,24 +134,87 @@ class DateCache:
         return held
 
     def market(self, clean: CleanNight, terms: pd.DataFrame, key: Hashable, log: ExceptionLog,
-               build: Callable[[], InstrumentMarket]) -> InstrumentMarket:
-        """``build()`` (the date's market, marks rolled), or the market it gave for the same inputs.
+               build: Callable[[pd.DataFrame, ExceptionLog], InstrumentMarket]) -> InstrumentMarket:
+        """``build(terms, log)`` (the date's market, marks rolled, its exception rows added to ``log``), or the
+        same market made from the date's own instruments' market, built once per date.
+
+        ``terms`` are the date's own instruments (``clean.instruments``), then those of the other date that
+        this one no longer lists (:func:`attribution.market.instrument_terms`): they differ between the date's
+        two nights when an instrument is listed or dropped. The own instruments' market is kept; the other
+        rows are priced on their own and appended. That is the market a build over ``terms`` gives, ledger
+        included, when pricing the other rows alone finds no more than a build over no instrument at all (the
+        rows of the date's files that no instrument matches, such as a future mark of no future): each
+        instrument's state depends on its own row alone, the other rows then add no ledger row of their own
+        and match no file row that the own instruments leave unmatched, so the build's ledger rows are those
+        of the own instruments, in their order. Otherwise (or when ``terms`` do not start with the date's own
+        instruments) ``terms`` are built whole, as a single run does.
 
         ``key`` holds every setting the build reads and the stamps of the earlier dates it may roll
-        marks from; ``clean`` and ``terms`` are compared here.
+        marks from; ``clean`` is compared here.
         """
         known = self._entry(clean.raw)
+        extra = _extra_terms(terms, clean.instruments)
+        if known is None or extra is None:
+            return build(terms, log)
         inputs = _market_inputs(clean)
-        if (known is not None and known.market is not None and known.market_key == key
-                and all(a is b for a, b in zip(inputs, known.market_inputs, strict=True))
-                and known.market_terms is not None
-                and (known.market_terms is terms or known.market_terms.equals(terms))):
+        if (known.market is not None and known.market_key == key
+                and all(a is b for a, b in zip(inputs, known.market_inputs, strict=True))):
             self.reused["market"] += 1
+        else:
+            own_log = ExceptionLog(log.as_of)
+            known.market = _frozen(build(clean.instruments, own_log))
+            known.market_key, known.market_inputs, known.market_parts = key, inputs, own_log.since(0)
+            known.market_none = None
+        if not len(extra):
             log.extend(known.market_parts)
             return known.market
-        mark = log.mark()
-        market = build()
-        if known is not None:
-            known.market, known.market_key, known.market_inputs = _frozen(market), key, inputs
-            known.market_terms, known.market_parts = terms, log.since(mark)
-        return market
+        extra_log = ExceptionLog(log.as_of)
+        appended = _appended(known.market, build(extra, extra_log), terms.index)
+        if known.market_none is None:  # what a build of no instrument finds: rows of the date's files alone
+            none_log = ExceptionLog(log.as_of)
+            build(extra.iloc[:0], none_log)
+            known.market_none = none_log.since(0)
+        if appended is None or not _same_rows(extra_log.since(0), known.market_none):
+            return build(terms, log)  # the other rows found something of their own: the whole build, in its order
+        log.extend(known.market_parts)
+        return appended
+
+
+def _same_rows(a: Parts, b: Parts) -> bool:
+    """Whether two runs of ledger rows are the same rows in the same order."""
+    return len(a) == len(b) and all(
+        (x.file, x.rule, x.severity) == (y.file, y.rule, y.severity) and np.array_equal(x.key, y.key)
+        and np.array_equal(x.detail, y.detail) and np.array_equal(x.keyless, y.keyless)
+        for x, y in zip(a, b, strict=True))
+
+
+def _extra_terms(terms: pd.DataFrame, own: pd.DataFrame) -> pd.DataFrame | None:
+    """The rows of ``terms`` after the date's own instruments ``own`` (none when ``terms`` is ``own``); None when
+    ``terms`` do not start with exactly ``own``'s rows (same labels, columns, types and values)."""
+    if terms is own:
+        return terms.iloc[:0]
+    n = len(own)
+    if len(terms) <= n or not terms.iloc[:n].equals(own) or not terms.index[:n].equals(own.index):
+        return None
+    return terms.iloc[n:]
+
+
+def _appended(own: InstrumentMarket, other: InstrumentMarket, ids: pd.Index) -> InstrumentMarket | None:
+    """``own``'s instruments followed by ``other``'s, labelled ``ids``: each array joined end to end (a rolled-mark
+    flag that one side lacks is False there, as a build over both rows gives). None when the two differ in a
+    setting or one lacks another array."""
+    values: dict[str, object] = {"ids": ids}
+    for f in dataclasses.fields(InstrumentMarket):
+        a, b = getattr(own, f.name), getattr(other, f.name)
+        if f.name == "ids":
+            continue
+        if f.name == "mark_rolled" and (a is None) != (b is None):
+            a = np.zeros(len(own.ids), dtype=bool) if a is None else a
+            b = np.zeros(len(other.ids), dtype=bool) if b is None else b
+        if isinstance(a, np.ndarray) and isinstance(b, np.ndarray):
+            values[f.name] = np.concatenate([a, b])
+        elif a is None and b is None or not isinstance(a, np.ndarray) and not isinstance(b, np.ndarray) and a == b:
+            values[f.name] = a
+        else:
+            return None
+    return InstrumentMarket(**values)  # type: ignore[arg-type]

@@ -209,12 +209,12 @@ def _market(config: JobConfig, basis: TimeBasis, clean: CleanNight, terms: pd.Da
     """The date's market state with its missing marks rolled forward (shared across a backfill's nights)."""
     marks_file = clean.raw.path("option_marks.parquet")
 
-    def build() -> InstrumentMarket:
+    def build(terms: pd.DataFrame, log: ExceptionLog) -> InstrumentMarket:
         market = build_market(clean, terms, basis, config.checks, log, config.american_precision)
         return roll_marks(market, terms, config, basis, marks_file, log)
 
     if shared is None:
-        return build()
+        return build(terms, log)
     as_of = clean.raw.as_of
     sources = tuple((d, folder_stamp(config.data_root, d))
                     for d in roll_dates(config.data_root, as_of, basis, config.checks.mark_roll_days,

@@ -12,6 +12,7 @@ import duckdb
 import pandas as pd
 import pytest
 
+import attribution.engine as engine_module
 from attribution.backfill import backfill
 from attribution.config import JobConfig
 from attribution.date_cache import DateCache
@@ -108,3 +109,72 @@ def test_folder_listing_is_read_again_when_a_folder_is_added(tmp_path):
     assert cache.available_dates(tmp_path) == [dt.date(2026, 11, 2), dt.date(2026, 11, 3)]
     (tmp_path / "as_of=2026-11-02").rmdir()
     assert cache.available_dates(tmp_path) == [dt.date(2026, 11, 3)]
+
+
+def _copied(config: JobConfig, dates: list[dt.date], root: Path, days: int = 4) -> JobConfig:
+    """The first ``days`` dates' folders copied under ``root`` (to be edited), and the job on them."""
+    for day in dates[:days]:
+        src = config.data_root / f"as_of={day.isoformat()}"
+        (root / src.name).mkdir(parents=True)
+        for f in src.iterdir():
+            (root / src.name / f.name).write_bytes(f.read_bytes())
+    return dataclasses.replace(config, data_root=root)
+
+
+def _list_new(root: Path, day: dt.date, kind: str, new_id: str) -> None:
+    """``day``'s instruments file lists one more instrument, a copy of its first of ``kind`` under ``new_id``."""
+    rows = read_rows(root, day, "instruments")
+    rows.append({**next(r for r in rows if (r.get("kind") or "option") == kind), "instrument_id": new_id})
+    put_rows(root, day, "instruments", rows)
+
+
+def _market_builds(monkeypatch: pytest.MonkeyPatch) -> list[tuple[dt.date, int]]:
+    """(date, instruments) of every market build of the night's engine from now on."""
+    builds: list[tuple[dt.date, int]] = []
+    build = engine_module.build_market
+
+    def counted(night, terms, *args, **kwargs):
+        builds.append((night.raw.as_of, len(terms)))
+        return build(night, terms, *args, **kwargs)
+
+    monkeypatch.setattr(engine_module, "build_market", counted)
+    return builds
+
+
+def test_an_instrument_listed_the_next_day_is_priced_alone(desk, tmp_path, monkeypatch):
+    """An option listed on the run date only joins the prior date's market (to settle a trade in it) without
+    that market being built again: the date's own instruments are priced once, the new one alone, and the night
+    equals the night computed alone, ledger included."""
+    config, dates = desk
+    config = _copied(config, dates, tmp_path / "data")
+    _list_new(config.data_root, dates[2], "option", "NEWLY-LISTED-C1")
+    cache = DateCache()
+    prepare_night(config, dates[1], cache=cache)
+    own = len(read_rows(config.data_root, dates[1], "instruments"))
+    builds = _market_builds(monkeypatch)
+    shared = prepare_night(config, dates[2], cache=cache)
+    assert (dates[1], own + 1) not in builds  # the prior date's whole market was not built again
+    assert (dates[1], 1) in builds
+    assert cache.reused["market"] == 1
+    assert_same_night(shared, prepare_night(config, dates[2]))
+
+
+def test_an_instrument_that_matches_a_file_row_of_the_prior_date_builds_its_market_whole(desk, tmp_path,
+                                                                                         monkeypatch):
+    """A future listed on the run date only, whose settlement price the prior date's file already gives (there a
+    mark of no future, in its ledger): in the night's prior market the mark finds its future, so that ledger row
+    is not written. The prior market is then built whole, and the night equals the night computed alone."""
+    config, dates = desk
+    config = _copied(config, dates, tmp_path / "data")
+    _list_new(config.data_root, dates[2], "future", "NEWLY-LISTED-FUT")
+    marks = read_rows(config.data_root, dates[1], "future_marks")
+    put_rows(config.data_root, dates[1], "future_marks", [*marks, {**marks[0], "instrument_id": "NEWLY-LISTED-FUT"}])
+    cache = DateCache()
+    first = prepare_night(config, dates[1], cache=cache)
+    assert "NEWLY-LISTED-FUT" in set(first.exceptions["key"])  # a mark of no future on its own date
+    own = len(read_rows(config.data_root, dates[1], "instruments"))
+    builds = _market_builds(monkeypatch)
+    shared = prepare_night(config, dates[2], cache=cache)
+    assert (dates[1], own + 1) in builds
+    assert "NEWLY-LISTED-FUT" not in set(shared.exceptions["key"])
+    assert_same_night(shared, prepare_night(config, dates[2]))
