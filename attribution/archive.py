@@ -37,16 +37,23 @@ SET_CHECKPOINT_THRESHOLD = "SET checkpoint_threshold = '256MB'"
 # (the demo's position rows: 8 ms an insert instead of 14). The rows and their order are the same.
 SET_ONE_THREAD = "SET threads = 1"
 
-# While a night's rows are inserted, DuckDB may keep every block it writes them to in its buffer pool (by default up
-# to 80 % of the machine's memory): 330 MB for a million position rows, held through the reports after them. The
-# insert streams its rows into blocks written to the file; capped, the pool lets go of the written ones (a
-# million rows: 505 MB more memory while inserting, 176 MB capped). The cap is lifted after the transaction, so
-# the reports' queries run with DuckDB's default. The rows are the same.
-# A small night (the demo's: about 1 MB of rows) is written uncapped: setting and lifting the cap cost it about
-# 8 ms of system time a night (an 80-night demo backfill: 1.3-1.4 s against 0.7-0.8 s of the main process's).
-SET_WRITE_MEMORY = "SET memory_limit = '256MB'"
+# While a large night's rows are inserted, DuckDB keeps the blocks it writes them to in its buffer pool (by default
+# up to 80 % of the machine's memory), which would be held through the reports after them. Once the night is
+# committed those blocks are in the file, so lowering the memory limit for a moment makes DuckDB let go of them
+# (a million position rows: 684 -> 437 MB of RSS after the commit), and the limit is put back for the reports'
+# queries. The insert itself runs under DuckDB's default limit: under any cap up to 1 GB DuckDB inserted the rows
+# on one thread (a million rows: the same 3.2-3.5 s of CPU on one thread instead of two, 4.9 s in the bench
+# instead of 2.7), and the insert's own peak (about 550 MB over what it starts from at a million rows, 280 MB under
+# a 256 MB cap) stays level with the explain's, the night's peak (1M: 1.43-1.44 GB either way; 3M: 3.79 GB, the
+# insert well below it). The rows are the same either way.
+# A small night (the demo's: about 1 MB of rows) is left alone: setting and lifting a limit cost about 8 ms of
+# system time a night (an 80-night demo backfill: 1.3-1.4 s against 0.7-0.8 s of the main process's).
+SET_RELEASE_MEMORY = "SET memory_limit = '256MB'"
 RESET_MEMORY = "RESET memory_limit"
-CAP_WRITE_FROM_BYTES = 64 << 20  # rows of at least 64 MB (about 100,000 positions) go in under the cap
+RELEASE_FROM_BYTES = 64 << 20  # rows of at least 64 MB (about 100,000 positions) are let go of once committed
+
+# The name by which an insert's statement reads its Arrow rows (see _insert): no table or view may have it.
+ARROW_ROWS = "attribution_arrow_rows"
 
 # A table of at most this many rows has its float and integer columns taken from pandas in one copy per type (a
 # block), which costs less than the per-column calls; a larger one hands each column over without a copy.
@@ -106,6 +113,7 @@ def connect(archive: Path, read_only: bool = False) -> duckdb.DuckDBPyConnection
     try:
         present = _present_columns(con)
         _refuse_foreign_tables(present, archive)
+        _refuse_shadowing_name(con, archive)
         con.execute("BEGIN TRANSACTION")
         for table, columns in TABLES.items():
             if table not in present:
@@ -145,6 +153,17 @@ def _refuse_foreign_tables(present: dict[str, list[str]], archive: Path) -> None
             raise ArchiveFormatError(
                 f"{archive}: table {table} is not an archive table of this job (its columns begin "
                 f"{', '.join(found[:5])}); point --archive at another file")
+
+
+def _refuse_shadowing_name(con: duckdb.DuckDBPyConnection, archive: Path) -> None:
+    """Stop before any change when the file holds a table or view named :data:`ARROW_ROWS`: the inserts would read
+    it in place of the night's rows."""
+    found = con.execute("SELECT table_schema FROM information_schema.tables WHERE lower(table_name) = ?",
+                        [ARROW_ROWS]).fetchall()
+    if found:
+        raise ArchiveFormatError(
+            f"{archive}: holds a table or view named {ARROW_ROWS} (schema {found[0][0]}), a name this job keeps for "
+            "its own use; point --archive at another file")
 
 
 def _add_missing_columns(con: duckdb.DuckDBPyConnection, table: str, columns: tuple[tuple[str, str], ...],
@@ -206,12 +225,19 @@ def arrow_table(frame: pd.DataFrame, table: str) -> pa.Table:
 
 
 def _insert(con: duckdb.DuckDBPyConnection, table: str, rows: pa.Table) -> None:
-    """Append ``rows`` (Arrow, with the table's columns in order: the insert is positional; none: nothing)."""
+    """Append ``rows`` (Arrow, with the table's columns in order: the insert is positional; none: nothing).
+
+    One INSERT statement reads the Arrow table by the name of the local variable holding it (DuckDB's scan of a
+    Python object it finds by name): a demo night's inserts cost about a quarter less CPU than through a relation
+    (``con.from_arrow(rows).insert_into(table)``), which binds the scan and the insert separately. The same rows. A
+    table or view of that name in the archive would be read instead: :func:`connect` refuses such a file.
+    """
     names = [name for name, _ in TABLES[table]]
     if rows.column_names != names:
         raise ValueError(f"{table}: Arrow rows with columns {rows.column_names}, expected {names}")
     if rows.num_rows:
-        con.from_arrow(rows).insert_into(table)
+        attribution_arrow_rows = rows  # noqa: F841 - read by name (ARROW_ROWS) by the statement below
+        con.execute(f"INSERT INTO {table} SELECT * FROM attribution_arrow_rows")
 
 
 def column_rows(columns: dict[str, np.ndarray], table: str) -> pa.Table:
@@ -311,18 +337,21 @@ def write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[str
     :class:`BookHistory`, read in place of the quality query and updated once the night is committed.
     Returns the ``book_quality`` rows written, as columns (see :func:`~attribution.quality_table.quality_columns`).
     """
-    capped = sum(table.nbytes for table in tables.values()) >= CAP_WRITE_FROM_BYTES
-    if capped:
-        con.execute(SET_WRITE_MEMORY)
-    try:
-        quality = _write_night(con, as_of, tables, replace, history)
-    finally:
-        if capped:
-            with contextlib.suppress(duckdb.Error):  # a connection that failed keeps its first error
-                con.execute(RESET_MEMORY)
+    quality = _write_night(con, as_of, tables, replace, history)
     if history is not None:
         history.record(as_of, tables.get("book_pnl"))
+    if sum(table.nbytes for table in tables.values()) >= RELEASE_FROM_BYTES:
+        release_written_blocks(con)
     return quality
+
+
+def release_written_blocks(con: duckdb.DuckDBPyConnection) -> None:
+    """Let DuckDB drop from memory the blocks it kept of what is committed (they are in the file), then give the
+    connection its memory limit back. Memory DuckDB cannot let go of (it refuses a limit below it) is kept: the
+    night is committed either way."""
+    with contextlib.suppress(duckdb.Error):
+        con.execute(SET_RELEASE_MEMORY)
+    con.execute(RESET_MEMORY)
 
 
 def _write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[str, pa.Table], replace: bool,
@@ -339,7 +368,7 @@ def _write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[st
         quality = quality_columns(series, as_of)
         _insert(con, "book_quality", column_rows(quality, "book_quality"))
         _insert(con, "runs", tables["runs"])
-        con.execute("COMMIT")
+        _commit(con)
     except BaseException:
         # A failed COMMIT (e.g. a full disk) has already ended the transaction, and ROLLBACK would then
         # raise "no transaction is active" in place of the real cause: the first error is the one to raise.
@@ -347,6 +376,11 @@ def _write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[st
             con.execute("ROLLBACK")
         raise
     return quality
+
+
+def _commit(con: duckdb.DuckDBPyConnection) -> None:
+    """End the night's transaction: its rows are in the archive (in its write-ahead log) once this returns."""
+    con.execute("COMMIT")
 
 
 def archived_dates(con: duckdb.DuckDBPyConnection) -> list[dt.date]:

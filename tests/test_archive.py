@@ -175,45 +175,27 @@ def test_failed_write_leaves_the_archive_exactly_as_it_was(archived, desk, tmp_p
     assert_same_rows(rows_after, rows_before)
 
 
-class _CommitFailsLikeAFullDisk:
-    """A connection whose COMMIT fails the way DuckDB's does when the disk is full.
+def _commit_fails_like_a_full_disk(con: duckdb.DuckDBPyConnection) -> None:
+    """COMMIT failing the way DuckDB's does when the disk is full.
 
     Checked on DuckDB 2.0 with a 3 MB tmpfs: COMMIT raises "TransactionContext Error: Failed to
     commit: Could not write file ... .wal: No space left on device" and has already ended the
     transaction, so a following ROLLBACK raises "cannot rollback - no transaction is active".
     """
-
-    def __init__(self, con: duckdb.DuckDBPyConnection) -> None:
-        self._con = con
-
-    def execute(self, sql: str, *args: object) -> duckdb.DuckDBPyConnection:
-        if sql == "COMMIT":
-            self._con.execute("ROLLBACK")
-            raise duckdb.TransactionException("TransactionContext Error: Failed to commit: Could not write "
-                                              "file \"a.duckdb.wal\": No space left on device")
-        return self._con.execute(sql, *args)
-
-    def __getattr__(self, name: str) -> object:
-        return getattr(self._con, name)
+    con.execute("ROLLBACK")
+    raise duckdb.TransactionException("TransactionContext Error: Failed to commit: Could not write "
+                                      "file \"a.duckdb.wal\": No space left on device")
 
 
 def test_failed_commit_reports_its_own_cause(archived, desk, tmp_path, monkeypatch, capsys):
     """When COMMIT itself fails (disk full), the run exits 1 with that cause, not a rollback error; no change."""
     box = copy_of(archived, tmp_path / "box")
     before, _ = read_archive(box / "a.duckdb", RUN)
-    opened = []
-
-    def failing_connect(path: Path, read_only: bool = False) -> _CommitFailsLikeAFullDisk:
-        opened.append(archive_module.connect(path, read_only))
-        return _CommitFailsLikeAFullDisk(opened[-1])
-
-    monkeypatch.setattr(engine_module, "connect", failing_connect)
+    monkeypatch.setattr(archive_module, "_commit", _commit_fails_like_a_full_disk)
     capsys.readouterr()
     assert run(desk, box) == 1
     err = capsys.readouterr().err
     assert "No space left on device" in err and "cannot rollback" not in err, err
-    for con in opened:
-        con.close()
     assert read_archive(box / "a.duckdb", RUN)[0] == before
 
 
@@ -359,51 +341,106 @@ def _memory_limit(con: duckdb.DuckDBPyConnection) -> str:
     return con.execute("SELECT current_setting('memory_limit')").fetchall()[0][0]
 
 
-def test_night_rows_go_in_with_duckdbs_memory_capped_and_the_cap_is_lifted_after(archived, desk, tmp_path,
-                                                                                 monkeypatch):
-    """Every insert of a large night runs under the write cap (DuckDB lets go of the blocks it wrote); after the
-    transaction the connection has its memory limit as before (the reports' queries run uncapped). The mini
-    desk's night is made "large" by a threshold of 0 bytes."""
-    monkeypatch.setattr(archive_module, "CAP_WRITE_FROM_BYTES", 0)
-    box = copy_of(archived, tmp_path / "box")
-    during, around = [], []
-    insert, write = archive_module._insert, engine_module.write_night
-
-    def capped_insert(con, table, rows):
-        during.append(_memory_limit(con))
-        insert(con, table, rows)
-
-    def write_night(con, *args, **kwargs):
-        before = _memory_limit(con)
-        quality = write(con, *args, **kwargs)
-        around.append((before, _memory_limit(con)))
-        return quality
-
-    monkeypatch.setattr(archive_module, "_insert", capped_insert)
-    monkeypatch.setattr(engine_module, "write_night", write_night)
-    assert run(desk, box) == 3
-    cap = duckdb.connect()
-    cap.execute(archive_module.SET_WRITE_MEMORY)
-    assert len(during) >= 4 and set(during) == {_memory_limit(cap)}
-    cap.close()
-    [(before, after)] = around
-    assert before == after != during[0]
+def _in_transaction(con: duckdb.DuckDBPyConnection) -> bool:
+    """Whether ``con`` has a transaction open (BEGIN fails inside one)."""
+    try:
+        con.execute("BEGIN TRANSACTION")
+    except duckdb.TransactionException:
+        return True
+    con.execute("ROLLBACK")
+    return False
 
 
-def test_a_small_night_goes_in_uncapped(archived, desk, tmp_path, monkeypatch):
-    """Below the threshold (the mini desk's night is a few kB) the memory limit is never changed."""
-    box = copy_of(archived, tmp_path / "box")
-    during = []
-    insert = archive_module._insert
+def _watch_night(monkeypatch) -> tuple[list, list]:
+    """Record the memory limit at each insert, and each release of written blocks (whether a transaction was
+    open then, and the limit after it)."""
+    inserts, releases = [], []
+    insert, release = archive_module._insert, archive_module.release_written_blocks
 
     def watched_insert(con, table, rows):
-        during.append(_memory_limit(con))
+        inserts.append(_memory_limit(con))
         insert(con, table, rows)
 
+    def watched_release(con):
+        open_then = _in_transaction(con)
+        release(con)
+        releases.append((open_then, _memory_limit(con)))
+
     monkeypatch.setattr(archive_module, "_insert", watched_insert)
+    monkeypatch.setattr(archive_module, "release_written_blocks", watched_release)
+    return inserts, releases
+
+
+def test_a_large_night_goes_in_under_duckdbs_own_limit_and_its_blocks_are_let_go_of_once_committed(
+        archived, desk, tmp_path, monkeypatch):
+    """A large night (the mini desk's, made large by a threshold of 0 bytes) is inserted under DuckDB's default
+    memory limit (a cap made DuckDB insert on one thread), and its written blocks are released after the COMMIT,
+    never inside the transaction; the connection ends with its limit as before (the reports run uncapped)."""
+    monkeypatch.setattr(archive_module, "RELEASE_FROM_BYTES", 0)
+    box = copy_of(archived, tmp_path / "box")
+    inserts, releases = _watch_night(monkeypatch)
     assert run(desk, box) == 3
     default = _memory_limit(duckdb.connect())
-    assert len(during) >= 4 and set(during) == {default}
+    assert len(inserts) >= 4 and set(inserts) == {default}
+    assert releases == [(False, default)]
+
+
+def test_a_small_night_is_not_released(archived, desk, tmp_path, monkeypatch):
+    """Below the threshold (the mini desk's night is a few kB) the memory limit is never changed."""
+    box = copy_of(archived, tmp_path / "box")
+    inserts, releases = _watch_night(monkeypatch)
+    assert run(desk, box) == 3
+    assert len(inserts) >= 4 and set(inserts) == {_memory_limit(duckdb.connect())}
+    assert releases == []
+
+
+def test_releasing_lets_duckdb_drop_the_committed_blocks_and_puts_the_limit_back(tmp_path, monkeypatch):
+    """After a committed insert DuckDB holds its blocks in memory; the release (with its limit lowered below them)
+    lets go of them, keeps the rows, and leaves the connection's memory limit as it was."""
+    monkeypatch.setattr(archive_module, "SET_RELEASE_MEMORY", "SET memory_limit = '4MB'")
+    con = duckdb.connect(str(tmp_path / "a.duckdb"))
+    rows = pa.table({"a": np.arange(1_000_000, dtype=np.float64), "b": np.sqrt(np.arange(1_000_000.0))})
+    con.execute("CREATE TABLE t (a DOUBLE, b DOUBLE)")
+    con.execute("INSERT INTO t SELECT * FROM rows")
+    limit = _memory_limit(con)
+
+    def held() -> int:
+        return int(con.execute("SELECT sum(memory_usage_bytes) FROM duckdb_memory()").fetchall()[0][0])
+
+    before = held()
+    archive_module.release_written_blocks(con)
+    assert held() < before / 2 and before > 8 << 20
+    assert _memory_limit(con) == limit
+    kept = con.execute("SELECT a, b FROM t").fetchnumpy()  # read back from the file
+    assert np.array_equal(kept["a"], rows.column("a").to_numpy()) and np.array_equal(kept["b"], rows.column("b"))
+    con.close()
+
+
+def test_a_release_duckdb_refuses_leaves_the_night_committed(archived, desk, tmp_path, monkeypatch):
+    """When DuckDB cannot lower its limit (memory it cannot let go of), the night stays committed and the run ends
+    as without the release."""
+    monkeypatch.setattr(archive_module, "RELEASE_FROM_BYTES", 0)
+    monkeypatch.setattr(archive_module, "SET_RELEASE_MEMORY", "SET memory_limit = 'not a size'")
+    box = copy_of(archived, tmp_path / "box")
+    _, rows_before = read_archive(box / "a.duckdb", RUN)
+    assert run(desk, box) == 3
+    _, rows_after = read_archive(box / "a.duckdb", RUN)
+    assert_same_rows(rows_after, rows_before)
+
+
+def test_a_file_holding_the_inserts_arrow_name_is_refused(tmp_path, capsys):
+    """A table named as the inserts read their Arrow rows would be read in their place: such a file is refused
+    (exit 1, naming the table) and left as it was."""
+    write_mini_desk(tmp_path / "data")
+    path = tmp_path / "a.duckdb"
+    with duckdb.connect(str(path)) as con:
+        con.execute(f"CREATE TABLE {archive_module.ARROW_ROWS.upper()} (id INTEGER)")
+    before = hashlib.sha256(path.read_bytes()).hexdigest()
+    code = main(["run", "--as-of", RUN.isoformat(), "--data", str(tmp_path / "data"), "--archive", str(path),
+                 "--no-reports"])
+    assert code == 1
+    assert f"named {archive_module.ARROW_ROWS}" in capsys.readouterr().err
+    assert hashlib.sha256(path.read_bytes()).hexdigest() == before
 
 
 def test_archive_night_lets_go_of_the_rows_once_committed(archived, desk, tmp_path):
