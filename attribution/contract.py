@@ -148,11 +148,11 @@ class _Rules:
     def _factorised(self, column: str) -> _Codes | None:
         """The column's codes (from reading, else computed once), or None for a column that is not text."""
         if column not in self._codes:
-            values = self.frame[column]
             keyed = self._keys.get(column)
-            if keyed is not None and len(keyed) == len(values):
+            if keyed is not None and len(keyed) == len(self.frame):
                 self._codes[column] = _Codes.read(keyed)
             else:
+                values = self.frame[column]
                 self._codes[column] = _Codes.of(values) if values.dtype == object else None
         return self._codes[column]
 

@@ -91,7 +91,7 @@ def _leg_reason(night: CleanNight, market: InstrumentMarket, inst_ids: NDArray[n
 def _terms_changed(market0: InstrumentMarket, market1: InstrumentMarket, instruments_file: str,
                    log: ExceptionLog) -> NDArray[np.bool_]:
     """Per instrument of ``market0``: listed on both dates with different terms (logged per instrument)."""
-    j = market1.locate(market0.ids.to_numpy())
+    j = market1.places(market0.ids)
     both = market0.listed & take(market1.listed, j, False)
     detail = np.full(len(j), "", dtype=object)
     jj = np.where(both, j, 0)
