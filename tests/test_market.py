@@ -289,3 +289,14 @@ def test_take_fills_missing_indices() -> None:
     assert take(np.zeros(0), np.array([-1, -1]), np.nan).shape == (2,)
     assert take(np.array(["a"], dtype=object), np.array([-1, 0]), "").tolist() == ["", "a"]
     assert take(np.zeros(0, dtype=bool), np.array([-1]), True).tolist() == [True]
+
+
+def test_places_of_another_markets_ids_are_their_locations(desk):
+    """A market's places of the other date's instrument ids (distinct labels) are the rows `locate` finds for the
+    same ids, -1 for an id it does not hold."""
+    m0, m1, _ = _markets(desk)
+    others = pd.Index([*m1.ids, "NOT-AN-INSTRUMENT"], dtype=object)
+    places = m0.places(others)
+    assert places.dtype == np.intp
+    assert np.array_equal(places, m0.locate(others.to_numpy()))
+    assert places[-1] == -1 and (places[:-1] >= 0).any()
