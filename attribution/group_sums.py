@@ -32,10 +32,13 @@ def sums_by_group(columns: list[np.ndarray], code: np.ndarray, groups: int) -> t
     starts = np.flatnonzero(np.concatenate(([True], ordered[1:] != ordered[:-1])))
     present = ordered[starts]
     for lo in range(0, len(columns), SUM_BLOCK_COLUMNS):
-        terms = np.stack([np.asarray(column, dtype=float)[rows] for column in columns[lo:lo + SUM_BLOCK_COLUMNS]])
+        block_columns = columns[lo:lo + SUM_BLOCK_COLUMNS]
+        terms = np.empty((len(block_columns), rows.size))
+        for j, column in enumerate(block_columns):  # gathered straight into the block: no second copy
+            np.take(np.asarray(column, dtype=float), rows, out=terms[j])
         not_nan = ~np.isnan(terms)
         terms[~not_nan] = 0.0
         block = slice(lo, lo + len(terms))
         sums[block, present] = np.add.reduceat(terms, starts, axis=1) + 0.0  # + 0.0: a sum of -0.0 alone is 0.0
-        counts[block, present] = np.add.reduceat(not_nan.astype(np.int64), starts, axis=1)
+        counts[block, present] = np.add.reduceat(not_nan, starts, axis=1, dtype=np.int64)  # no int64 copy of the flags
     return sums, counts

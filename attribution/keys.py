@@ -153,7 +153,9 @@ class NightTrades:
         """None unless both dates' trade ids were coded where read."""
         if prior is None or run is None:
             return None
-        return cls(prior, run, lookup(run.values, prior.values))
+        trades = cls(prior, run, lookup(run.values, prior.values))
+        pa.default_memory_pool().release_unused()  # the hash table of a million prior ids, handed back at once
+        return trades
 
     def universe(self) -> pa.Array:
         """The distinct non-null trade ids over both files."""

@@ -7,6 +7,8 @@ all amounts in the reporting currency. All arithmetic is on whole arrays.
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+
 import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
@@ -49,6 +51,31 @@ from attribution.vol_time import VarianceClock, clock_terms, decay_per_year
 def _state(market: InstrumentMarket, idx: NDArray[np.intp]) -> MarketState:
     return MarketState(market.spot[idx], market.vol[idx], market.tau_years[idx], market.rate[idx],
                        market.div_yield[idx], market.dividend_pv[idx])
+
+
+def pair_blocks(rows: NDArray[np.intp], pair: NDArray[np.intp], size: int,
+                ) -> Iterator[tuple[NDArray[np.intp], NDArray[np.intp]]]:
+    """``rows`` (ascending) in blocks of about ``size``, with their ``pair`` codes: every row of one pair in one
+    block (a pair of more than ``size`` rows is a block of its own), each block's rows ascending. One block (all
+    of ``rows``) when they are ``size`` or fewer; none when there is no row."""
+    if rows.size <= size:
+        if rows.size:
+            yield rows, pair
+        return
+    order = np.argsort(pair, kind="stable")
+    ordered = pair[order]
+    start = 0
+    while start < rows.size:
+        end = start + size
+        if end >= rows.size:
+            end = rows.size
+        else:  # back to the first row of the pair found there, or on past it when the pair began at start
+            end = int(np.searchsorted(ordered, ordered[end], side="left"))
+            if end <= start:
+                end = int(np.searchsorted(ordered, ordered[start], side="right"))
+        block = np.sort(order[start:end])
+        yield rows[block], pair[block]
+        start = end
 
 
 def _flags(parts: list[tuple[NDArray[np.bool_], str]], n: int) -> NDArray[np.object_]:
@@ -100,6 +127,10 @@ def _vol_parts(smiles: NightSmiles, i0: NDArray[np.intp], i1: NDArray[np.intp], 
         for name, values in part.items():
             out.setdefault(name, np.empty(n))[rows] = values
     return out
+
+
+OVERNIGHT_BLOCK_ROWS = 262_144  # overnight rows explained at a time (whole instrument pairs)
+_EXERCISE_NAMES = np.array([None, "european", "american"], dtype=object)
 
 
 def _names(codes: NDArray[np.int8], names: dict[int, str]) -> NDArray[np.object_]:
@@ -229,14 +260,15 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         cols["theta_per_business_day"][p] = units0[p] * g0.theta_per_year * one_day
         del s0
 
-    k = np.flatnonzero(overnight)
-    if k.size:
+    # The overnight explain, in blocks of whole instruments (rows of one instrument pair stay in one block, so
+    # each pair is priced once): a row's figures depend on its own inputs alone, so the blocks change no value,
+    # and a million rows' terms, states and shares are never held at once.
+    overnight_rows = np.flatnonzero(overnight)
+    overnight_pairs = i0[overnight_rows] * (len(market1.ids) + 1) + i1[overnight_rows]
+    for k, pair in pair_blocks(overnight_rows, overnight_pairs, OVERNIGHT_BLOCK_ROWS):
         kp = in_p[k]
         prior_greeks = (Greeks(*(getattr(g0, name)[kp] for name in Greeks.__slots__)), exercised0[kp])
-    del g0, exercised0, in_p  # the prior greeks of a million rows: the overnight rows' copy is all that is used now
-    if k.size:
         s0, s1 = _state(market0, i0[k]), _state(market1, i1[k])
-        pair = i0[k] * (len(market1.ids) + 1) + i1[k]  # one instrument on both dates: priced once (American)
         ex = explain_overnight(strike[k], cp[k], units0[k], s0, s1, price0[k], price1[k], np.full(k.size, dt_years),
                                american[k], scheme=scheme, group=pair, prior=prior_greeks, kind=kind[k])
         crossed[k] = ex.crossed_boundary
@@ -245,14 +277,15 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         for name, values in _vol_and_time(ex, units0[k], s0, s1, dt_years, i0[k], i1[k], smiles, smile_dynamics,
                                           clock).items():
             cols[name][k] = values
-        del ex, prior_greeks  # the terms and greeks of a million rows: freed before the revaluation's states
+        del ex, prior_greeks  # the block's terms and greeks: freed before the revaluation's states
         if revaluation:
             shares = revaluation_shares(strike[k], cp[k], s0, s1, american[k], kind=kind[k], scheme=scheme,
                                         group=pair)
             for factor in FACTOR_NAMES:
                 cols[f"reval_{factor}"][k] = units0[k] * getattr(shares, factor)
             del shares
-        del s0, s1  # a million rows of states: freed before the next steps
+        del s0, s1
+    del g0, exercised0, in_p  # the prior greeks of a million rows
 
     expiring_option = (status == EXPIRED) & option
     _explain_expiring(cols, np.flatnonzero(expiring_option), market0, market1, i0, i1, strike, cp, units0, price0,
@@ -329,7 +362,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         **cols,
         "limit_state": np.full(n, "within", dtype=object),
         "kind": _names(kind, KIND_NAMES),
-        "exercise": np.where(option, np.where(american, "american", "european"), None).astype(object),
+        "exercise": _EXERCISE_NAMES[np.where(option, np.where(american, 2, 1), 0)],  # one string object per name
         "strategy": strategy,
     }
     return position_frame(values, n)

@@ -346,3 +346,13 @@ def test_late_booking_and_book_move_are_flagged(desk: Path) -> None:
     rows = _by_trade(_night(desk))
     assert rows.loc["T7", "flags"] == "booked_late"
     assert rows.loc["T2", "flags"] == "moved_book" and rows.loc["T2", "book"] == "Index vol"
+
+
+def test_text_columns_of_few_values_hold_one_string_per_value(desk: Path) -> None:
+    """A night's text columns of a few distinct values (exercise style, kind, status...) point at one Python string
+    per value, not one per row: a million-position night would otherwise hold a million copies of "european"."""
+    rows = _night(desk).positions
+    for column in ("exercise", "kind", "status", "option_type", "currency", "limit_state", "strategy"):
+        values = [v for v in rows[column].to_numpy(dtype=object) if v is not None]
+        assert len(values) > len(set(values)), column  # some value repeats, so the check below can fail
+        assert len({id(v) for v in values}) == len(set(values)), column
