@@ -58,3 +58,30 @@ def test_freed_columns_leave_the_process_once_set():
 def test_without_the_setting_glibc_keeps_freed_columns():
     """The premise: by default the freed columns stay with the process (the setting is what returns them)."""
     assert held_after_free("default") > 64.0
+
+
+POOL_CHILD = textwrap.dedent("""
+    import pyarrow as pa
+    from attribution.memory import free_large_arrays_at_once
+
+    free_large_arrays_at_once()
+    print(pa.default_memory_pool().backend_name)
+""")
+
+
+def arrow_pool_after_setting(**env_extra: str) -> str:
+    """Arrow's default pool in a child after the setting (the child's environment: glibc's defaults, no pool named,
+    then ``env_extra``)."""
+    env = {k: v for k, v in os.environ.items()
+           if not k.startswith("MALLOC_") and k not in ("GLIBC_TUNABLES", "ARROW_DEFAULT_MEMORY_POOL")}
+    done = subprocess.run([sys.executable, "-c", POOL_CHILD], capture_output=True, text=True, check=True,
+                          env={**env, **env_extra})
+    return done.stdout.strip()
+
+
+def test_arrow_allocates_from_the_c_library_once_set():
+    assert arrow_pool_after_setting() == "system"
+
+
+def test_a_pool_named_by_the_user_is_left_as_chosen():
+    assert arrow_pool_after_setting(ARROW_DEFAULT_MEMORY_POOL="mimalloc") == "mimalloc"
