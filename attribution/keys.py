@@ -18,6 +18,7 @@ import pyarrow.compute as pc
 from numpy.typing import NDArray
 
 from attribution.arrays import BoolArray, IntArray, ObjectArray
+from attribution.memory import hand_back_arrow_memory
 
 # A text whose first character is a printable ASCII character other than the space is surely not blank
 # (``str.strip`` removes only white space, the trailing-NUL rule only NULs): tested on the whole dictionary
@@ -154,7 +155,7 @@ class NightTrades:
         if prior is None or run is None:
             return None
         trades = cls(prior, run, lookup(run.values, prior.values))
-        pa.default_memory_pool().release_unused()  # the hash table of a million prior ids, handed back at once
+        hand_back_arrow_memory()  # the hash table of a million prior ids
         return trades
 
     def universe(self) -> pa.Array:

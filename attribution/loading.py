@@ -21,6 +21,7 @@ import pyarrow.parquet as pq
 
 from attribution.errors import JobFailure
 from attribution.keys import KeyCodes, encode
+from attribution.memory import hand_back_arrow_memory
 
 FOLDER_PATTERN = re.compile(r"^as_of=(\d{4}-\d{2}-\d{2})$")
 
@@ -291,5 +292,5 @@ def read_night(data_root: Path, as_of: dt.date, books: frozenset[str] | None = N
             keys[file] = codes
     # Arrow's allocator keeps what it freed (the hash tables of the key columns' encoding, the files' buffers) for
     # its own later use; handed back here, so the night's numpy arrays can have it
-    pa.default_memory_pool().release_unused()
+    hand_back_arrow_memory()
     return RawNight(as_of, folder, tables, hashes, keys)

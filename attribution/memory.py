@@ -13,8 +13,8 @@ from changes: not one value computed.
 Arrow's own allocator (mimalloc in the pyarrow wheels) keeps what Arrow frees for Arrow's later use, even
 when asked to hand it back: the hash tables of the trade ids' coding and the files' read buffers. Once the
 threshold is set, Arrow allocates from the same C library (its "system" pool), so its large buffers leave
-the process when freed too: a 1M-position night's peak RSS 1,283 -> 1,235 MB, its read stage's peak
-599 -> 498 MB (``python benchmarks/bench_memory.py``), for about 0.1 s more CPU in reading its two dates.
+the process when freed too: a 1M-position night's peak RSS 1,283 -> 1,243 MB, its read stage's peak
+599 -> 501 MB (``python benchmarks/bench_memory.py``), for about 0.1 s more CPU in reading its two dates.
 A pool named in ``ARROW_DEFAULT_MEMORY_POOL`` is left as chosen.
 """
 
@@ -53,3 +53,12 @@ def free_large_arrays_at_once() -> bool:
     if _done and not os.environ.get("ARROW_DEFAULT_MEMORY_POOL"):
         pa.set_memory_pool(pa.system_memory_pool())  # buffers made before keep the pool that made them
     return _done
+
+
+def hand_back_arrow_memory() -> None:
+    """What Arrow's pool has freed, handed back to the system where the pool keeps it (mimalloc, jemalloc). The
+    C library's pool (:func:`free_large_arrays_at_once`) has already returned every large buffer when it was
+    freed: trimming its heap as well costs about 5 ms of a small night and gives nothing back worth it."""
+    pool = pa.default_memory_pool()
+    if pool.backend_name != "system":
+        pool.release_unused()
