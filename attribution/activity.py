@@ -29,6 +29,7 @@ import pandas as pd
 from attribution.arrays import BoolArray, FloatArray
 from attribution.contract import UNPRICED_ACTIVITY, CleanNight
 from attribution.exceptions_log import WARNING, ExceptionLog
+from attribution.frame_rows import moved_rows
 from attribution.group_sums import sums_by_group
 from attribution.lifecycle import CARRIED, CLOSED, EXERCISED, NEW, NEW_UNPRICED, Legs
 from attribution.market import InstrumentMarket
@@ -153,7 +154,8 @@ def cash_rows(positions: pd.DataFrame, run: CleanNight, reporting_currency: str,
               log: ExceptionLog, books: frozenset[str] | None) -> pd.DataFrame:
     """``positions`` with the night's cash flows in ``pnl_cash`` (and ``pnl_total``), plus one ``cash`` row
     per book for flows that name no trade of that book. ``books``: only flows of these books (a part of
-    a night split by book), None for all."""
+    a night split by book), None for all. ``positions`` is consumed (its columns are updated in place and moved
+    into the frame returned, :func:`~attribution.frame_rows.moved_rows`): pass the night's only reference."""
     flows = run.cash_flows
     if books is not None:
         flows = flows[flows["book"].isin(books)]
@@ -171,8 +173,8 @@ def cash_rows(positions: pd.DataFrame, run: CleanNight, reporting_currency: str,
     on_trade = (row >= 0) & flows["trade_id"].notna().to_numpy()
     cash = np.bincount(row[on_trade], weights=flows["amount_reporting"].to_numpy()[on_trade],
                        minlength=len(positions))
-    positions = positions.assign(pnl_cash=positions["pnl_cash"].to_numpy(float) + cash,
-                                 pnl_total=positions["pnl_total"].to_numpy(float) + cash)
+    positions["pnl_cash"] = positions["pnl_cash"].to_numpy(float) + cash  # in place: the night is not held twice
+    positions["pnl_total"] = positions["pnl_total"].to_numpy(float) + cash
     named_elsewhere = flows["trade_id"].notna().to_numpy() & ~on_trade
     if named_elsewhere.any():
         log.add(path, flows.loc[named_elsewhere, "flow_id"].to_numpy(dtype=object), "cash flow of no trade of its book",
@@ -185,7 +187,7 @@ def cash_rows(positions: pd.DataFrame, run: CleanNight, reporting_currency: str,
     code, books = pd.factorize(book_flows["book"].to_numpy(dtype=object), sort=True)
     sums, _ = sums_by_group([book_flows["amount_reporting"].to_numpy(dtype=float)], code, len(books))
     per_book = pd.Series(sums[0], index=pd.Index(books, dtype=object, name="book"), name="amount_reporting")
-    return pd.concat([positions, _book_cash_rows(per_book, positions, reporting_currency)], ignore_index=True)
+    return moved_rows(positions, extra=_book_cash_rows(per_book, positions, reporting_currency))
 
 
 def _trade_rows(positions: pd.DataFrame, flows: pd.DataFrame) -> np.ndarray:

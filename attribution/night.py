@@ -20,6 +20,7 @@ from attribution.contract import CleanNight
 from attribution.dividends import income_per_unit
 from attribution.exceptions_log import ExceptionLog
 from attribution.explain import Explain, MarketState, explain_overnight
+from attribution.frame_rows import moved_rows
 from attribution.lifecycle import (
     CARRIED,
     CLOSED,
@@ -441,7 +442,8 @@ def dividend_income(frame: pd.DataFrame, went_ex: pd.DataFrame) -> pd.DataFrame:
 def reject_non_finite(frame: pd.DataFrame, prior_file: str, run_file: str, log: ExceptionLog) -> pd.DataFrame:
     """Rows with an amount that is not a finite number (an overflow from an absurd multiplier or FX
     rate, an underflow from a denormal spot) leave the night with a ``rejected`` row keyed by the
-    trade_id, naming the columns and the inputs to check; nothing non-finite reaches the archive."""
+    trade_id, naming the columns and the inputs to check; nothing non-finite reaches the archive. When a row
+    leaves, ``frame`` is consumed (:func:`~attribution.frame_rows.moved_rows`): pass the night's only reference."""
     amounts = [c for c in (*PNL_COLUMNS, *EXPOSURE_COLUMNS, *V2_AMOUNT_COLUMNS) if c in frame.columns]
     unpriced = (frame["status"] == NEW_UNPRICED).to_numpy()  # no trade price: pnl_new_trade is NULL by design
     suspect = _non_finite_rows(frame, amounts, unpriced)  # column by column: no copy of the whole table
@@ -467,7 +469,7 @@ def reject_non_finite(frame: pd.DataFrame, prior_file: str, run_file: str, log: 
     trades = rows["trade_id"].to_numpy(dtype=object)
     for file, mine in ((prior_file, on_prior), (run_file, ~on_prior)):
         log.add(file, trades[mine], "P&L is not a finite number", detail_arr[mine])
-    return frame.loc[~frame.index.isin(rows.index)].reset_index(drop=True)
+    return moved_rows(frame, ~frame.index.isin(rows.index))  # the kept rows, a column at a time
 
 
 def _non_finite_rows(frame: pd.DataFrame, amounts: list[str], unpriced: NDArray[np.bool_]) -> NDArray[np.bool_]:
