@@ -213,20 +213,25 @@ def _delta_one_shares(kind: NDArray[np.int8], strike: FloatArray, pairs: list[tu
 
 
 def _european_shares(strike: FloatArray, cp: FloatArray, state0: MarketState, state1: MarketState,
-                     rows: NDArray[np.intp] | None) -> RevaluationShares:
-    """European shares of the option ``rows`` (None: every row), in arrays over every row (0 elsewhere)."""
+                     rows: NDArray[np.intp] | None, group: NDArray[np.intp] | None = None) -> RevaluationShares:
+    """European shares of the option ``rows`` (None: every row), in arrays over every row (0 elsewhere); once per
+    ``group`` (rows of one group share both states: their shares per unit are the same numbers)."""
     pv0, pv1 = np.asarray(state0.div_pv, dtype=float), np.asarray(state1.div_pv, dtype=float)
-    if rows is None:
+    if rows is None and group is None:
         return shapley_shares(strike, cp, state0.spot, state0.vol, state0.tau_years, state0.rate, state0.div_yield,
                               state1.spot, state1.vol, state1.tau_years, state1.rate, state1.div_yield, pv0, pv1)
+    if rows is None:
+        rows = np.arange(strike.size)
     out = [np.zeros(strike.size) for _ in FACTOR_NAMES]
     if rows.size:
-        r = rows
-        part = shapley_shares(strike[r], cp[r], state0.spot[r], state0.vol[r], state0.tau_years[r], state0.rate[r],
-                              state0.div_yield[r], state1.spot[r], state1.vol[r], state1.tau_years[r], state1.rate[r],
-                              state1.div_yield[r], pv0[r], pv1[r])
+        first, inverse = (np.arange(rows.size), None) if group is None else _distinct(rows, group, ())
+        u = rows[first]
+        part = shapley_shares(strike[u], cp[u], state0.spot[u], state0.vol[u], state0.tau_years[u], state0.rate[u],
+                              state0.div_yield[u], state1.spot[u], state1.vol[u], state1.tau_years[u], state1.rate[u],
+                              state1.div_yield[u], pv0[u], pv1[u])
         for f, name in enumerate(FACTOR_NAMES):
-            out[f][r] = getattr(part, name)
+            values = getattr(part, name)
+            out[f][rows] = values if inverse is None else values[inverse]
     return RevaluationShares(*out)
 
 
@@ -237,14 +242,15 @@ def revaluation_shares(strike: FloatArray, cp: FloatArray, state0: MarketState, 
     delta-one rows by their formula, so the five shares add up to the model P&L for every kind.
 
     The 32 states of an American option share 16 exercise boundaries: the boundary does not depend on
-    spot, and states are priced together so that those differing only in spot solve it once.
+    spot, and states are priced together so that those differing only in spot solve it once. ``group``: rows of
+    one group share both states (one instrument on both dates), so each group is revalued once, whatever its kind.
     """
     d1 = _delta_one_rows(kind, strike.size)
     if not d1.size:
-        shares = _european_shares(strike, cp, state0, state1, None)
+        shares = _european_shares(strike, cp, state0, state1, None, group)
     else:  # the European kernel refuses a delta-one row's terms (no strike, no vol): options alone go there
         options = np.flatnonzero(np.asarray(kind)[: strike.size] == OPTION)  # every row but d1, in order
-        shares = _european_shares(strike, cp, state0, state1, options)
+        shares = _european_shares(strike, cp, state0, state1, options, group)
         pairs = [(getattr(state0, f), getattr(state1, f)) for f in ("spot", "vol", "tau_years", "rate", "div_yield")]
         pv = (np.asarray(state0.div_pv, dtype=float), np.asarray(state1.div_pv, dtype=float))
         one = _delta_one_shares(np.asarray(kind), strike, pairs, pv, d1, group)

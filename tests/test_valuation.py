@@ -229,6 +229,36 @@ def test_revaluation_shares_add_up_for_every_kind():
     assert (shares.vol[kind != OPTION] == 0).all()
 
 
+@pytest.mark.parametrize("with_hedges", [False, True])
+def test_grouped_revaluation_is_the_revaluation_of_every_row(with_hedges: bool) -> None:
+    """Rows of one group (one instrument on both dates) revalued once give every row the very shares it gets
+    revalued on its own: European, American and delta-one rows, bit for bit."""
+    rng = np.random.default_rng(12)
+    n = 60
+    strike, cp = rng.uniform(80, 120, n), rng.choice([-1.0, 1.0], n)
+    kind = (rng.choice([OPTION, UNDERLYING, FUTURE, FORWARD], n) if with_hedges else np.full(n, OPTION)).astype(np.int8)
+    vol0 = np.where(kind == OPTION, rng.uniform(0.1, 0.4, n), 0.0)
+    tau0 = np.where(kind == UNDERLYING, 0.0, rng.uniform(0.1, 2, n))
+    s0 = MarketState(rng.uniform(80, 120, n), vol0, tau0, rng.uniform(0.01, 0.05, n), rng.uniform(0, 0.03, n))
+    s1 = MarketState(s0.spot * rng.uniform(0.97, 1.03, n), np.where(kind == OPTION, vol0 + 0.01, 0.0),
+                     np.where(kind == UNDERLYING, 0.0, tau0 - 1 / 365), s0.rate + 0.001, s0.div_yield - 0.002)
+    american = (rng.random(n) < 0.3) & (kind == OPTION)
+    rep = rng.permutation(np.repeat(np.arange(n), 5))  # each instrument held in 5 positions, interleaved
+    pick = [MarketState(*(getattr(s, f)[rep] for f in MarketState.__slots__)) for s in (s0, s1)]
+    grouped = revaluation_shares(strike[rep], cp[rep], *pick, american[rep], kind=kind[rep], group=rep)
+    alone = revaluation_shares(strike, cp, s0, s1, american, kind=kind)
+    for name in ("spot", "vol", "time", "rates", "dividend"):
+        np.testing.assert_array_equal(getattr(grouped, name), getattr(alone, name)[rep])
+    for state, one in zip(pick, (s0, s1), strict=True):  # prices and greeks once per group too
+        (g, e), (g1, e1) = (value_and_greeks(strike[rep], cp[rep], state, american[rep], kind=kind[rep], group=rep),
+                            value_and_greeks(strike, cp, one, american, kind=kind))
+        for name in Greeks.__slots__:
+            np.testing.assert_array_equal(getattr(g, name), getattr(g1, name)[rep])
+        np.testing.assert_array_equal(e, e1[rep])
+        np.testing.assert_array_equal(value(strike[rep], cp[rep], state, american[rep], kind=kind[rep], group=rep),
+                                      value(strike, cp, one, american, kind=kind)[rep])
+
+
 def _archived_hedges(tmp_path) -> dict[str, dict[str, object]]:
     from attribution.cli import main
     from tests.hedged_desk import write_hedged_desk
