@@ -37,20 +37,22 @@ SET_CHECKPOINT_THRESHOLD = "SET checkpoint_threshold = '256MB'"
 # (the demo's position rows: 8 ms an insert instead of 14). The rows and their order are the same.
 SET_ONE_THREAD = "SET threads = 1"
 
-# While a large night's rows are inserted, DuckDB keeps the blocks it writes them to in its buffer pool (by default
-# up to 80 % of the machine's memory), which would be held through the reports after them. Once the night is
-# committed those blocks are in the file, so lowering the memory limit for a moment makes DuckDB let go of them
-# (a million position rows: 684 -> 437 MB of RSS after the commit), and the limit is put back for the reports'
-# queries. The insert itself runs under DuckDB's default limit: under any cap up to 1 GB DuckDB inserted the rows
-# on one thread (a million rows: the same 3.2-3.5 s of CPU on one thread instead of two, 4.9 s in the bench
-# instead of 2.7), and the insert's own peak (about 550 MB over what it starts from at a million rows, 280 MB under
-# a 256 MB cap) stays level with the explain's, the night's peak (1M: 1.43-1.44 GB either way; 3M: 3.79 GB, the
-# insert well below it). The rows are the same either way.
-# A small night (the demo's: about 1 MB of rows) is left alone: setting and lifting a limit cost about 8 ms of
-# system time a night (an 80-night demo backfill: 1.3-1.4 s against 0.7-0.8 s of the main process's).
-SET_RELEASE_MEMORY = "SET memory_limit = '256MB'"
+# While a night's rows are inserted, DuckDB may keep every block it writes them to in its buffer pool (by default up
+# to 80 % of the machine's memory): 330 MB for a million position rows, held through the reports after them. The
+# insert streams its rows into blocks written to the file; capped, the pool lets go of the written ones (a
+# million rows: 505 MB more memory while inserting, 176 MB capped). The cap is lifted after the transaction, so
+# the reports' queries run with DuckDB's default. The rows are the same.
+# The cap costs time on an idle machine: under any memory limit up to 1 GB DuckDB inserts the rows on one thread
+# (a million rows: the same 3.2-3.5 s of CPU on one thread instead of two; the bench's archive 4.9 s instead of
+# 2.7), from 2 GB on two. Uncapped, the insert's own peak (about 550 MB over its start at a million rows, 280 MB
+# capped) is the night's: 1,243 -> 1,346 MB at a million positions once the explain's peak came down to 1,245 MB
+# (benchmarks/bench_memory.py, 2026-12-03); letting go of the blocks after the commit instead of capping them
+# does not lower it. So the cap stays.
+# A small night (the demo's: about 1 MB of rows) is written uncapped: setting and lifting the cap cost it about
+# 8 ms of system time a night (an 80-night demo backfill: 1.3-1.4 s against 0.7-0.8 s of the main process's).
+SET_WRITE_MEMORY = "SET memory_limit = '256MB'"
 RESET_MEMORY = "RESET memory_limit"
-RELEASE_FROM_BYTES = 64 << 20  # rows of at least 64 MB (about 100,000 positions) are let go of once committed
+CAP_WRITE_FROM_BYTES = 64 << 20  # rows of at least 64 MB (about 100,000 positions) go in under the cap
 
 # The name by which an insert's statement reads its Arrow rows (see _insert): no table or view may have it.
 ARROW_ROWS = "attribution_arrow_rows"
@@ -228,7 +230,7 @@ def _insert(con: duckdb.DuckDBPyConnection, table: str, rows: pa.Table) -> None:
     """Append ``rows`` (Arrow, with the table's columns in order: the insert is positional; none: nothing).
 
     One INSERT statement reads the Arrow table by the name of the local variable holding it (DuckDB's scan of a
-    Python object it finds by name): a demo night's inserts cost about a quarter less CPU than through a relation
+    Python object it finds by name): a demo night's inserts cost about a fifth less CPU than through a relation
     (``con.from_arrow(rows).insert_into(table)``), which binds the scan and the insert separately. The same rows. A
     table or view of that name in the archive would be read instead: :func:`connect` refuses such a file.
     """
@@ -337,21 +339,18 @@ def write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[str
     :class:`BookHistory`, read in place of the quality query and updated once the night is committed.
     Returns the ``book_quality`` rows written, as columns (see :func:`~attribution.quality_table.quality_columns`).
     """
-    quality = _write_night(con, as_of, tables, replace, history)
+    capped = sum(table.nbytes for table in tables.values()) >= CAP_WRITE_FROM_BYTES
+    if capped:
+        con.execute(SET_WRITE_MEMORY)
+    try:
+        quality = _write_night(con, as_of, tables, replace, history)
+    finally:
+        if capped:
+            with contextlib.suppress(duckdb.Error):  # a connection that failed keeps its first error
+                con.execute(RESET_MEMORY)
     if history is not None:
         history.record(as_of, tables.get("book_pnl"))
-    if sum(table.nbytes for table in tables.values()) >= RELEASE_FROM_BYTES:
-        release_written_blocks(con)
     return quality
-
-
-def release_written_blocks(con: duckdb.DuckDBPyConnection) -> None:
-    """Let DuckDB drop from memory the blocks it kept of what is committed (they are in the file), then give the
-    connection its memory limit back. Memory DuckDB cannot let go of (it refuses a limit below it) is kept: the
-    night is committed either way."""
-    with contextlib.suppress(duckdb.Error):
-        con.execute(SET_RELEASE_MEMORY)
-    con.execute(RESET_MEMORY)
 
 
 def _write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[str, pa.Table], replace: bool,

@@ -341,91 +341,51 @@ def _memory_limit(con: duckdb.DuckDBPyConnection) -> str:
     return con.execute("SELECT current_setting('memory_limit')").fetchall()[0][0]
 
 
-def _in_transaction(con: duckdb.DuckDBPyConnection) -> bool:
-    """Whether ``con`` has a transaction open (BEGIN fails inside one)."""
-    try:
-        con.execute("BEGIN TRANSACTION")
-    except duckdb.TransactionException:
-        return True
-    con.execute("ROLLBACK")
-    return False
+def test_night_rows_go_in_with_duckdbs_memory_capped_and_the_cap_is_lifted_after(archived, desk, tmp_path,
+                                                                                 monkeypatch):
+    """Every insert of a large night runs under the write cap (DuckDB lets go of the blocks it wrote); after the
+    transaction the connection has its memory limit as before (the reports' queries run uncapped). The mini
+    desk's night is made "large" by a threshold of 0 bytes."""
+    monkeypatch.setattr(archive_module, "CAP_WRITE_FROM_BYTES", 0)
+    box = copy_of(archived, tmp_path / "box")
+    during, around = [], []
+    insert, write = archive_module._insert, engine_module.write_night
 
-
-def _watch_night(monkeypatch) -> tuple[list, list]:
-    """Record the memory limit at each insert, and each release of written blocks (whether a transaction was
-    open then, and the limit after it)."""
-    inserts, releases = [], []
-    insert, release = archive_module._insert, archive_module.release_written_blocks
-
-    def watched_insert(con, table, rows):
-        inserts.append(_memory_limit(con))
+    def capped_insert(con, table, rows):
+        during.append(_memory_limit(con))
         insert(con, table, rows)
 
-    def watched_release(con):
-        open_then = _in_transaction(con)
-        release(con)
-        releases.append((open_then, _memory_limit(con)))
+    def write_night(con, *args, **kwargs):
+        before = _memory_limit(con)
+        quality = write(con, *args, **kwargs)
+        around.append((before, _memory_limit(con)))
+        return quality
 
-    monkeypatch.setattr(archive_module, "_insert", watched_insert)
-    monkeypatch.setattr(archive_module, "release_written_blocks", watched_release)
-    return inserts, releases
-
-
-def test_a_large_night_goes_in_under_duckdbs_own_limit_and_its_blocks_are_let_go_of_once_committed(
-        archived, desk, tmp_path, monkeypatch):
-    """A large night (the mini desk's, made large by a threshold of 0 bytes) is inserted under DuckDB's default
-    memory limit (a cap made DuckDB insert on one thread), and its written blocks are released after the COMMIT,
-    never inside the transaction; the connection ends with its limit as before (the reports run uncapped)."""
-    monkeypatch.setattr(archive_module, "RELEASE_FROM_BYTES", 0)
-    box = copy_of(archived, tmp_path / "box")
-    inserts, releases = _watch_night(monkeypatch)
+    monkeypatch.setattr(archive_module, "_insert", capped_insert)
+    monkeypatch.setattr(engine_module, "write_night", write_night)
     assert run(desk, box) == 3
-    default = _memory_limit(duckdb.connect())
-    assert len(inserts) >= 4 and set(inserts) == {default}
-    assert releases == [(False, default)]
+    cap = duckdb.connect()
+    cap.execute(archive_module.SET_WRITE_MEMORY)
+    assert len(during) >= 4 and set(during) == {_memory_limit(cap)}
+    cap.close()
+    [(before, after)] = around
+    assert before == after != during[0]
 
 
-def test_a_small_night_is_not_released(archived, desk, tmp_path, monkeypatch):
+def test_a_small_night_goes_in_uncapped(archived, desk, tmp_path, monkeypatch):
     """Below the threshold (the mini desk's night is a few kB) the memory limit is never changed."""
     box = copy_of(archived, tmp_path / "box")
-    inserts, releases = _watch_night(monkeypatch)
+    during = []
+    insert = archive_module._insert
+
+    def watched_insert(con, table, rows):
+        during.append(_memory_limit(con))
+        insert(con, table, rows)
+
+    monkeypatch.setattr(archive_module, "_insert", watched_insert)
     assert run(desk, box) == 3
-    assert len(inserts) >= 4 and set(inserts) == {_memory_limit(duckdb.connect())}
-    assert releases == []
-
-
-def test_releasing_lets_duckdb_drop_the_committed_blocks_and_puts_the_limit_back(tmp_path, monkeypatch):
-    """After a committed insert DuckDB holds its blocks in memory; the release (with its limit lowered below them)
-    lets go of them, keeps the rows, and leaves the connection's memory limit as it was."""
-    monkeypatch.setattr(archive_module, "SET_RELEASE_MEMORY", "SET memory_limit = '4MB'")
-    con = duckdb.connect(str(tmp_path / "a.duckdb"))
-    rows = pa.table({"a": np.arange(1_000_000, dtype=np.float64), "b": np.sqrt(np.arange(1_000_000.0))})
-    con.execute("CREATE TABLE t (a DOUBLE, b DOUBLE)")
-    con.execute("INSERT INTO t SELECT * FROM rows")
-    limit = _memory_limit(con)
-
-    def held() -> int:
-        return int(con.execute("SELECT sum(memory_usage_bytes) FROM duckdb_memory()").fetchall()[0][0])
-
-    before = held()
-    archive_module.release_written_blocks(con)
-    assert held() < before / 2 and before > 8 << 20
-    assert _memory_limit(con) == limit
-    kept = con.execute("SELECT a, b FROM t").fetchnumpy()  # read back from the file
-    assert np.array_equal(kept["a"], rows.column("a").to_numpy()) and np.array_equal(kept["b"], rows.column("b"))
-    con.close()
-
-
-def test_a_release_duckdb_refuses_leaves_the_night_committed(archived, desk, tmp_path, monkeypatch):
-    """When DuckDB cannot lower its limit (memory it cannot let go of), the night stays committed and the run ends
-    as without the release."""
-    monkeypatch.setattr(archive_module, "RELEASE_FROM_BYTES", 0)
-    monkeypatch.setattr(archive_module, "SET_RELEASE_MEMORY", "SET memory_limit = 'not a size'")
-    box = copy_of(archived, tmp_path / "box")
-    _, rows_before = read_archive(box / "a.duckdb", RUN)
-    assert run(desk, box) == 3
-    _, rows_after = read_archive(box / "a.duckdb", RUN)
-    assert_same_rows(rows_after, rows_before)
+    default = _memory_limit(duckdb.connect())
+    assert len(during) >= 4 and set(during) == {default}
 
 
 def test_a_file_holding_the_inserts_arrow_name_is_refused(tmp_path, capsys):
