@@ -40,5 +40,6 @@ def sums_by_group(columns: list[np.ndarray], code: np.ndarray, groups: int) -> t
         terms[~not_nan] = 0.0
         block = slice(lo, lo + len(terms))
         sums[block, present] = np.add.reduceat(terms, starts, axis=1) + 0.0  # + 0.0: a sum of -0.0 alone is 0.0
-        counts[block, present] = np.add.reduceat(not_nan, starts, axis=1, dtype=np.int64)  # no int64 copy of the flags
+        for j, flags in enumerate(not_nan, start=lo):  # a row at a time: reduceat casts its whole input to int64
+            counts[j, present] = np.add.reduceat(flags, starts, dtype=np.int64)
     return sums, counts

@@ -134,6 +134,15 @@ OVERNIGHT_BLOCK_ROWS = 262_144  # overnight rows explained at a time (whole inst
 _EXERCISE_NAMES = np.array([None, "european", "american"], dtype=object)
 
 
+def _within(n: int) -> NDArray[np.object_]:
+    """The placeholder limit state of ``n`` rows (the controls set each row's): one string object for every row.
+    ``np.full(n, "within", dtype=object)`` would make one string per row (numpy converts the text to a
+    fixed-width array first, then each element back to a new object): 58 MB at a million positions."""
+    out = np.empty(n, dtype=object)
+    out.fill("within")
+    return out
+
+
 def _names(codes: NDArray[np.int8], names: dict[int, str]) -> NDArray[np.object_]:
     """Names of codes (None for a code without one: the exercise of a delta-one kind)."""
     table = np.array([names.get(c) for c in range(-1, max(names) + 1)], dtype=object)
@@ -361,7 +370,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         "div_pv_prior": np.where(has_prior, market0.dividend_pv[i0], np.nan),
         "div_pv_run": np.where(expired, np.nan, market1.dividend_pv[i1]),
         **cols,
-        "limit_state": np.full(n, "within", dtype=object),
+        "limit_state": _within(n),
         "kind": _names(kind, KIND_NAMES),
         "exercise": _EXERCISE_NAMES[np.where(option, np.where(american, 2, 1), 0)],  # one string object per name
         "strategy": strategy,

@@ -53,3 +53,23 @@ def test_a_night_explained_in_blocks_is_the_night_explained_at_once(tmp_path: Pa
     blocked = prepare_night(config, synthetic.run).positions
     assert len(whole) > 3_000
     pd.testing.assert_frame_equal(blocked, whole, check_exact=True)
+
+
+def test_the_explains_placeholder_limit_state_is_one_string_object(tmp_path: Path,
+                                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+    """The rows leave the explain with limit state ``within`` held as one Python string for every row (the controls
+    replace it), not one string per row."""
+    synthetic = write_synthetic_night(tmp_path / "data", positions=2_000, books=4, instruments=150, underlyings=6)
+    config = JobConfig(data_root=synthetic.data_root, write_reports=False)
+    seen: list[np.ndarray] = []
+    frame = night_module.position_frame
+
+    def watched(values: dict[str, object], n: int) -> pd.DataFrame:
+        seen.append(values["limit_state"])  # type: ignore[arg-type]
+        return frame(values, n)
+
+    monkeypatch.setattr(night_module, "position_frame", watched)
+    prepare_night(config, synthetic.run)
+    [states] = seen
+    assert states.size > 1_500 and set(states) == {"within"}
+    assert len({id(state) for state in states}) == 1
