@@ -64,7 +64,7 @@ from attribution.errors import EXIT_FAILED, EXIT_FINDINGS, EXIT_OK, EXIT_USAGE
 from attribution.exceptions_log import WARNING, ExceptionLog
 from attribution.keys import NightTrades
 from attribution.lifecycle import Legs, match_legs
-from attribution.loading import folder_for, folder_stamp, prior_date, read_night
+from attribution.loading import RawNight, folder_for, folder_stamp, prior_date, read_night
 from attribution.mark_roll import roll_dates, roll_marks
 from attribution.market import InstrumentMarket, build_market, flag_stale_marks, instrument_terms
 from attribution.memory import free_large_arrays_at_once
@@ -187,6 +187,29 @@ def _trade_activity(legs: Legs, clean0: CleanNight, clean1: CleanNight, market0:
     return legs, act
 
 
+def _share_trade_ids(trades: NightTrades, raw0: RawNight, run: tuple[RawNight, CleanNight]) -> None:
+    """The run date's frames (as read, and their clean rows) hold the prior date's string object of every
+    trade id both dates hold (:meth:`NightTrades.prior_texts`): equal values, and the run date's own strings
+    of a million trades held over the night (about 60 MB) are freed before the explain builds its rows."""
+    file = "positions.parquet"
+    prior_ids = raw0.tables[file]["trade_id"].to_numpy(dtype=object)
+    raw1, clean1 = run
+    frames = [(raw1.tables[file], trades.run), (clean1.positions, clean1.position_keys.get("trade_id"))]
+    for frame, codes in frames:
+        if codes is None or not trades.matches(trades.prior, codes) or len(codes) != len(frame):
+            continue  # rows not coded over the run file's values: left as they are
+        frame["trade_id"] = pd.Series(trades.prior_texts(prior_ids, codes), index=frame.index, dtype=object,
+                                      copy=False)
+
+
+def _without_positions(clean: CleanNight) -> CleanNight:
+    """The date's tables without its position rows (as read and clean): what the book rows still read of it."""
+    file = "positions.parquet"
+    raw = dataclasses.replace(clean.raw, tables={f: t for f, t in clean.raw.tables.items() if f != file},
+                              keys={f: k for f, k in clean.raw.keys.items() if f != file})
+    return dataclasses.replace(clean, raw=raw, positions=clean.positions.iloc[:0], position_keys={})
+
+
 def _official(frame: pd.DataFrame, exceptions: pd.DataFrame, clean1: CleanNight, config: JobConfig,
               part: frozenset[str] | None) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Book rows with the official P&L and its break; break warnings added to the ledger (keyed by book)."""
@@ -264,6 +287,8 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     stale = flag_stale_marks(market0, market1, config.checks.stale_spot_move,
                              raw1.path("option_marks.parquet"), log)
     trades = NightTrades.of(*(raw.keys.get("positions.parquet", {}).get("trade_id") for raw in (raw0, raw1)))
+    if trades is not None:
+        _share_trade_ids(trades, raw0, (raw1, clean1))
     legs = match_legs(clean0, clean1, market0, market1, log, trades)
     legs, activity = _trade_activity(legs, clean0, clean1, market0, market1, log, books is None)
     clock = variance_clock(basis, config.vol_time, prior_as_of, as_of, market0.expiry, market0.tau_years,
@@ -286,17 +311,21 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     positions = cash_rows(positions, clean1, config.reporting_currency, log, books)
     del legs, activity  # matched legs of every trade: the rows hold what they need of them
     watch.lap("explain")
-    positions["limit_state"] = pd.Series(position_limit_states(positions, config), index=positions.index, dtype=object)
+    # what the controls need of the two dates' position rows first (the ledger is whole: no later step adds a
+    # row about a position), then those rows go: the book sums run without them (a million positions: ~100 MB)
     ledger = position_books(raw0, raw1, log.frame(keyless=True))
     rejected = rejected_positions(ledger)
     exceptions = ledger.drop(columns="position")
-    frame = book_frame(positions, exceptions, rejected, config, as_of, prior_as_of, clean1.desks,
-                       rejected_size(rejected, raw0, market0, clean0.fx))
+    sizes = rejected_size(rejected, raw0, market0, clean0.fx)
+    positions_in, missing = conservation(raw0, raw1, positions["trade_id"], rejected, trades)
+    hashes = {raw.path(f): h for raw in (raw0, raw1) for f, h in raw.hashes.items()}
+    clean1 = _without_positions(clean1)
+    del raw0, raw1, clean0, trades, ledger
+    positions["limit_state"] = pd.Series(position_limit_states(positions, config), index=positions.index, dtype=object)
+    frame = book_frame(positions, exceptions, rejected, config, as_of, prior_as_of, clean1.desks, sizes)
     frame, exceptions = _official(frame, exceptions, clean1, config, books)
     books = frame
-    positions_in, missing = conservation(raw0, raw1, positions["trade_id"], rejected, trades)
     watch.lap("controls")
-    hashes = {raw.path(f): h for raw in (raw0, raw1) for f, h in raw.hashes.items()}
     return PreparedNight(as_of, prior_as_of, positions, books, exceptions, hashes, positions_in, len(rejected),
                          missing, tuple(watch.stages), schedule)
 

@@ -5,7 +5,8 @@ References: pandas.factorize (pandas, a reference library) for the codes; the ro
 test (``str.strip`` after dropping trailing NULs, README.md, "Input files": a null or blank key is no
 key) for the blank values; attribution.lifecycle.match_keys (the matching on Python strings) for the
 matching;
-the text comparison of instrument ids for a trade that changed instrument.
+the text comparison of instrument ids for a trade that changed instrument; the run file's own values for its ids
+as the prior date's strings.
 """
 
 from __future__ import annotations
@@ -23,7 +24,7 @@ from hypothesis import strategies as st
 from attribution.config import CheckSettings
 from attribution.contract import clean_night
 from attribution.exceptions_log import ExceptionLog
-from attribution.keys import KeyCodes, blank_text, encode, match
+from attribution.keys import KeyCodes, NightTrades, blank_text, encode, match
 from attribution.lifecycle import _other_instrument, match_keys
 from attribution.loading import folder_for, read_night
 from tests.mini_desk import RUN, write_mini_desk
@@ -128,3 +129,26 @@ def test_instrument_change_by_market_places_is_the_text_comparison(pairs: list[t
     right = np.array([b for _, b in pairs], dtype=object)
     got = _other_instrument(ids.get_indexer(left), ids.get_indexer(right), left, right)
     assert got.tolist() == (left != right).tolist()
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.text(alphabet="abc", min_size=2, max_size=4), unique=True, max_size=25), st.data())
+def test_run_ids_share_the_prior_dates_strings(universe: list[str], data: st.DataObject) -> None:
+    """The run file's ids as the prior file's string objects where the prior file holds them (new objects for the
+    others, never the run file's own): the values are the run file's, null where null."""
+    prior = data.draw(st.permutations(universe)).copy()[: data.draw(st.integers(0, len(universe)))]
+    run = data.draw(st.permutations(universe)).copy()[: data.draw(st.integers(0, len(universe)))]
+    run_rows = run + [None] * data.draw(st.integers(0, 2))
+    prior_keys, run_keys = encode(pa.array(prior, pa.string())), encode(pa.array(run_rows, pa.string()))
+    prior_ids, run_ids = prior_keys.per_row(), run_keys.per_row()
+    trades = NightTrades.of(prior_keys, run_keys)
+    assert trades is not None
+    keep = np.array(data.draw(st.lists(st.booleans(), min_size=len(run_rows), max_size=len(run_rows))), dtype=bool)
+    clean = run_keys.take(keep)  # the clean rows of the run file
+    shared = trades.prior_texts(prior_ids, clean)
+    assert shared.tolist() == [v for v, k in zip(run_rows, keep, strict=True) if k]
+    for got, own in zip(shared, run_ids[keep], strict=True):
+        if got in prior:
+            assert got is prior_ids[prior.index(got)]
+        elif got is not None:
+            assert got is not own
