@@ -21,7 +21,7 @@ from attribution.contract import NULL_KEY
 from attribution.controls import BREACH, WATCH, book_states, position_states
 from attribution.exceptions_log import REJECTED, WARNING
 from attribution.group_sums import sums_by_group
-from attribution.keys import NightTrades
+from attribution.keys import NightTrades, TradeCount
 from attribution.lifecycle import STATUSES
 from attribution.loading import RawNight
 from attribution.market import InstrumentMarket, take
@@ -140,11 +140,12 @@ def rejected_size(rejected: pd.DataFrame, raw0: RawNight, market0: InstrumentMar
 
 
 def conservation(raw0: RawNight, raw1: RawNight, archived: pd.Series, rejected: pd.DataFrame,
-                 trades: NightTrades | None = None) -> tuple[int, tuple[str, ...]]:
+                 trades: NightTrades | TradeCount | None = None) -> tuple[int, tuple[str, ...]]:
     """Positions in (distinct trades over both dates, plus keyless rows) and any unaccounted.
 
-    ``trades``: the two files' trade ids as read, matched once (:class:`attribution.keys.NightTrades`): the
-    distinct ids are then its values, and each is looked for among the accounted ones by Arrow."""
+    ``trades``: the two files' trade ids as read, matched once (:class:`attribution.keys.NightTrades`, or its
+    :meth:`~attribution.keys.NightTrades.count`): the distinct ids are then its values, and each is looked for
+    among the accounted ones by Arrow."""
     if trades is not None:
         accounted = np.concatenate([archived.to_numpy(dtype=object), rejected["position"].to_numpy(dtype=object)])
         try:

@@ -68,7 +68,14 @@ from attribution.loading import RawNight, folder_for, folder_stamp, prior_date, 
 from attribution.mark_roll import roll_dates, roll_marks
 from attribution.market import InstrumentMarket, build_market, flag_stale_marks, instrument_terms
 from attribution.memory import free_large_arrays_at_once
-from attribution.night import corporate_flags, dividend_income, position_rows, reject_non_finite, stale_flags
+from attribution.night import (
+    corporate_flags,
+    dividend_income,
+    file_columns,
+    position_rows,
+    reject_non_finite,
+    stale_flags,
+)
 from attribution.smile_night import check_smiles, night_smiles
 from attribution.timebasis import TimeBasis
 from attribution.vol_time import variance_clock
@@ -202,12 +209,26 @@ def _share_trade_ids(trades: NightTrades, raw0: RawNight, run: tuple[RawNight, C
                                       copy=False)
 
 
-def _without_positions(clean: CleanNight) -> CleanNight:
-    """The date's tables without its position rows (as read and clean): what the book rows still read of it."""
+# The columns of each date's position rows (as read) the controls look up after the explain: the book of a trade the
+# ledger names or of a row without a trade_id (both dates), the prior row of a rejected trade (its instrument and
+# quantity: what it weighed), and every trade_id (the conservation count when the ids were not coded where read).
+PRIOR_CONTROL_COLUMNS = ("trade_id", "book", "instrument_id", "quantity")
+RUN_CONTROL_COLUMNS = ("trade_id", "book")
+
+
+def _rows_for_controls(raw: RawNight, clean: CleanNight, columns: tuple[str, ...]) -> tuple[RawNight, CleanNight]:
+    """The date's tables with its position rows as read cut to ``columns`` (copied: the other columns are freed;
+    the same index, so a row's number in its file is kept), without their codes and without its clean rows.
+    The caller's own ``raw`` and ``clean`` are left as they are (a backfill's cache may hold them)."""
     file = "positions.parquet"
-    raw = dataclasses.replace(clean.raw, tables={f: t for f, t in clean.raw.tables.items() if f != file},
-                              keys={f: k for f, k in clean.raw.keys.items() if f != file})
-    return dataclasses.replace(clean, raw=raw, positions=clean.positions.iloc[:0], position_keys={})
+    tables = dict(raw.tables)
+    if file in tables:
+        rows = tables[file]
+        tables[file] = pd.DataFrame({c: pd.Series(rows[c].to_numpy(copy=True), index=rows.index, dtype=rows[c].dtype,
+                                                  copy=False) for c in columns}, index=rows.index, copy=False)
+    cut = dataclasses.replace(raw, tables=tables, keys={f: k for f, k in raw.keys.items() if f != file})
+    # no row, copied: an empty slice would be a view holding every column's whole array
+    return cut, dataclasses.replace(clean, raw=cut, positions=clean.positions.iloc[:0].copy(), position_keys={})
 
 
 def _official(frame: pd.DataFrame, exceptions: pd.DataFrame, clean1: CleanNight, config: JobConfig,
@@ -291,6 +312,13 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
         _share_trade_ids(trades, raw0, (raw1, clean1))
     legs = match_legs(clean0, clean1, market0, market1, log, trades)
     legs, activity = _trade_activity(legs, clean0, clean1, market0, market1, log, books is None)
+    # what the rows and the controls need of the two dates' position rows, then the rest of those rows goes: the
+    # explain runs without them (a million positions: about 100 MB)
+    files = file_columns(legs, clean0, clean1)
+    (raw0, clean0), (raw1, clean1) = (_rows_for_controls(raw, clean, columns) for raw, clean, columns in
+                                      ((raw0, clean0, PRIOR_CONTROL_COLUMNS), (raw1, clean1, RUN_CONTROL_COLUMNS)))
+    count = None if trades is None else trades.count()
+    del trades
     clock = variance_clock(basis, config.vol_time, prior_as_of, as_of, market0.expiry, market0.tau_years,
                            market1.expiry, market1.tau_years)
     vol0, vol1 = (market0.vol, market1.vol) if clock is None else (
@@ -300,7 +328,7 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     watch.lap("market")
     with np.errstate(all="ignore"):  # overflows and underflows are caught row by row just below
         positions = position_rows(legs, clean0, clean1, market0, market1, basis, config.revaluation, smiles,
-                                  config.smile.dynamics, clock, activity)
+                                  config.smile.dynamics, clock, activity, files)
     positions = reject_non_finite(positions, raw0.path("positions.parquet"), raw1.path("positions.parquet"), log)
     positions = stale_flags(positions, market1.ids[stale].to_numpy())
     went_ex = going_ex(clean0.dividends, clean1.dividends, prior_as_of, as_of)
@@ -309,18 +337,18 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     schedule = schedule_frame(as_of, prior_as_of, clean1.dividends, clean0.dividends, pairs, clean1.curves, basis,
                               went_ex)
     positions = cash_rows(positions, clean1, config.reporting_currency, log, books)
-    del legs, activity  # matched legs of every trade: the rows hold what they need of them
+    del legs, activity, files  # matched legs of every trade: the rows hold what they need of them
     watch.lap("explain")
-    # what the controls need of the two dates' position rows first (the ledger is whole: no later step adds a
-    # row about a position), then those rows go: the book sums run without them (a million positions: ~100 MB)
+    # what the controls look up in the two dates' position rows first (the ledger is whole: no later step adds a
+    # row about a position), then those columns go too: the book sums run without them
     ledger = position_books(raw0, raw1, log.frame(keyless=True))
     rejected = rejected_positions(ledger)
     exceptions = ledger.drop(columns="position")
     sizes = rejected_size(rejected, raw0, market0, clean0.fx)
-    positions_in, missing = conservation(raw0, raw1, positions["trade_id"], rejected, trades)
+    positions_in, missing = conservation(raw0, raw1, positions["trade_id"], rejected, count)
     hashes = {raw.path(f): h for raw in (raw0, raw1) for f, h in raw.hashes.items()}
-    clean1 = _without_positions(clean1)
-    del raw0, raw1, clean0, trades, ledger
+    (raw0, clean0), (raw1, clean1) = _rows_for_controls(raw0, clean0, ()), _rows_for_controls(raw1, clean1, ())
+    del count, ledger
     positions["limit_state"] = pd.Series(position_limit_states(positions, config), index=positions.index, dtype=object)
     frame = book_frame(positions, exceptions, rejected, config, as_of, prior_as_of, clean1.desks, sizes)
     frame, exceptions = _official(frame, exceptions, clean1, config, books)

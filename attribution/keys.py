@@ -166,6 +166,10 @@ class NightTrades:
         """Rows without a trade_id, over both files."""
         return int((self.prior.codes < 0).sum() + (self.run.codes < 0).sum())
 
+    def count(self) -> TradeCount:
+        """What the conservation count needs of the two files' ids, without their per-row codes."""
+        return TradeCount(self.universe(), self.nulls())
+
     def prior_texts(self, prior_ids: ObjectArray, run: KeyCodes) -> ObjectArray:
         """The trade ids of some rows of the run file (coded by ``run``) as Python strings shared with the prior
         date: an id the prior file also holds is the prior file's own string object for it, taken from
@@ -190,3 +194,20 @@ class NightTrades:
     def matches(self, left: KeyCodes, right: KeyCodes) -> bool:
         """Whether ``left`` and ``right`` (codes of some rows of the prior and run files) use this night's values."""
         return left.values is self.prior.values and right.values is self.run.values
+
+
+@dataclass(frozen=True, slots=True)
+class TradeCount:
+    """The distinct trade ids of a night's two positions files and their rows without one (:meth:`NightTrades.count`):
+    all the conservation count of :mod:`attribution.books` reads of them, held while the night's rows are made."""
+
+    ids: pa.Array  # the distinct non-null trade ids over both files
+    null_rows: int
+
+    def universe(self) -> pa.Array:
+        """The distinct non-null trade ids over both files."""
+        return self.ids
+
+    def nulls(self) -> int:
+        """Rows without a trade_id, over both files."""
+        return self.null_rows

@@ -8,6 +8,7 @@ all amounts in the reporting currency. All arithmetic is on whole arrays.
 from __future__ import annotations
 
 from collections.abc import Iterator
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -15,7 +16,7 @@ from numpy.typing import NDArray
 
 from attribution.activity import LegActivity
 from attribution.american import Scheme
-from attribution.arrays import FloatArray
+from attribution.arrays import BoolArray, FloatArray, ObjectArray
 from attribution.contract import CleanNight
 from attribution.dividends import income_per_unit
 from attribution.exceptions_log import ExceptionLog
@@ -195,10 +196,37 @@ def _explain_expiring(cols: dict[str, object], e: NDArray[np.intp], market0: Ins
             cols[f"reval_{factor}"][e] = units0[e] * getattr(shares, factor)  # type: ignore[index]
 
 
+@dataclass(frozen=True, slots=True)
+class FileColumns:
+    """What the night's rows take of the two dates' position rows, one element per leg (:func:`file_columns`):
+    gathered before the explain, so that those rows need not be held while it runs."""
+
+    qty0: FloatArray          # the prior row's quantity (0 without one), before the activity restates it
+    qty1: FloatArray          # the run-date row's quantity (0 when gone, expired or settled)
+    trade_price1: FloatArray  # the run-date row's trade_price (NaN without one)
+    late: BoolArray           # a new trade booked on or before the prior date
+    moved_book: BoolArray     # held over into another book
+    strategy: ObjectArray     # the desk's label: the run date's row, else the prior date's
+
+
+def file_columns(legs: Legs, prior: CleanNight, run: CleanNight) -> FileColumns:
+    """The position files' columns the rows of ``legs`` take (quantities, trade price, trade date, book, strategy)."""
+    has_prior = legs.row0 >= 0
+    expired = np.isin(legs.status, EXPIRIES)  # expired tonight, or settled on the prior date
+    qty0 = np.where(has_prior, take(prior.positions["quantity"].to_numpy(float), legs.row0, 0.0), 0.0)
+    held1 = (legs.row1 >= 0) & ~expired
+    qty1 = np.where(held1, take(run.positions["quantity"].to_numpy(float), legs.row1, 0.0), 0.0)
+    trade_price1 = take(run.positions["trade_price"].to_numpy(float), legs.row1, np.nan)
+    late = trade_date_flags(run, legs, prior.raw.as_of)
+    moved_book = (legs.status == CARRIED) & (legs.row1 >= 0) & (
+        take(run.positions["book"].to_numpy(dtype=object), legs.row1, None) != legs.book)
+    return FileColumns(qty0, qty1, trade_price1, late, moved_book, _strategy(legs, prior, run))
+
+
 def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: InstrumentMarket,
                   market1: InstrumentMarket, basis: TimeBasis, revaluation: bool, smiles: NightSmiles | None = None,
                   smile_dynamics: str = "sticky strike", clock: VarianceClock | None = None,
-                  activity: LegActivity | None = None) -> pd.DataFrame:
+                  activity: LegActivity | None = None, files: FileColumns | None = None) -> pd.DataFrame:
     """The night's ``position_pnl`` rows (without ``limit_state``), one per accepted trade.
 
     With ``smiles`` (:func:`attribution.smile_night.night_smiles`), the vol terms of positions held
@@ -207,6 +235,8 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     With ``activity`` (:func:`attribution.activity.leg_activity`), changes are priced at their execution
     prices, corrections restate the prior quantity and whole exercises are explained to intrinsic value;
     without, a quantity change is priced at the run-date row's trade_price (version 1).
+    ``files``: :func:`file_columns` of ``legs``, gathered already (the dates' position rows may be gone from
+    ``prior`` and ``run`` then); None gathers them here.
     """
     n = len(legs)
     as_of, prior_as_of = run.raw.as_of, prior.raw.as_of
@@ -217,12 +247,13 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     expired = np.isin(status, EXPIRIES)  # expired tonight, or settled on the prior date
     i0 = np.maximum(legs.inst0, 0)
     i1 = legs.inst1
-    qty0 = np.where(has_prior, take(prior.positions["quantity"].to_numpy(float), legs.row0, 0.0), 0.0)
+    if files is None:
+        files = file_columns(legs, prior, run)
+    qty0 = files.qty0
     if activity is not None:  # corrections and cancels restate the prior quantity, without P&L
         qty0 = np.where(has_prior, qty0 + activity.restated, 0.0)
     held1 = (legs.row1 >= 0) & ~expired
-    qty1 = np.where(held1, take(run.positions["quantity"].to_numpy(float), legs.row1, 0.0), 0.0)
-    trade_price1 = take(run.positions["trade_price"].to_numpy(float), legs.row1, np.nan)
+    qty1, trade_price1 = files.qty1, files.trade_price1
     mult = market1.multiplier[i1]
     strike, cp = market1.strike[i1], market1.cp[i1]
     american, scheme = market1.american[i1], market1.american_scheme
@@ -232,11 +263,8 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     units0 = qty0 * mult * legs.fx_rate
     units1 = qty1 * mult * legs.fx_rate
     dt_years = float(basis.year_fraction(prior_as_of, as_of)[0])
-    # What the rows take from the positions files' other columns, while no column of the night is made yet
-    late = trade_date_flags(run, legs, prior_as_of)
-    moved_book = (status == CARRIED) & (legs.row1 >= 0) & (
-        take(run.positions["book"].to_numpy(dtype=object), legs.row1, None) != legs.book)
-    strategy = _strategy(legs, prior, run)
+    late, moved_book, strategy = files.late, files.moved_book, files.strategy
+    del files  # its arrays are held by the names above only: each freed where its name is
 
     cols: dict[str, object] = {c: np.zeros(n) for c in PNL_COLUMNS}
     cols.update({c: np.full(n, np.nan) for c in REVAL_COLUMNS})
