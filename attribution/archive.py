@@ -40,17 +40,19 @@ SET_ONE_THREAD = "SET threads = 1"
 # While a night's rows are inserted, DuckDB may keep every block it writes them to in its buffer pool (by default up
 # to 80 % of the machine's memory): 330 MB for a million position rows, held through the reports after them. The
 # insert streams its rows into blocks written to the file; capped, the pool lets go of the written ones (a
-# million rows: 505 MB more memory while inserting, 176 MB capped). The cap is lifted after the transaction, so
-# the reports' queries run with DuckDB's default. The rows are the same.
+# million rows: 505 MB more memory while inserting, 176 MB capped at 256 MB). The cap is lifted after the
+# transaction, so the reports' queries run with DuckDB's default. The rows are the same.
 # The cap costs time on an idle machine: under any memory limit up to 1 GB DuckDB inserts the rows on one thread
 # (a million rows: the same 3.2-3.5 s of CPU on one thread instead of two; the bench's archive 4.9 s instead of
 # 2.7), from 2 GB on two. Uncapped, the insert's own peak (about 550 MB over its start at a million rows, 280 MB
 # capped) is the night's: 1,243 -> 1,346 MB at a million positions once the explain's peak came down to 1,245 MB
 # (benchmarks/bench_memory.py, 2026-12-03); letting go of the blocks after the commit instead of capping them
-# does not lower it. So the cap stays.
+# does not lower it. So the cap stays, at 128 MB since the explain's peak came down to about 1 GB: at 256 MB the
+# insert was again the night's peak (1,045 MB against the explain's 1,017), at 128 MB it is not (the archive
+# stage at a million rows: 2.86-3.00 s at 128 MB, 2.90-3.10 s at 256 MB, two runs each, alternately).
 # A small night (the demo's: about 1 MB of rows) is written uncapped: setting and lifting the cap cost it about
 # 8 ms of system time a night (an 80-night demo backfill: 1.3-1.4 s against 0.7-0.8 s of the main process's).
-SET_WRITE_MEMORY = "SET memory_limit = '256MB'"
+SET_WRITE_MEMORY = "SET memory_limit = '128MB'"
 RESET_MEMORY = "RESET memory_limit"
 CAP_WRITE_FROM_BYTES = 64 << 20  # rows of at least 64 MB (about 100,000 positions) go in under the cap
 

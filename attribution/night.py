@@ -110,7 +110,7 @@ def _vol_and_time(ex: Explain, units: FloatArray, s0: MarketState, s1: MarketSta
     return out
 
 
-VOL_PARTS_ROWS = 1 << 18  # rows whose smile parts are computed at once (each part of each row is its own)
+VOL_PARTS_ROWS = 1 << 16  # rows whose smile parts are computed at once (each part of each row is its own)
 
 
 def _vol_parts(smiles: NightSmiles, i0: NDArray[np.intp], i1: NDArray[np.intp], units: FloatArray,
@@ -131,7 +131,10 @@ def _vol_parts(smiles: NightSmiles, i0: NDArray[np.intp], i1: NDArray[np.intp], 
     return out
 
 
-OVERNIGHT_BLOCK_ROWS = 262_144  # overnight rows explained at a time (whole instrument pairs)
+# Overnight rows explained at a time (whole instrument pairs). Each block's terms, states and greeks are temporaries
+# of its rows: at 262,144 rows a block (before 2026-12-03) they were the explain's peak at a million positions
+# (about 45 MB over the rows' own columns); at 65,536 they are a quarter of it, in the same time (7.2-7.4 s).
+OVERNIGHT_BLOCK_ROWS = 65_536
 _EXERCISE_NAMES = np.array([None, "european", "american"], dtype=object)
 
 
@@ -147,7 +150,7 @@ def _within(n: int) -> NDArray[np.object_]:
 def _names(codes: NDArray[np.int8], names: dict[int, str]) -> NDArray[np.object_]:
     """Names of codes (None for a code without one: the exercise of a delta-one kind)."""
     table = np.array([names.get(c) for c in range(-1, max(names) + 1)], dtype=object)
-    return table[codes.astype(np.intp) + 1]
+    return table[codes.astype(np.int16) + 1]  # two bytes a row for the places, not eight
 
 
 def _activity_lines(cols: dict[str, object], activity: LegActivity, status: NDArray[np.object_], scale: FloatArray,
@@ -227,7 +230,19 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
                   market1: InstrumentMarket, basis: TimeBasis, revaluation: bool, smiles: NightSmiles | None = None,
                   smile_dynamics: str = "sticky strike", clock: VarianceClock | None = None,
                   activity: LegActivity | None = None, files: FileColumns | None = None) -> pd.DataFrame:
-    """The night's ``position_pnl`` rows (without ``limit_state``), one per accepted trade.
+    """The night's ``position_pnl`` rows: :func:`position_frame` of :func:`position_values`."""
+    return position_frame(*position_values(legs, prior, run, market0, market1, basis, revaluation, smiles,
+                                           smile_dynamics, clock, activity, files))
+
+
+def position_values(legs: Legs, prior: CleanNight, run: CleanNight, market0: InstrumentMarket,
+                    market1: InstrumentMarket, basis: TimeBasis, revaluation: bool, smiles: NightSmiles | None = None,
+                    smile_dynamics: str = "sticky strike", clock: VarianceClock | None = None,
+                    activity: LegActivity | None = None,
+                    files: FileColumns | None = None) -> tuple[dict[str, object], int]:
+    """The columns of the night's ``position_pnl`` rows (a limit state placeholder), one row per accepted trade, and
+    the number of rows: what :func:`position_frame` makes the rows of (a caller can let go of what it holds in
+    between: the frame and the columns are then all there is of the night's rows).
 
     With ``smiles`` (:func:`attribution.smile_night.night_smiles`), the vol terms of positions held
     overnight are split into the smile's parts under ``smile_dynamics``; without, the parts stay 0.
@@ -236,7 +251,8 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     prices, corrections restate the prior quantity and whole exercises are explained to intrinsic value;
     without, a quantity change is priced at the run-date row's trade_price (version 1).
     ``files``: :func:`file_columns` of ``legs``, gathered already (the dates' position rows may be gone from
-    ``prior`` and ``run`` then); None gathers them here.
+    ``prior`` and ``run`` then); None gathers them here. A caller that hands ``legs`` and ``files`` over (keeps
+    no reference to them) has their arrays freed as soon as the rows have what they need of them.
     """
     n = len(legs)
     as_of, prior_as_of = run.raw.as_of, prior.raw.as_of
@@ -254,14 +270,17 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         qty0 = np.where(has_prior, qty0 + activity.restated, 0.0)
     held1 = (legs.row1 >= 0) & ~expired
     qty1, trade_price1 = files.qty1, files.trade_price1
+    book, trade_id, instrument_id = legs.book, legs.trade_id, legs.instrument_id
+    fx_rate, fx_rate_prior = legs.fx_rate, legs.fx_rate_prior
+    del legs  # its row places and prior instruments: freed here when the caller has handed the legs over
     mult = market1.multiplier[i1]
     strike, cp = market1.strike[i1], market1.cp[i1]
     american, scheme = market1.american[i1], market1.american_scheme
     crossed = np.zeros(n, dtype=bool)
     kind = market1.kind[i1]
     option = kind == OPTION
-    units0 = qty0 * mult * legs.fx_rate
-    units1 = qty1 * mult * legs.fx_rate
+    units0 = qty0 * mult * fx_rate
+    units1 = qty1 * mult * fx_rate
     dt_years = float(basis.year_fraction(prior_as_of, as_of)[0])
     late, moved_book, strategy = files.late, files.moved_book, files.strategy
     del files  # its arrays are held by the names above only: each freed where its name is
@@ -287,7 +306,7 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     # Exposures at the prior state, for everything held on the prior date.
     if p.size:
         s0 = _state(market0, i0[p])
-        cols["delta_units"][p] = units0[p] / legs.fx_rate[p] * g0.delta
+        cols["delta_units"][p] = units0[p] / fx_rate[p] * g0.delta
         cols["delta_cash"][p] = units0[p] * g0.delta * s0.spot
         cols["gamma_cash_1pct"][p] = units0[p] * g0.gamma * s0.spot * s0.spot / 100.0
         cols["vega_per_vol_point"][p] = units0[p] * g0.vega / 100.0
@@ -350,17 +369,17 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
     cols["pnl_expiry"] = np.where(expired & ~expiring_option, units0 * (intrinsic - np.nan_to_num(price0)), 0.0)
     amended = (status == CARRIED) & (qty1 != qty0)
     fill_price = np.where(np.isnan(trade_price1), market1.price[i1], trade_price1)
-    cols["pnl_amendment"] = np.where(amended, (qty1 - qty0) * mult * legs.fx_rate * (market1.price[i1] - fill_price),
+    cols["pnl_amendment"] = np.where(amended, (qty1 - qty0) * mult * fx_rate * (market1.price[i1] - fill_price),
                                      0.0)
     at_mark = amended & np.isnan(trade_price1)
     if activity is not None:
-        amended, at_mark = _activity_lines(cols, activity, status, mult * legs.fx_rate, qty0, qty1)
+        amended, at_mark = _activity_lines(cols, activity, status, mult * fx_rate, qty0, qty1)
     # The prior value revalued at the run date's rate (the terms above are all at the run date's rate). A future
     # is margined daily: its value after the prior night's settlement is 0, so it has nothing to translate (its
     # settlement price is not a value held in the currency).
     value0 = np.where(kind == FUTURE, 0.0, np.nan_to_num(price0))
     cols["pnl_fx_translation"] = np.where(has_prior, qty0 * mult * value0
-                                          * (legs.fx_rate - np.nan_to_num(legs.fx_rate_prior)), 0.0)
+                                          * (fx_rate - np.nan_to_num(fx_rate_prior)), 0.0)
     cols["pnl_total"] = (cols["pnl_actual"] + np.nan_to_num(cols["pnl_new_trade"]) + cols["pnl_expiry"]
                          + cols["pnl_amendment"] + cols["pnl_fx_translation"] + cols["pnl_cash"])
 
@@ -381,12 +400,12 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
 
     values: dict[str, object] = {
         "as_of": pd.Timestamp(as_of), "prior_as_of": pd.Timestamp(prior_as_of),
-        "book": legs.book, "trade_id": legs.trade_id, "instrument_id": legs.instrument_id,
+        "book": book, "trade_id": trade_id, "instrument_id": instrument_id,
         "underlying": market1.underlying[i1], "currency": market1.currency[i1], "status": status, "flags": flags,
         "option_type": market1.option_type[i1], "strike": strike,
         "expiry": market1.expiry[i1].astype("datetime64[s]"),
         "quantity": np.where(is_new, qty1, qty0), "quantity_run_date": qty1, "multiplier": mult,
-        "fx_rate": legs.fx_rate,
+        "fx_rate": fx_rate,
         "spot_prior": np.where(has_prior, market0.spot[i0], np.nan), "spot_run": market1.spot[i1],
         "vol_prior": np.where(has_prior & option, market0.vol[i0], np.nan),
         "vol_run": np.where(expired | ~option, np.nan, market1.vol[i1]),
@@ -398,12 +417,14 @@ def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: Instr
         "div_pv_prior": np.where(has_prior, market0.dividend_pv[i0], np.nan),
         "div_pv_run": np.where(expired, np.nan, market1.dividend_pv[i1]),
         **cols,
-        "limit_state": _within(n),
-        "kind": _names(kind, KIND_NAMES),
-        "exercise": _EXERCISE_NAMES[np.where(option, np.where(american, 2, 1), 0)],  # one string object per name
         "strategy": strategy,
     }
-    return position_frame(values, n)
+    del i0, qty0, cp  # no column of the rows: freed before the last columns are made
+    values["limit_state"] = _within(n)
+    values["kind"] = _names(kind, KIND_NAMES)
+    # one string object per name, picked by one-byte codes (0 none, 1 european, 2 american)
+    values["exercise"] = _EXERCISE_NAMES[option.astype(np.uint8) + (option & american).astype(np.uint8)]
+    return values, n
 
 
 def position_frame(values: dict[str, object], n: int) -> pd.DataFrame:

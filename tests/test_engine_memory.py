@@ -1,10 +1,12 @@
 """attribution.engine: what a night holds at once. The run date's trade ids share the prior date's string objects,
-and the two dates' position rows are let go before the book sums; the figures are those of the files (the values
-compared with the files as read, pyarrow.parquet being the reference reader)."""
+the two dates' position rows are let go before the explain and the book sums, and the matched legs before the rows'
+last columns; the figures are those of the files (the values compared with the files as read, pyarrow.parquet being
+the reference reader)."""
 
 from __future__ import annotations
 
 import gc
+import sys
 import tracemalloc
 import weakref
 from pathlib import Path
@@ -14,6 +16,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import attribution.engine as engine_module
+import attribution.night as night_module
 from attribution.config import JobConfig
 from attribution.contract import clean_night
 from attribution.engine import prepare_night
@@ -67,7 +70,7 @@ def test_explain_and_book_sums_run_without_the_position_rows(synthetic, monkeypa
     frames: list[weakref.ref] = []
     read = engine_module.read_night
     book_frame = engine_module.book_frame
-    rows = engine_module.position_rows
+    rows = engine_module.position_values
     alive: list[int] = []
     clean_rows: list[int] = []
 
@@ -89,7 +92,7 @@ def test_explain_and_book_sums_run_without_the_position_rows(synthetic, monkeypa
 
     monkeypatch.setattr(engine_module, "read_night", reading)
     monkeypatch.setattr(engine_module, "book_frame", summing)
-    monkeypatch.setattr(engine_module, "position_rows", explaining)
+    monkeypatch.setattr(engine_module, "position_values", explaining)
     night = prepare_night(config, synthetic.run)
     assert len(frames) == 2 and alive == [0, 0] and clean_rows == [0]
     assert len(night.positions) > 2_900
@@ -125,3 +128,30 @@ def test_the_rows_kept_for_the_controls_let_the_others_go(tmp_path: Path) -> Non
     kept = cut.tables["positions.parquet"]
     assert list(kept.columns) == list(engine_module.RUN_CONTROL_COLUMNS)
     assert kept["trade_id"].tolist() == _file_ids(synthetic.data_root, synthetic.run)
+
+
+def test_the_legs_places_are_freed_before_the_rows_last_columns(synthetic, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The engine hands the matched legs and the files' columns over to the explain: when the rows' last columns are
+    made, no one holds the legs' row places or the files' trade prices any more (only this test's own references)."""
+    config = JobConfig(data_root=synthetic.data_root, write_reports=False)
+    kept: list[np.ndarray] = []
+    counts: list[list[int]] = []
+    gather = engine_module.file_columns
+    within = night_module._within
+
+    def gathering(legs, prior, run):  # type: ignore[no-untyped-def]
+        files = gather(legs, prior, run)
+        kept.extend([legs.row0, legs.row1, legs.inst0, files.trade_price1])
+        return files
+
+    def placeholder(n: int) -> np.ndarray:
+        gc.collect()
+        counts.append([sys.getrefcount(array) for array in kept])
+        return within(n)
+
+    monkeypatch.setattr(engine_module, "file_columns", gathering)
+    monkeypatch.setattr(night_module, "_within", placeholder)
+    night = prepare_night(config, synthetic.run)
+    assert len(night.positions) > 2_900
+    # each array: held by the list above, the loop's name and getrefcount's own argument, nothing else
+    assert counts == [[3, 3, 3, 3]]

@@ -9,6 +9,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+import attribution.engine as engine_module
 import attribution.night as night_module
 from attribution.config import JobConfig
 from attribution.engine import prepare_night
@@ -69,6 +70,7 @@ def test_the_explains_placeholder_limit_state_is_one_string_object(tmp_path: Pat
         return frame(values, n)
 
     monkeypatch.setattr(night_module, "position_frame", watched)
+    monkeypatch.setattr(engine_module, "position_frame", watched)  # the engine makes the frame itself
     prepare_night(config, synthetic.run)
     [states] = seen
     assert states.size > 1_500 and set(states) == {"within"}
