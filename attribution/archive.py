@@ -200,10 +200,12 @@ def _column(series: pd.Series) -> pa.Array:
     return pa.Array.from_pandas(series)
 
 
-def arrow_table(frame: pd.DataFrame, table: str) -> pa.Table:
+def arrow_table(frame: pd.DataFrame, table: str, consume: bool = False) -> pa.Table:
     """``frame``'s columns in the order of the archive ``table``, as one Arrow table (no pandas copy between):
     numbers without a copy, text converted by Arrow over every core; a small table (the book totals, the run
-    record) with one block copy per number type and no threads, where the per-column calls cost the most."""
+    record) with one block copy per number type and no threads, where the per-column calls cost the most.
+    ``consume``: a large frame's ``trade_id`` column is converted first and dropped from ``frame`` (its values are
+    one Python string a row: freed before the other text is converted)."""
     names = [name for name, _ in TABLES[table]]
     dtypes = dict(zip(frame.columns.tolist(), frame.dtypes.tolist(), strict=True))
     for name in names:
@@ -212,6 +214,10 @@ def arrow_table(frame: pd.DataFrame, table: str) -> pa.Table:
     small = len(frame) <= SMALL_TABLE_ROWS
     text = [name for name in names if dtypes[name] == np.dtype(object)]
     arrays: dict[str, pa.Array | pa.ChunkedArray] = {}
+    if consume and not small and "trade_id" in text:
+        arrays["trade_id"] = pa.Table.from_pandas(frame, columns=["trade_id"], preserve_index=False).column(0)
+        del frame["trade_id"]
+        text.remove("trade_id")
     if text and not small:  # a small table's text goes column by column below: the same Arrow arrays, less set-up
         converted = pa.Table.from_pandas(frame, columns=text, preserve_index=False)
         arrays.update(zip(text, converted.columns, strict=True))

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-SUM_BLOCK_COLUMNS = 8  # columns gathered in book order at a time (8 columns: 64 MB at 1M positions)
+SUM_BLOCK_COLUMNS = 4  # columns gathered in book order at a time (4 columns: 32 MB at 1M positions)
 
 
 def sums_by_group(columns: list[np.ndarray], code: np.ndarray, groups: int) -> tuple[np.ndarray, np.ndarray]:
