@@ -9,6 +9,7 @@ import duckdb
 import numpy as np
 import pytest
 
+import attribution.bench as bench_module
 from attribution.bench import QuantLibPeer, peer_sample, run_bench
 from attribution.errors import EXIT_OK
 from attribution.loading import read_night
@@ -68,3 +69,10 @@ def test_peer_sample_holds_the_nights_mix(tmp_path):
     assert sample.american.any() and european.any() and (sample.kind != OPTION).any()
     assert np.all(sample.expiry_days[sample.kind == OPTION] > 1)  # still live on the run date
     assert QuantLibPeer(ql, night.prior, night.run).time_loop(sample) > 0
+
+
+def test_the_memory_goal_printed_is_the_one_of_the_nights_size() -> None:
+    """The README's speed goals: 1 GB at a million positions, 2.5 GB at three million; none for other sizes."""
+    assert bench_module._rss_goal(1_000_000) == " (goal <= 1,000 MB)"
+    assert bench_module._rss_goal(3_000_000) == " (goal <= 2,500 MB)"
+    assert bench_module._rss_goal(100_000) == ""
