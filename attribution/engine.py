@@ -204,7 +204,7 @@ def _share_trade_ids(trades: NightTrades, raw0: RawNight, run: tuple[RawNight, C
     raw1, clean1 = run
     frames = [(raw1.tables[file], trades.run), (clean1.positions, clean1.position_keys.get("trade_id"))]
     for frame, codes in frames:
-        if codes is None or not trades.matches(trades.prior, codes) or len(codes) != len(frame):
+        if codes is None or codes.values is not trades.run.values or len(codes) != len(frame):
             continue  # rows not coded over the run file's values: left as they are
         frame["trade_id"] = pd.Series(trades.prior_texts(prior_ids, codes), index=frame.index, dtype=object,
                                       copy=False)
@@ -344,8 +344,8 @@ def prepare_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = Non
     handed = [legs, files]
     del legs, files
     with np.errstate(all="ignore"):  # overflows and underflows are caught row by row just below
-        values, n = position_values(handed.pop(0), clean0, clean1, market0, market1, basis, config.revaluation,
-                                    smiles, config.smile.dynamics, clock, activity, handed.pop())
+        values, n = position_values(handed.pop(0), handed.pop(), clean0, clean1, market0, market1, basis,
+                                    config.revaluation, smiles, config.smile.dynamics, clock, activity)
     del activity
     positions = position_frame(values, n)
     del values

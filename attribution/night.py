@@ -226,20 +226,10 @@ def file_columns(legs: Legs, prior: CleanNight, run: CleanNight) -> FileColumns:
     return FileColumns(qty0, qty1, trade_price1, late, moved_book, _strategy(legs, prior, run))
 
 
-def position_rows(legs: Legs, prior: CleanNight, run: CleanNight, market0: InstrumentMarket,
-                  market1: InstrumentMarket, basis: TimeBasis, revaluation: bool, smiles: NightSmiles | None = None,
-                  smile_dynamics: str = "sticky strike", clock: VarianceClock | None = None,
-                  activity: LegActivity | None = None, files: FileColumns | None = None) -> pd.DataFrame:
-    """The night's ``position_pnl`` rows: :func:`position_frame` of :func:`position_values`."""
-    return position_frame(*position_values(legs, prior, run, market0, market1, basis, revaluation, smiles,
-                                           smile_dynamics, clock, activity, files))
-
-
-def position_values(legs: Legs, prior: CleanNight, run: CleanNight, market0: InstrumentMarket,
+def position_values(legs: Legs, files: FileColumns, prior: CleanNight, run: CleanNight, market0: InstrumentMarket,
                     market1: InstrumentMarket, basis: TimeBasis, revaluation: bool, smiles: NightSmiles | None = None,
                     smile_dynamics: str = "sticky strike", clock: VarianceClock | None = None,
-                    activity: LegActivity | None = None,
-                    files: FileColumns | None = None) -> tuple[dict[str, object], int]:
+                    activity: LegActivity | None = None) -> tuple[dict[str, object], int]:
     """The columns of the night's ``position_pnl`` rows (a limit state placeholder), one row per accepted trade, and
     the number of rows: what :func:`position_frame` makes the rows of (a caller can let go of what it holds in
     between: the frame and the columns are then all there is of the night's rows).
@@ -250,9 +240,9 @@ def position_values(legs: Legs, prior: CleanNight, run: CleanNight, market0: Ins
     With ``activity`` (:func:`attribution.activity.leg_activity`), changes are priced at their execution
     prices, corrections restate the prior quantity and whole exercises are explained to intrinsic value;
     without, a quantity change is priced at the run-date row's trade_price (version 1).
-    ``files``: :func:`file_columns` of ``legs``, gathered already (the dates' position rows may be gone from
-    ``prior`` and ``run`` then); None gathers them here. A caller that hands ``legs`` and ``files`` over (keeps
-    no reference to them) has their arrays freed as soon as the rows have what they need of them.
+    ``files``: :func:`file_columns` of ``legs``, gathered before (the dates' position rows may be gone from
+    ``prior`` and ``run``: their dates are what is read of them here). A caller that hands ``legs`` and ``files``
+    over (keeps no reference to them) has their arrays freed as soon as the rows have what they need of them.
     """
     n = len(legs)
     as_of, prior_as_of = run.raw.as_of, prior.raw.as_of
@@ -263,8 +253,6 @@ def position_values(legs: Legs, prior: CleanNight, run: CleanNight, market0: Ins
     expired = np.isin(status, EXPIRIES)  # expired tonight, or settled on the prior date
     i0 = np.maximum(legs.inst0, 0)
     i1 = legs.inst1
-    if files is None:
-        files = file_columns(legs, prior, run)
     qty0 = files.qty0
     if activity is not None:  # corrections and cancels restate the prior quantity, without P&L
         qty0 = np.where(has_prior, qty0 + activity.restated, 0.0)

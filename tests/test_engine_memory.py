@@ -74,11 +74,11 @@ def test_explain_and_book_sums_run_without_the_position_rows(synthetic, monkeypa
     alive: list[int] = []
     clean_rows: list[int] = []
 
-    def explaining(legs, prior, run, *args, **kwargs):  # type: ignore[no-untyped-def]
+    def explaining(legs, files, prior, run, *args, **kwargs):  # type: ignore[no-untyped-def]
         gc.collect()
         alive.append(sum(ref() is not None for ref in frames))
         clean_rows.append(len(prior.positions) + len(run.positions))
-        return rows(legs, prior, run, *args, **kwargs)
+        return rows(legs, files, prior, run, *args, **kwargs)
 
     def reading(*args, **kwargs):  # type: ignore[no-untyped-def]
         raw = read(*args, **kwargs)

@@ -69,8 +69,7 @@ def test_the_explains_placeholder_limit_state_is_one_string_object(tmp_path: Pat
         seen.append(values["limit_state"])  # type: ignore[arg-type]
         return frame(values, n)
 
-    monkeypatch.setattr(night_module, "position_frame", watched)
-    monkeypatch.setattr(engine_module, "position_frame", watched)  # the engine makes the frame itself
+    monkeypatch.setattr(engine_module, "position_frame", watched)  # the engine makes the rows' frame
     prepare_night(config, synthetic.run)
     [states] = seen
     assert states.size > 1_500 and set(states) == {"within"}
