@@ -7,6 +7,7 @@
 from __future__ import annotations
 
 import collections
+import concurrent.futures
 import contextlib
 import dataclasses
 import datetime as dt
@@ -39,11 +40,12 @@ from attribution.activity import (
 from attribution.archive import (
     SET_ONE_THREAD,
     BookHistory,
+    OpenNight,
     archive_lock,
     arrow_table,
+    begin_night,
     connect,
     dates_with_rows,
-    write_night,
 )
 from attribution.arrow_ipc import from_ipc, to_ipc
 from attribution.books import (
@@ -488,14 +490,17 @@ def _runs_table(night: ArchiveRows, config: JobConfig, run_id: str, started: dt.
 
 class ArchiveSession:
     """The archive held by this process: locked at once, opened (and created) only when first written.
-    ``one_thread``: DuckDB works on one thread (the other cores are busy computing nights)."""
+    ``one_thread``: DuckDB works on one thread (the other cores are busy computing nights). ``one_night``: the
+    session writes one night and closes: its commit folds DuckDB's log into the file (closing would fold it
+    anyway), so the rows are written once, not to the log first and then to the file."""
 
-    def __init__(self, config: JobConfig, one_thread: bool = False) -> None:
+    def __init__(self, config: JobConfig, one_thread: bool = False, one_night: bool = False) -> None:
         self._path = config.archive_path
         self._one_thread = one_thread
+        self.one_night = one_night
         self._con: duckdb.DuckDBPyConnection | None = None
         self._dates: set[dt.date] | None = None  # dates with rows in the archive, read once, kept up to date here
-        self._history: BookHistory | None = None  # the quality test's rows, read once, kept up to date by write_night
+        self._history: BookHistory | None = None  # the quality test's rows, read once, kept up to date by each commit
 
     def holds(self, as_of: dt.date) -> bool:
         """Whether the archive may have rows of ``as_of`` (true unless known not to): its rows must be replaced.
@@ -535,10 +540,10 @@ class ArchiveSession:
 
 
 @contextlib.contextmanager
-def open_archive(config: JobConfig, one_thread: bool = False) -> Iterator[ArchiveSession]:
+def open_archive(config: JobConfig, one_thread: bool = False, one_night: bool = False) -> Iterator[ArchiveSession]:
     """Lock the archive for the runs of this process (one run, or a whole backfill); see :class:`ArchiveSession`."""
     with archive_lock(config.archive_path):
-        session = ArchiveSession(config, one_thread)
+        session = ArchiveSession(config, one_thread, one_night)
         try:
             yield session
         finally:
@@ -559,13 +564,41 @@ def run_night(config: JobConfig, as_of: dt.date, prior: dt.date | None = None,
     if prepare is None and config.engine != "local":
         raise ConfigError(f"engine = {config.engine!r}: run the night through attribution.runner.run_night")
     if session is None:
-        with open_archive(config) as own:
+        with open_archive(config, one_night=True) as own:
             return run_night(config, as_of, prior, progress, own, prepare)
     started, t0 = dt.datetime.now(), time.perf_counter()
     night = (prepare or prepare_night)(config, as_of, prior, progress)
     rows = archive_rows(night)
     del night  # its frames: the Arrow rows hold what the archive takes (their numbers without a copy)
     return archive_night(config, rows, session, progress, started, t0)
+
+
+def _commit_and_publish(config: JobConfig, open_night: OpenNight, fold_log: bool) -> Path:
+    """Read the figures of the night's pages inside its open transaction, then commit it on a second thread while
+    the pages are rendered and written; they are moved into place once the commit has returned, so no page is
+    published for a night that is not archived. Return the index page.
+
+    DuckDB's commit runs without Python's lock: a 100,000-position night's commit (0.30 s, folding the log) costs
+    no wall time beside its 100 pages' rendering (0.36 s) on two cores. If the reads fail, the night is committed
+    as when its pages fail after the commit, and the reads' error is raised (a query that failed inside DuckDB
+    has ended the transaction: then nothing is archived).
+    """
+    from attribution.report import load_report, publish_report
+    try:
+        frames = load_report(open_night.con, open_night.as_of, config)
+    except BaseException:
+        with contextlib.suppress(duckdb.Error):
+            open_night.commit(fold_log)
+        raise
+    with concurrent.futures.ThreadPoolExecutor(max_workers=1, thread_name_prefix="attribution-commit") as pool:
+        committing = pool.submit(open_night.commit, fold_log)
+        try:
+            return publish_report(frames, open_night.as_of, config.reports_dir, config, committing.result)
+        except BaseException:
+            failed = committing.exception()  # waits for the commit: a night not archived is the error to raise
+            if failed is not None:
+                raise failed from None
+            raise
 
 
 def archive_night(config: JobConfig, night: ArchiveRows, session: ArchiveSession, progress: Progress | None = None,
@@ -592,17 +625,19 @@ def archive_night(config: JobConfig, night: ArchiveRows, session: ArchiveSession
     tables = dict(night.tables)
     tables["runs"] = _runs_table(night, config, str(uuid.uuid4()), started, exit_code, time.perf_counter() - t0,
                                  counts)
-    con = session.con
-    quality = write_night(con, as_of, tables, replace=session.holds(as_of), history=session.history)
-    session.written(as_of)
+    open_night = begin_night(session.con, as_of, tables, replace=session.holds(as_of), history=session.history)
+    session.written(as_of)  # (if it is rolled back, the date's next write only deletes rows it need not)
     tables.clear()
-    night.tables.clear()  # archived: the reports read the archive
-    watch.lap("archive")
+    night.tables.clear()  # in the transaction: the reports read it there
     index_path = None
     if config.write_reports:
-        from attribution.report import render_night
-        index_path = render_night(con, as_of, config.reports_dir, config)
+        watch.lap("archive")  # the inserts: the commit runs while the pages are rendered
+        index_path = _commit_and_publish(config, open_night, session.one_night)
         watch.lap("report")
+    else:
+        open_night.commit(session.one_night)
+        watch.lap("archive")
+    quality = open_night.quality
     return NightOutcome(
         as_of=as_of, prior_as_of=night.prior_as_of, positions_in=night.positions_in,
         archived=counts.archived, rejected=night.rejected_positions, warnings=counts.warnings,

@@ -343,32 +343,35 @@ def _memory_limit(con: duckdb.DuckDBPyConnection) -> str:
 
 def test_night_rows_go_in_with_duckdbs_memory_capped_and_the_cap_is_lifted_after(archived, desk, tmp_path,
                                                                                  monkeypatch):
-    """Every insert of a large night runs under the write cap (DuckDB lets go of the blocks it wrote); after the
-    transaction the connection has its memory limit as before (the reports' queries run uncapped). The mini
-    desk's night is made "large" by a threshold of 0 bytes."""
+    """Every insert of a large night runs under the write cap (DuckDB lets go of the blocks it wrote); once the
+    transaction is committed the connection has its memory limit as before. The mini desk's night is made
+    "large" by a threshold of 0 bytes."""
     monkeypatch.setattr(archive_module, "CAP_WRITE_FROM_BYTES", 0)
     box = copy_of(archived, tmp_path / "box")
     during, around = [], []
-    insert, write = archive_module._insert, engine_module.write_night
+    insert, begin, commit = archive_module._insert, engine_module.begin_night, archive_module.OpenNight.commit
 
     def capped_insert(con, table, rows):
         during.append(_memory_limit(con))
         insert(con, table, rows)
 
-    def write_night(con, *args, **kwargs):
-        before = _memory_limit(con)
-        quality = write(con, *args, **kwargs)
-        around.append((before, _memory_limit(con)))
-        return quality
+    def begin_night(con, *args, **kwargs):
+        around.append(_memory_limit(con))
+        return begin(con, *args, **kwargs)
+
+    def committed(self, *args, **kwargs):
+        commit(self, *args, **kwargs)
+        around.append(_memory_limit(self.con))
 
     monkeypatch.setattr(archive_module, "_insert", capped_insert)
-    monkeypatch.setattr(engine_module, "write_night", write_night)
+    monkeypatch.setattr(engine_module, "begin_night", begin_night)
+    monkeypatch.setattr(archive_module.OpenNight, "commit", committed)
     assert run(desk, box) == 3
     cap = duckdb.connect()
     cap.execute(archive_module.SET_WRITE_MEMORY)
     assert len(during) >= 4 and set(during) == {_memory_limit(cap)}
     cap.close()
-    [(before, after)] = around
+    [before, after] = around
     assert before == after != during[0]
 
 
@@ -416,3 +419,129 @@ def test_archive_night_lets_go_of_the_rows_once_committed(archived, desk, tmp_pa
     assert rows.tables == {}
     assert outcome.archived == held > 0
     assert read_archive(box / "a.duckdb", RUN)[1]["position_pnl"].shape[0] == held
+
+
+# ---------------------------------------------------------------- the commit: one-night runs fold, pages beside it
+
+def run_with_reports(data: Path, box: Path) -> int:
+    """:func:`run` with the report pages written (in ``box/reports``)."""
+    with contextlib.chdir(box):
+        return main(["run", "--as-of", RUN.isoformat(), "--data", str(data), "--archive", "a.duckdb",
+                     "--reports", "reports", "--basis", "BUS/252"])
+
+
+def _threshold(con: duckdb.DuckDBPyConnection) -> str:
+    return con.execute("SELECT current_setting('checkpoint_threshold')").fetchall()[0][0]
+
+
+@pytest.mark.parametrize("one_night", [True, False])
+def test_a_one_night_session_folds_the_log_into_the_file_as_it_commits(archived, desk, tmp_path, one_night):
+    """A session that writes one night and closes (``attribution run``) folds DuckDB's write-ahead log into the file
+    as the night commits: no log is left once committed, before the session closes. A backfill's session keeps
+    the log (folded at 256 MB or when it closes). Either way the connection's threshold is as before, and the
+    archive holds the same rows."""
+    box = copy_of(archived, tmp_path / "box")
+    _, rows_before = read_archive(box / "a.duckdb", RUN)
+    config = JobConfig(data_root=desk, archive_path=Path("a.duckdb"), reports_dir=Path("reports"),
+                       write_reports=False, time_basis="BUS/252")
+    with contextlib.chdir(box), engine_module.open_archive(config, one_night=one_night) as session:
+        threshold = _threshold(session.con)
+        engine_module.run_night(config, RUN, session=session)
+        log = box / "a.duckdb.wal"
+        log_bytes = log.stat().st_size if log.exists() else 0
+        assert _threshold(session.con) == threshold
+    assert (log_bytes == 0) is one_night, log_bytes
+    assert_same_rows(read_archive(box / "a.duckdb", RUN)[1], rows_before)
+
+
+def test_a_small_night_is_inserted_on_one_duckdb_thread_and_the_setting_given_back(archived, desk, tmp_path,
+                                                                                   monkeypatch):
+    """Tables of one row group at most go in on one DuckDB thread; then the connection has DuckDB's own setting
+    again (the reports' queries use it). Above the threshold (made 0 rows here) DuckDB's setting is left alone."""
+    default = duckdb.connect().execute("SELECT current_setting('threads')").fetchall()[0][0]
+    for limit, expected in ((archive_module.ONE_THREAD_INSERT_ROWS, 1), (0, default)):
+        monkeypatch.setattr(archive_module, "ONE_THREAD_INSERT_ROWS", limit)
+        box = copy_of(archived, tmp_path / f"box{limit}")
+        during, insert = [], archive_module._insert
+
+        def watched_insert(con, table, rows, insert=insert, during=during):
+            during.append(con.execute("SELECT current_setting('threads')").fetchall()[0][0])
+            insert(con, table, rows)
+
+        monkeypatch.setattr(archive_module, "_insert", watched_insert)
+        config = JobConfig(data_root=desk, archive_path=Path("a.duckdb"), reports_dir=Path("reports"),
+                           write_reports=False, time_basis="BUS/252")
+        with contextlib.chdir(box), engine_module.open_archive(config) as session:
+            engine_module.run_night(config, RUN, session=session)
+            after = session.con.execute("SELECT current_setting('threads')").fetchall()[0][0]
+        monkeypatch.setattr(archive_module, "_insert", insert)
+        assert len(during) >= 4 and set(during) == {expected}, (limit, during)
+        assert after == default
+
+
+def test_pages_are_moved_into_place_only_once_the_night_is_committed(archived, desk, tmp_path, monkeypatch):
+    """The commit runs on a second thread while the pages are rendered and written; the pages are moved into
+    place after it returned (a slow commit, made 0.3 s slower here, still comes first)."""
+    import threading
+    import time
+
+    import attribution.report as report_module
+    box = copy_of(archived, tmp_path / "box")
+    events: list[tuple[str, str]] = []
+    commit, write = archive_module.OpenNight.commit, report_module.write_atomically
+
+    def slow_commit(self, *args, **kwargs):
+        time.sleep(0.3)
+        commit(self, *args, **kwargs)
+        events.append(("committed", threading.current_thread().name))
+
+    def watched_write(target, files, before_moving=None):
+        def moving():
+            assert before_moving is not None
+            before_moving()
+            events.append(("moving", threading.current_thread().name))
+        events.append(("pages written", threading.current_thread().name))
+        write(target, files, moving)
+
+    monkeypatch.setattr(archive_module.OpenNight, "commit", slow_commit)
+    monkeypatch.setattr(report_module, "write_atomically", watched_write)
+    assert run_with_reports(desk, box) == 3
+    assert [name for name, _ in events] == ["pages written", "committed", "moving"]
+    assert events[1][1] != events[0][1] == events[2][1] == threading.main_thread().name
+    assert (box / "reports" / RUN.isoformat() / "index.html").exists()
+
+
+def test_a_failed_commit_publishes_no_page(archived, desk, tmp_path, monkeypatch, capsys):
+    """When the commit fails (a full disk) while the pages are rendered, the run exits 1 with the commit's cause,
+    the archive is as it was and no page of the night is published (their temporary folder removed)."""
+    box = copy_of(archived, tmp_path / "box")
+    before, _ = read_archive(box / "a.duckdb", RUN)
+    monkeypatch.setattr(archive_module, "_commit", _commit_fails_like_a_full_disk)
+    capsys.readouterr()
+    assert run_with_reports(desk, box) == 1
+    err = capsys.readouterr().err
+    assert "No space left on device" in err and "cannot rollback" not in err, err
+    assert read_archive(box / "a.duckdb", RUN)[0] == before
+    assert not (box / "reports").exists() or list((box / "reports").iterdir()) == []
+
+
+def test_failed_report_reads_leave_the_night_archived(archived, desk, tmp_path, monkeypatch, capsys):
+    """The pages' figures are read inside the night's transaction; if that fails, the night is committed all the
+    same (as when pages fail after a commit) and the run exits 1 naming the error; no page is published."""
+    import attribution.report as report_module
+    box = copy_of(archived, tmp_path / "box")
+    box_rows = read_archive(box / "a.duckdb", RUN)[1]
+    (box / "a.duckdb").unlink()  # the night is archived afresh by the run below, or not at all
+
+    def failing_reads(*args, **kwargs):
+        raise report_module.ReportError("injected failure reading the pages' figures")
+
+    monkeypatch.setattr(report_module, "load_report", failing_reads)
+    capsys.readouterr()
+    assert run_with_reports(desk, box) == 1
+    assert "injected failure reading the pages' figures" in capsys.readouterr().err
+    rows = read_archive(box / "a.duckdb", RUN)[1]
+    assert len(rows["runs"]) == len(box_rows["runs"]) == 1  # (its settings say the pages were asked for)
+    for table in set(TABLES) - {"runs"}:
+        pd.testing.assert_frame_equal(rows[table], box_rows[table], check_exact=True, obj=table)
+    assert not (box / "reports" / RUN.isoformat()).exists()

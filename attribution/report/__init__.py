@@ -14,6 +14,7 @@ never sees a half-written night.
 from __future__ import annotations
 
 import datetime as dt
+from collections.abc import Callable
 from pathlib import Path
 
 import duckdb
@@ -22,22 +23,38 @@ from attribution.config import JobConfig
 from attribution.report.html import EXCEPTIONS_SHOWN, render_files
 from attribution.report.pages import file_name_for
 from attribution.report.publish import write_atomically
-from attribution.report.queries import TERM_COLUMNS, TOP_POSITIONS, ReportError, load_night
+from attribution.report.queries import TERM_COLUMNS, TOP_POSITIONS, NightFrames, ReportError, load_night
 from attribution.report.settings import NightSettings, night_settings
 from attribution.report.view import book_pages, conventions, night_view
 
 __all__ = ["EXCEPTIONS_SHOWN", "TERM_COLUMNS", "TOP_POSITIONS", "NightSettings", "ReportError", "book_pages",
-           "file_name_for", "load_night", "night_settings", "render_night"]
+           "file_name_for", "load_night", "load_report", "night_settings", "publish_report", "render_night"]
 
 
 def render_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, reports_dir: Path, config: JobConfig) -> Path:
     """Write ``<reports_dir>/<as_of>/index.html``, ``exceptions.html`` and one page per book; return the index."""
+    return publish_report(load_report(con, as_of, config), as_of, reports_dir, config)
+
+
+def load_report(con: duckdb.DuckDBPyConnection, as_of: dt.date, config: JobConfig) -> NightFrames:
+    """Everything the night's pages show, read from the archive (all of it: the pages need no query after)."""
     frames = load_night(con, as_of, config.history_nights, config.expiry_buckets)
     if not len(frames.books) and not len(frames.exceptions) and not len(frames.run):
         raise ReportError(f"archive: nothing archived for {as_of.isoformat()} (no run, no book, no exception)")
+    return frames
+
+
+def publish_report(frames: NightFrames, as_of: dt.date, reports_dir: Path, config: JobConfig,
+                   before_moving: Callable[[], object] | None = None) -> Path:
+    """Render the pages of ``frames`` (:func:`load_report`) and put them in place; return the index.
+
+    ``before_moving`` is called once the files are written to their temporary folder, before it is moved into
+    place: the engine waits there for the night's commit, so no page is published for a night not archived
+    (if it raises, nothing is published and its error is raised).
+    """
     settings = night_settings(frames.run, config)  # the night's own settings, as its run record holds them
     pages = book_pages(frames, settings)
     night = night_view(frames, pages, as_of, conventions(frames, as_of, settings))
     target = Path(reports_dir) / as_of.isoformat()
-    write_atomically(target, render_files(night, pages))
+    write_atomically(target, render_files(night, pages), before_moving)
     return target / "index.html"

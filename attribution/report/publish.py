@@ -6,7 +6,7 @@ import fcntl
 import os
 import secrets
 import shutil
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from pathlib import Path
 
 from attribution.report.queries import ReportError
@@ -23,10 +23,12 @@ def _remove_leftovers(target: Path) -> None:
                 shutil.rmtree(stale, ignore_errors=True)
 
 
-def write_atomically(target: Path, files: Mapping[str, str]) -> None:
+def write_atomically(target: Path, files: Mapping[str, str], before_moving: Callable[[], object] | None = None) -> None:
     """Write ``files`` into a temporary folder beside ``target``, then move it into place.
 
-    Leftovers of an earlier interrupted render of the same date are removed first.
+    Leftovers of an earlier interrupted render of the same date are removed first. ``before_moving`` is called
+    between the two: if it raises, the temporary folder is removed, ``target`` is left as it was, and its error
+    is raised.
     """
     target.parent.mkdir(parents=True, exist_ok=True)
     # Runs on different archives may share a reports folder: they take turns here (an OS lock,
@@ -35,7 +37,7 @@ def write_atomically(target: Path, files: Mapping[str, str]) -> None:
     folder = os.open(target.parent, os.O_RDONLY | os.O_DIRECTORY)
     try:
         fcntl.flock(folder, fcntl.LOCK_EX)
-        _stage_and_move(target, files)
+        _stage_and_move(target, files, before_moving)
     finally:
         os.close(folder)
 
@@ -46,7 +48,7 @@ def _plain_name(name: str) -> bool:
     return bool(name) and name not in (".", "..") and not any(sep in name for sep in seps)
 
 
-def _stage_and_move(target: Path, files: Mapping[str, str]) -> None:
+def _stage_and_move(target: Path, files: Mapping[str, str], before_moving: Callable[[], object] | None) -> None:
     _remove_leftovers(target)
     staging = target.parent / f".{target.name}.tmp-{secrets.token_hex(6)}"
     staging.mkdir()  # the usual permissions (umask), unlike a private mkdtemp folder
@@ -58,6 +60,8 @@ def _stage_and_move(target: Path, files: Mapping[str, str]) -> None:
         for name, text in files.items():
             with open(staging / name, "w", encoding="utf-8") as out:  # a new file in the new folder
                 out.write(text)
+        if before_moving is not None:
+            before_moving()
         if target.exists():
             old = target.parent / f".{target.name}.old-{secrets.token_hex(6)}"
             target.rename(old)
