@@ -346,23 +346,13 @@ def dates_with_rows(con: duckdb.DuckDBPyConnection) -> set[dt.date]:
     return {r[0] for r in con.execute(body).fetchall()}
 
 
-def write_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[str, pa.Table], replace: bool = True,
-                history: BookHistory | None = None, fold_log: bool = False) -> dict[str, np.ndarray]:
-    """Replace every table's rows of ``as_of`` with ``tables`` (Arrow, see :func:`arrow_table`; a table left out
-    has no row tonight) and the night's quality test, atomically: :func:`begin_night`, then its commit.
-
-    Returns the ``book_quality`` rows written, as columns (see :func:`~attribution.quality_table.quality_columns`).
-    """
-    night = begin_night(con, as_of, tables, replace, history)
-    night.commit(fold_log)
-    return night.quality
-
-
 def begin_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[str, pa.Table], replace: bool = True,
                 history: BookHistory | None = None) -> OpenNight:
-    """Delete ``as_of``'s rows from every table and insert ``tables`` and the night's quality test, in a
-    transaction left open: the connection's queries see the new rows, no other connection does until
-    :meth:`OpenNight.commit` (a failure here rolls everything back). The connection must not be used by
+    """Delete ``as_of``'s rows from every table and insert ``tables`` (Arrow, see :func:`arrow_table`; a table left
+    out has no row tonight) and the night's quality test, in a transaction left open: the connection's queries see
+    the new rows, no other connection does until :meth:`OpenNight.commit` (a failure here rolls everything back).
+    The ``book_quality`` rows written are the returned night's ``quality``, as columns (see
+    :func:`~attribution.quality_table.quality_columns`). The connection must not be used by
     another thread until the night is committed or rolled back.
 
     ``replace=False`` skips the deletes: only for a date known to have no row in any table (a backfill's

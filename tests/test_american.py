@@ -15,6 +15,7 @@ import pytest
 from american_sample import QuantLibAmerican, random_american
 from option_sample import OptionSample
 
+import attribution.american as american_module
 from attribution.american import (
     FAST,
     PRECISE,
@@ -152,18 +153,20 @@ def test_an_options_value_does_not_depend_on_what_is_priced_with_it() -> None:
     Reference: the functions' own results on the whole batch (exact equality, no tolerance).
     """
     rng = np.random.default_rng(5)
-    n = 300
+    n = 1_100  # more than two chunks of states solved together (american._CHUNK_STATES)
     T, vol = rng.uniform(0.02, 3.0, n), rng.uniform(0.05, 0.8, n)
     r, q = rng.uniform(0.001, 0.08, n), rng.uniform(0.0, 0.1, n)
-    whole = solve_put_boundaries(T, vol, r, q, threads=1)
-    for size in (1, 7, 127, 129):
+    whole = solve_put_boundaries(T, vol, r, q, threads=1, memo=None)  # no memo: every state solved each time
+    assert whole.h.shape[0] > 2 * american_module._CHUNK_STATES
+    np.testing.assert_array_equal(solve_put_boundaries(T, vol, r, q, memo=None).h, whole.h)  # threads too
+    for size in (1, 7, 511, 513):
         for lo in range(0, n, size * 5):
             part = solve_put_boundaries(T[lo:lo + size], vol[lo:lo + size], r[lo:lo + size], q[lo:lo + size],
-                                        threads=1)
+                                        threads=1, memo=None)
             np.testing.assert_array_equal(part.h, whole.h[lo:lo + size])
     order = rng.permutation(n)
-    np.testing.assert_array_equal(solve_put_boundaries(T[order], vol[order], r[order], q[order], threads=1).h,
-                                  whole.h[order])
+    np.testing.assert_array_equal(
+        solve_put_boundaries(T[order], vol[order], r[order], q[order], threads=1, memo=None).h, whole.h[order])
     x = rng.uniform(0.5, 1.6, 2_000)
     state = rng.integers(0, n, 2_000)
     values = put_values(whole, state, x, threads=1)

@@ -160,7 +160,7 @@ def _fail_runs_insert(original):
 
 @pytest.mark.parametrize("where", ["quality step", "run record insert"])
 def test_failed_write_leaves_the_archive_exactly_as_it_was(archived, desk, tmp_path, monkeypatch, capsys, where):
-    """A failure inside write_night after its deletes rolls everything back; the run exits 1 naming the error."""
+    """A failure inside begin_night after its deletes rolls everything back; the run exits 1 naming the error."""
     box = copy_of(archived, tmp_path / "box")
     before, rows_before = read_archive(box / "a.duckdb", RUN)
     if where == "quality step":
