@@ -61,14 +61,15 @@ def desk(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return root
 
 
-def run(data: Path, box: Path) -> int:
-    """``attribution run`` of the mini desk's run date in ``box`` (BUS/252; no reports: the archive is tested).
+def run(data: Path, box: Path, reports: bool = False) -> int:
+    """``attribution run`` of the mini desk's run date in ``box`` (BUS/252; no reports unless asked: the archive is
+    tested).
 
     Archive and reports are named relative to ``box``, so copies of a box record the same settings.
     """
     with contextlib.chdir(box):
         return main(["run", "--as-of", RUN.isoformat(), "--data", str(data), "--archive", "a.duckdb",
-                     "--reports", "reports", "--basis", "BUS/252", "--no-reports"])
+                     "--reports", "reports", "--basis", "BUS/252", *([] if reports else ["--no-reports"])])
 
 
 @pytest.fixture(scope="module")
@@ -187,16 +188,19 @@ def _commit_fails_like_a_full_disk(con: duckdb.DuckDBPyConnection) -> None:
                                       "file \"a.duckdb.wal\": No space left on device")
 
 
-def test_failed_commit_reports_its_own_cause(archived, desk, tmp_path, monkeypatch, capsys):
-    """When COMMIT itself fails (disk full), the run exits 1 with that cause, not a rollback error; no change."""
+@pytest.mark.parametrize("pages", [False, True])
+def test_failed_commit_reports_its_own_cause(archived, desk, tmp_path, monkeypatch, capsys, pages):
+    """When COMMIT itself fails (disk full), the run exits 1 with that cause, not a rollback error; no change.
+    With pages, the commit fails while they are rendered: none is published (their temporary folder removed)."""
     box = copy_of(archived, tmp_path / "box")
     before, _ = read_archive(box / "a.duckdb", RUN)
     monkeypatch.setattr(archive_module, "_commit", _commit_fails_like_a_full_disk)
     capsys.readouterr()
-    assert run(desk, box) == 1
+    assert run(desk, box, reports=pages) == 1
     err = capsys.readouterr().err
     assert "No space left on device" in err and "cannot rollback" not in err, err
     assert read_archive(box / "a.duckdb", RUN)[0] == before
+    assert not (box / "reports").exists() or list((box / "reports").iterdir()) == []
 
 
 def test_archive_of_an_earlier_version_gains_the_new_columns_and_keeps_its_rows(archived, desk, tmp_path):
@@ -423,13 +427,6 @@ def test_archive_night_lets_go_of_the_rows_once_committed(archived, desk, tmp_pa
 
 # ---------------------------------------------------------------- the commit: one-night runs fold, pages beside it
 
-def run_with_reports(data: Path, box: Path) -> int:
-    """:func:`run` with the report pages written (in ``box/reports``)."""
-    with contextlib.chdir(box):
-        return main(["run", "--as-of", RUN.isoformat(), "--data", str(data), "--archive", "a.duckdb",
-                     "--reports", "reports", "--basis", "BUS/252"])
-
-
 def _threshold(con: duckdb.DuckDBPyConnection) -> str:
     return con.execute("SELECT current_setting('checkpoint_threshold')").fetchall()[0][0]
 
@@ -505,24 +502,10 @@ def test_pages_are_moved_into_place_only_once_the_night_is_committed(archived, d
 
     monkeypatch.setattr(archive_module.OpenNight, "commit", slow_commit)
     monkeypatch.setattr(report_module, "write_atomically", watched_write)
-    assert run_with_reports(desk, box) == 3
+    assert run(desk, box, reports=True) == 3
     assert [name for name, _ in events] == ["pages written", "committed", "moving"]
     assert events[1][1] != events[0][1] == events[2][1] == threading.main_thread().name
     assert (box / "reports" / RUN.isoformat() / "index.html").exists()
-
-
-def test_a_failed_commit_publishes_no_page(archived, desk, tmp_path, monkeypatch, capsys):
-    """When the commit fails (a full disk) while the pages are rendered, the run exits 1 with the commit's cause,
-    the archive is as it was and no page of the night is published (their temporary folder removed)."""
-    box = copy_of(archived, tmp_path / "box")
-    before, _ = read_archive(box / "a.duckdb", RUN)
-    monkeypatch.setattr(archive_module, "_commit", _commit_fails_like_a_full_disk)
-    capsys.readouterr()
-    assert run_with_reports(desk, box) == 1
-    err = capsys.readouterr().err
-    assert "No space left on device" in err and "cannot rollback" not in err, err
-    assert read_archive(box / "a.duckdb", RUN)[0] == before
-    assert not (box / "reports").exists() or list((box / "reports").iterdir()) == []
 
 
 def test_failed_report_reads_leave_the_night_archived(archived, desk, tmp_path, monkeypatch, capsys):
@@ -538,7 +521,7 @@ def test_failed_report_reads_leave_the_night_archived(archived, desk, tmp_path, 
 
     monkeypatch.setattr(report_module, "load_report", failing_reads)
     capsys.readouterr()
-    assert run_with_reports(desk, box) == 1
+    assert run(desk, box, reports=True) == 1
     assert "injected failure reading the pages' figures" in capsys.readouterr().err
     rows = read_archive(box / "a.duckdb", RUN)[1]
     assert len(rows["runs"]) == len(box_rows["runs"]) == 1  # (its settings say the pages were asked for)
