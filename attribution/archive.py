@@ -363,10 +363,10 @@ def begin_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[str
     if capped:
         con.execute(SET_WRITE_MEMORY)
     night = OpenNight(con, as_of, capped, history, tables.get("book_pnl"))
-    threads = _threads(con) if max(table.num_rows for table in tables.values()) <= ONE_THREAD_INSERT_ROWS else 1
+    one_thread = max(table.num_rows for table in tables.values()) <= ONE_THREAD_INSERT_ROWS and _threads(con) > 1
     try:
         con.execute("BEGIN TRANSACTION")
-        if threads > 1:
+        if one_thread:
             con.execute(SET_ONE_THREAD)
         for table in TABLES if replace else ():
             con.execute(f"DELETE FROM {table} WHERE as_of = ?", [as_of])
@@ -377,11 +377,11 @@ def begin_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[str
         night.quality = quality_columns(series, as_of)
         _insert(con, "book_quality", column_rows(night.quality, "book_quality"))
         _insert(con, "runs", tables["runs"])
-        if threads > 1:
+        if one_thread:
             con.execute(RESET_THREADS)
     except BaseException:
         night.rollback()
-        if threads > 1:
+        if one_thread:
             with contextlib.suppress(duckdb.Error):
                 con.execute(RESET_THREADS)
         raise

@@ -497,13 +497,13 @@ def test_pages_are_moved_into_place_only_once_the_night_is_committed(archived, d
             assert before_moving is not None
             before_moving()
             events.append(("moving", threading.current_thread().name))
-        events.append(("pages written", threading.current_thread().name))
+        events.append(("writing pages", threading.current_thread().name))
         write(target, files, moving)
 
     monkeypatch.setattr(archive_module.OpenNight, "commit", slow_commit)
     monkeypatch.setattr(report_module, "write_atomically", watched_write)
     assert run(desk, box, reports=True) == 3
-    assert [name for name, _ in events] == ["pages written", "committed", "moving"]
+    assert [name for name, _ in events] == ["writing pages", "committed", "moving"]
     assert events[1][1] != events[0][1] == events[2][1] == threading.main_thread().name
     assert (box / "reports" / RUN.isoformat() / "index.html").exists()
 
