@@ -48,12 +48,14 @@ from attribution.pricing import InvalidPricingInput, _available_cores, invalid_r
 
 TWO_BOUNDARY_RULE = "american exercise with two boundaries (put: q < r < 0; call: r < q < 0) is not supported"
 _INV_SQRT_2PI = 1.0 / np.sqrt(2.0 * np.pi)
-# Boundary states solved together. Each operation then works on (512 x nodes x points) values, long enough that
-# numpy and scipy's loops run with Python's lock released while the other thread computes: on two cores 13,466
-# states of a 100,000-position night take 0.19 s instead of 0.27 s with 128 a chunk (whose loops are so short that
-# the two threads mostly wait for the lock: no faster than one thread); the 1M night's explain 7.0 s instead of
-# 7.6-7.9 (2026-12-03). A state's boundary is the same bits whatever the chunk.
-_CHUNK_STATES = 512
+_CHUNK_STATES = 128  # boundary states solved together on one thread: the (states x nodes x points) arrays in cache
+# Boundary states solved together when threads share them: each operation then works on (512 x nodes x points)
+# values, long enough that numpy and scipy's loops run with Python's lock released while the other thread computes.
+# On two cores 13,466 states of a 100,000-position night take 0.19 s instead of 0.27 s in chunks of 128 (whose
+# loops are so short that the threads mostly wait for the lock: no faster than one thread); the 1M night's explain
+# 7.0 s instead of 7.6-7.9. On one thread (a backfill's worker) chunks of 128 stay the fastest: 18 us a state,
+# 20 in chunks of 512 (2026-12-03). A state's boundary is the same bits whatever the chunk.
+_CHUNK_STATES_THREADED = 512
 _CHUNK_OPTIONS = 1024  # options valued together on their boundaries: (options x points) arrays in cache
 _MIN_CHUNKS_PER_THREAD = 4  # below this a thread costs more than it saves
 
@@ -82,16 +84,21 @@ def _signed_sqrt(h: FloatArray) -> FloatArray:
     return np.sign(h) * np.sqrt(np.abs(h))
 
 
-def in_chunks(n: int, size: int, block: Callable[[slice], None], threads: int | None) -> None:
+def in_chunks(n: int, size: int, block: Callable[[slice], None], threads: int | None,
+              threaded_size: int | None = None) -> None:
     """Call ``block`` on consecutive slices of ``range(n)``; many slices are spread over threads.
 
-    numpy and scipy release the GIL inside their loops; every slice is computed by the same operations
-    whatever the threads, so results do not depend on them. ``threads=None``: every available core.
+    Slices are ``size`` long, or ``threaded_size`` when they are spread over threads (enough of them for
+    :data:`_MIN_CHUNKS_PER_THREAD` a thread). numpy and scipy release the GIL inside their loops; every slice is
+    computed by the same operations whatever the threads, so results do not depend on them. ``threads=None``:
+    every available core.
     """
     if threads is not None and threads < 1:
         raise ValueError(f"threads must be >= 1 or None (all available cores), got {threads}")
-    chunks = [slice(lo, min(lo + size, n)) for lo in range(0, n, size)]
-    workers = min(threads or _available_cores(), len(chunks) // _MIN_CHUNKS_PER_THREAD)
+    shared = threaded_size or size
+    workers = min(threads or _available_cores(), -(-n // shared) // _MIN_CHUNKS_PER_THREAD)
+    step = shared if workers > 1 else size
+    chunks = [slice(lo, min(lo + step, n)) for lo in range(0, n, step)]
     if workers <= 1:
         for chunk in chunks:
             block(chunk)
@@ -350,7 +357,7 @@ def solve_put_boundaries(T: FloatArray, vol: FloatArray, r: FloatArray, q: Float
         def block(c: slice) -> None:
             h[c] = _solve_chunk(t[c], v[c], rr[c], qq[c], bm[c], scheme, g)
 
-        in_chunks(rows.size, _CHUNK_STATES, block, threads)
+        in_chunks(rows.size, _CHUNK_STATES, block, threads, _CHUNK_STATES_THREADED)
         return h
 
     h = solved(np.arange(T.size)) if memo is None else memo.solve(T, vol, r, q, scheme, solved)

@@ -153,13 +153,13 @@ def test_an_options_value_does_not_depend_on_what_is_priced_with_it() -> None:
     Reference: the functions' own results on the whole batch (exact equality, no tolerance).
     """
     rng = np.random.default_rng(5)
-    n = 1_100  # more than two chunks of states solved together (american._CHUNK_STATES)
+    n = 4_200  # enough states for two threads, in chunks of american._CHUNK_STATES_THREADED
     T, vol = rng.uniform(0.02, 3.0, n), rng.uniform(0.05, 0.8, n)
     r, q = rng.uniform(0.001, 0.08, n), rng.uniform(0.0, 0.1, n)
     whole = solve_put_boundaries(T, vol, r, q, threads=1, memo=None)  # no memo: every state solved each time
-    assert whole.h.shape[0] > 2 * american_module._CHUNK_STATES
-    np.testing.assert_array_equal(solve_put_boundaries(T, vol, r, q, memo=None).h, whole.h)  # threads too
-    for size in (1, 7, 511, 513):
+    assert n >= 2 * american_module._MIN_CHUNKS_PER_THREAD * american_module._CHUNK_STATES_THREADED
+    np.testing.assert_array_equal(solve_put_boundaries(T, vol, r, q, threads=2, memo=None).h, whole.h)
+    for size in (1, 7, 127, 129, 511, 513):
         for lo in range(0, n, size * 5):
             part = solve_put_boundaries(T[lo:lo + size], vol[lo:lo + size], r[lo:lo + size], q[lo:lo + size],
                                         threads=1, memo=None)
@@ -326,3 +326,26 @@ def test_implied_vol_not_identifiable_in_the_exercise_region() -> None:
     assert result.reason[0] == NOT_IDENTIFIABLE_RULE
     below = american_implied_vol(59.0, 40.0, 100.0, 1.0, 0.06, 0.0, False)
     assert below.reason[0] == "price below the American value at zero vol"
+
+
+@pytest.mark.parametrize(("n", "threads", "step"), [(3_585, 2, 512), (3_584, 2, 128), (4_096, 1, 128), (10, 2, 128)])
+def test_chunks_cover_every_state_once_and_are_longer_when_threads_share_them(n: int, threads: int,
+                                                                            step: int) -> None:
+    """``in_chunks`` calls its block on slices covering ``range(n)`` once each; they are ``threaded_size`` long
+    when spread over threads (two threads from eight such slices: four a thread), ``size`` long otherwise. (The
+    slices' lengths change no bit of a result: see the batch test above.)"""
+    import threading
+    seen: list[slice] = []
+    names: set[str] = set()
+    lock = threading.Lock()
+
+    def block(part: slice) -> None:
+        with lock:
+            seen.append(part)
+            names.add(threading.current_thread().name)
+
+    american_module.in_chunks(n, 128, block, threads, 512)
+    seen.sort(key=lambda part: part.start)
+    assert [part.start for part in seen] == list(range(0, n, step))
+    assert [part.stop for part in seen] == [min(lo + step, n) for lo in range(0, n, step)]
+    assert (threading.main_thread().name in names) is (step == 128)
