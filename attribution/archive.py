@@ -49,8 +49,10 @@ RESET_THREADS = "RESET threads"
 # While a night's rows are inserted, DuckDB may keep every block it writes them to in its buffer pool (by default up
 # to 80 % of the machine's memory): 330 MB for a million position rows, held through the reports after them. The
 # insert streams its rows into blocks written to the file; capped, the pool lets go of the written ones (a
-# million rows: 505 MB more memory while inserting, 176 MB capped at 256 MB). The cap is lifted after the
-# transaction, so the reports' queries run with DuckDB's default. The rows are the same.
+# million rows: 505 MB more memory while inserting, 176 MB capped at 256 MB). The cap is on for the inserts and for
+# the commit, and lifted between them for the reports' reads (inside the night's transaction): capped, a
+# million-position night's reads took 1.50-1.52 s instead of 1.17-1.21; an uncapped commit kept about 240 MB more
+# of the file's blocks through the pages (RSS after them 856 MB instead of 615; 2026-12-03). The rows are the same.
 # The cap costs time on an idle machine: under any memory limit up to 1 GB DuckDB inserts the rows on one thread
 # (a million rows: the same 3.2-3.5 s of CPU on one thread instead of two; the bench's archive 4.9 s instead of
 # 2.7), from 2 GB on two. Uncapped, the insert's own peak (about 550 MB over its start at a million rows, 280 MB
@@ -360,11 +362,11 @@ def begin_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[str
     :class:`BookHistory`, read in place of the quality query and updated once the night is committed.
     """
     capped = sum(table.nbytes for table in tables.values()) >= CAP_WRITE_FROM_BYTES
-    if capped:
-        con.execute(SET_WRITE_MEMORY)
-    night = OpenNight(con, as_of, capped, history, tables.get("book_pnl"))
     one_thread = max(table.num_rows for table in tables.values()) <= ONE_THREAD_INSERT_ROWS and _threads(con) > 1
+    night = OpenNight(con, as_of, capped, history, tables.get("book_pnl"))
     try:
+        if capped:
+            con.execute(SET_WRITE_MEMORY)
         con.execute("BEGIN TRANSACTION")
         if one_thread:
             con.execute(SET_ONE_THREAD)
@@ -377,14 +379,16 @@ def begin_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[str
         night.quality = quality_columns(series, as_of)
         _insert(con, "book_quality", column_rows(night.quality, "book_quality"))
         _insert(con, "runs", tables["runs"])
-        if one_thread:
-            con.execute(RESET_THREADS)
     except BaseException:
         night.rollback()
-        if one_thread:
-            with contextlib.suppress(duckdb.Error):
-                con.execute(RESET_THREADS)
         raise
+    finally:  # the cap and the one thread are for the writes: the reads between run as DuckDB chooses
+        if one_thread:
+            with contextlib.suppress(duckdb.Error):  # a connection that failed keeps its first error
+                con.execute(RESET_THREADS)
+        if capped:
+            with contextlib.suppress(duckdb.Error):
+                con.execute(RESET_MEMORY)
     return night
 
 
@@ -399,7 +403,7 @@ class OpenNight:
 
     def __init__(self, con: duckdb.DuckDBPyConnection, as_of: dt.date, capped: bool, history: BookHistory | None,
                  book_rows: pa.Table | None) -> None:
-        self.con, self.as_of, self._capped = con, as_of, capped
+        self.con, self.as_of, self._capped = con, as_of, capped  # capped: the commit too is under the write cap
         self._history, self._book_rows = history, book_rows  # the book rows: a row a book, kept for the history
         self.quality: dict[str, np.ndarray] = {}  # the book_quality rows written, as columns
 
@@ -411,6 +415,8 @@ class OpenNight:
         night (closing folds it anyway): the rows are then written once, not to the log first. A 100,000-position
         night's commit and close: 0.30 s instead of 0.16 + 0.24 (DuckDB 2.0, this machine, 2026-12-03)."""
         try:
+            if self._capped:
+                self.con.execute(SET_WRITE_MEMORY)
             if fold_log:
                 self.con.execute(SET_FOLD_AT_COMMIT)
             _commit(self.con)
@@ -420,8 +426,13 @@ class OpenNight:
             with contextlib.suppress(duckdb.Error):
                 self.con.execute("ROLLBACK")
             raise
-        finally:
-            self._settle(fold_log)
+        finally:  # the session's settings again (a connection that failed keeps its first error)
+            if fold_log:
+                with contextlib.suppress(duckdb.Error):
+                    self.con.execute(SET_CHECKPOINT_THRESHOLD)
+            if self._capped:
+                with contextlib.suppress(duckdb.Error):
+                    self.con.execute(RESET_MEMORY)
         if self._history is not None:
             self._history.record(self.as_of, self._book_rows)
 
@@ -429,16 +440,6 @@ class OpenNight:
         """Undo the night's deletes and inserts (the first error, if any, is the caller's to raise)."""
         with contextlib.suppress(duckdb.Error):
             self.con.execute("ROLLBACK")
-        self._settle(False)
-
-    def _settle(self, folded: bool) -> None:
-        """The connection's settings as before the night (a connection that failed keeps its first error)."""
-        if folded:
-            with contextlib.suppress(duckdb.Error):
-                self.con.execute(SET_CHECKPOINT_THRESHOLD)
-        if self._capped:
-            with contextlib.suppress(duckdb.Error):
-                self.con.execute(RESET_MEMORY)
 
 
 def _commit(con: duckdb.DuckDBPyConnection) -> None:

@@ -347,36 +347,44 @@ def _memory_limit(con: duckdb.DuckDBPyConnection) -> str:
 
 def test_night_rows_go_in_with_duckdbs_memory_capped_and_the_cap_is_lifted_after(archived, desk, tmp_path,
                                                                                  monkeypatch):
-    """Every insert of a large night runs under the write cap (DuckDB lets go of the blocks it wrote); once the
-    transaction is committed the connection has its memory limit as before. The mini desk's night is made
-    "large" by a threshold of 0 bytes."""
+    """Every insert of a large night, and its commit, run under the write cap (DuckDB lets go of the blocks it
+    wrote); between them, for the reports' reads, and after the commit the connection has its memory limit as
+    before. The mini desk's night is made "large" by a threshold of 0 bytes."""
     monkeypatch.setattr(archive_module, "CAP_WRITE_FROM_BYTES", 0)
     box = copy_of(archived, tmp_path / "box")
-    during, around = [], []
+    during, around, commit_limits = [], [], []
     insert, begin, commit = archive_module._insert, engine_module.begin_night, archive_module.OpenNight.commit
+    committing = archive_module._commit
 
     def capped_insert(con, table, rows):
         during.append(_memory_limit(con))
         insert(con, table, rows)
+
+    def watched_commit(con):
+        commit_limits.append(_memory_limit(con))
+        committing(con)
 
     def begin_night(con, *args, **kwargs):
         around.append(_memory_limit(con))
         return begin(con, *args, **kwargs)
 
     def committed(self, *args, **kwargs):
+        around.append(_memory_limit(self.con))  # the reads' limit
         commit(self, *args, **kwargs)
         around.append(_memory_limit(self.con))
 
     monkeypatch.setattr(archive_module, "_insert", capped_insert)
     monkeypatch.setattr(engine_module, "begin_night", begin_night)
     monkeypatch.setattr(archive_module.OpenNight, "commit", committed)
-    assert run(desk, box) == 3
+    monkeypatch.setattr(archive_module, "_commit", watched_commit)
+    assert run(desk, box, reports=True) == 3  # (the pages' reads come before the commit)
     cap = duckdb.connect()
     cap.execute(archive_module.SET_WRITE_MEMORY)
     assert len(during) >= 4 and set(during) == {_memory_limit(cap)}
     cap.close()
-    [before, after] = around
-    assert before == after != during[0]
+    [before, reads, after] = around
+    assert before == reads == after != during[0]
+    assert commit_limits == [during[0]]
 
 
 def test_a_small_night_goes_in_uncapped(archived, desk, tmp_path, monkeypatch):
