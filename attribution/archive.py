@@ -354,8 +354,8 @@ def begin_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, tables: dict[str
     out has no row tonight) and the night's quality test, in a transaction left open: the connection's queries see
     the new rows, no other connection does until :meth:`OpenNight.commit` (a failure here rolls everything back).
     The ``book_quality`` rows written are the returned night's ``quality``, as columns (see
-    :func:`~attribution.quality_table.quality_columns`). The connection must not be used by
-    another thread until the night is committed or rolled back.
+    :func:`~attribution.quality_table.quality_columns`). The connection must not be used by another thread until
+    the night is committed or rolled back.
 
     ``replace=False`` skips the deletes: only for a date known to have no row in any table (a backfill's
     session knows its archive's dates, as it holds the archive's lock). ``history``: the session's
