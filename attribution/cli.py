@@ -55,8 +55,8 @@ def build_parser() -> argparse.ArgumentParser:
         prog="attribution",
         description="End-of-day P&L attribution for options books: explain each book's night, "
                     "archive it, report it.",
-        epilog="Exit codes: 0 success, 1 failure (archive unchanged), 2 usage error, "
-               "3 finished with rejected rows or limit breaches, or over a missing business day.")
+        epilog="Exit codes: 0 success, 1 failure (the archive unchanged, unless only the reports failed), "
+               "2 usage error, 3 finished with rejected rows or limit breaches, or over a missing business day.")
     parser.add_argument("--version", action="version", version=f"attribution {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
