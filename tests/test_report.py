@@ -12,6 +12,8 @@ import datetime as dt
 import json
 import math
 import re
+import subprocess
+import sys
 from pathlib import Path
 
 import duckdb
@@ -417,6 +419,34 @@ def test_missing_table_is_named(tmp_path: Path) -> None:
     con = duckdb.connect(str(tmp_path / "empty.duckdb"))
     with pytest.raises(report.ReportError, match="book_quality"):
         report.render_night(con, AS_OF, tmp_path / "reports", JobConfig())
+
+
+def test_reading_the_figures_leaves_the_rendering_modules_unimported(tmp_path: Path) -> None:
+    """A run reads its figures inside the open transaction before its commit starts; the rendering's modules (Jinja2,
+    views, charts) are imported by ``publish_report``, beside the commit, not before the reads (README, "Speed")."""
+    archive = tmp_path / "archive.duckdb"
+    build_archive(archive, BOOKS[:2], per_book=3).close()
+    code = (
+        "import datetime as dt, sys, duckdb\n"
+        "from attribution import report\n"
+        "from attribution.config import JobConfig\n"
+        f"con = duckdb.connect({str(archive)!r}, read_only=True)\n"
+        f"frames = report.load_report(con, dt.date.fromisoformat({AS_OF.isoformat()!r}), JobConfig())\n"
+        "assert len(frames.books), 'no book read'\n"
+        "loaded = sorted(m for m in ('jinja2', 'attribution.report.html', 'attribution.report.view',\n"
+        "                            'attribution.report.charts', 'attribution.report.pages') if m in sys.modules)\n"
+        "assert not loaded, loaded\n"
+        "assert report.file_name_for('x').endswith('.html') and report.EXCEPTIONS_SHOWN > 0\n"
+        "assert 'attribution.report.html' in sys.modules\n"
+        "try:\n"
+        "    report.no_such_name\n"
+        "except AttributeError as exc:\n"
+        "    assert 'no_such_name' in str(exc)\n"
+        "else:\n"
+        "    raise AssertionError('an unknown name was found')\n"
+    )
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
 
 
 def test_amounts_are_formatted_with_separators_and_minus() -> None:

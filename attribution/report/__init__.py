@@ -14,21 +14,32 @@ never sees a half-written night.
 from __future__ import annotations
 
 import datetime as dt
+import importlib
 from collections.abc import Callable
 from pathlib import Path
 
 import duckdb
 
 from attribution.config import JobConfig
-from attribution.report.html import EXCEPTIONS_SHOWN, render_files
-from attribution.report.pages import file_name_for
 from attribution.report.publish import write_atomically
 from attribution.report.queries import TERM_COLUMNS, TOP_POSITIONS, NightFrames, ReportError, load_night
 from attribution.report.settings import NightSettings, night_settings
-from attribution.report.view import book_pages, conventions, night_view
 
-__all__ = ["EXCEPTIONS_SHOWN", "TERM_COLUMNS", "TOP_POSITIONS", "NightSettings", "ReportError", "book_pages",
-           "file_name_for", "load_night", "load_report", "night_settings", "publish_report", "render_night"]
+__all__ = ["TERM_COLUMNS", "TOP_POSITIONS", "NightSettings", "ReportError", "load_night", "load_report",
+           "night_settings", "publish_report", "render_night"]
+
+# The page-making names, imported when first asked for (module ``__getattr__``): a night's run imports this package
+# to read its figures inside the open transaction, and the rendering's modules (Jinja2, the views and charts: about
+# 37 ms) are imported by :func:`publish_report`, while the night's commit runs beside it, not before the reads.
+_RENDERING = {"EXCEPTIONS_SHOWN": "html", "render_files": "html", "book_pages": "view", "conventions": "view",
+              "night_view": "view", "file_name_for": "pages"}
+
+
+def __getattr__(name: str) -> object:
+    module = _RENDERING.get(name)
+    if module is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    return getattr(importlib.import_module(f"{__name__}.{module}"), name)
 
 
 def render_night(con: duckdb.DuckDBPyConnection, as_of: dt.date, reports_dir: Path, config: JobConfig) -> Path:
@@ -52,6 +63,9 @@ def publish_report(frames: NightFrames, as_of: dt.date, reports_dir: Path, confi
     place: the engine waits there for the night's commit, so no page is published for a night not archived
     (if it raises, nothing is published and its error is raised).
     """
+    from attribution.report.html import render_files
+    from attribution.report.view import book_pages, conventions, night_view
+
     settings = night_settings(frames.run, config)  # the night's own settings, as its run record holds them
     pages = book_pages(frames, settings)
     night = night_view(frames, pages, as_of, conventions(frames, as_of, settings))
