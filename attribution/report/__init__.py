@@ -29,8 +29,8 @@ __all__ = ["TERM_COLUMNS", "TOP_POSITIONS", "NightSettings", "ReportError", "loa
            "night_settings", "publish_report", "render_night"]
 
 # The page-making names, imported when first asked for (module ``__getattr__``): a night's run imports this package
-# to read its figures inside the open transaction, and the rendering's modules (Jinja2, the views and charts: about
-# 37 ms) are imported by :func:`publish_report`, while the night's commit runs beside it, not before the reads.
+# to read its figures inside the open transaction, and the rendering's modules (Jinja2, the views and charts: 25-37
+# ms) are imported by :func:`publish_report`, while the night's commit runs beside it, not before the reads.
 _RENDERING = {"EXCEPTIONS_SHOWN": "html", "render_files": "html", "book_pages": "view", "conventions": "view",
               "night_view": "view", "file_name_for": "pages"}
 
