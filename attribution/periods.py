@@ -49,18 +49,14 @@ def _running(key: str) -> str:
 
 
 def _period_sums() -> str:
-    """Sums since the start of the month (parameter ``m0``) and of the year (every row read, so no filter: a
-    filter of ``TRUE`` on each sum doubled the query's time, 21 ms instead of 11 at 100 books, the same rows
+    """Sums since the start of the month (parameter ``m0``), then of the year: every row read, so without a filter
+    (a filter of ``TRUE`` on each sum doubled the query's time, 21 ms instead of 11 at 100 books, the same rows
     added in the same order)."""
-    parts = []
-    for suffix, _ in PERIODS:
-        if suffix == "mtd":
-            parts += [f"sum({c}) FILTER (WHERE as_of >= p.m0) AS {c}_{suffix}" for c in ACCUMULATED]
-            parts.append(f"count(*) FILTER (WHERE as_of >= p.m0 AND limit_state = 'breach') AS breaches_{suffix}")
-        else:
-            parts += [f"sum({c}) AS {c}_{suffix}" for c in ACCUMULATED]
-            parts.append(f"count(*) FILTER (WHERE limit_state = 'breach') AS breaches_{suffix}")
-    return ", ".join(parts)
+    month = "as_of >= p.m0"
+    return ", ".join([*(f"sum({c}) FILTER (WHERE {month}) AS {c}_mtd" for c in ACCUMULATED),
+                      f"count(*) FILTER (WHERE {month} AND limit_state = 'breach') AS breaches_mtd",
+                      *(f"sum({c}) AS {c}_ytd" for c in ACCUMULATED),
+                      "count(*) FILTER (WHERE limit_state = 'breach') AS breaches_ytd"])
 
 
 _BOOK_RUNNING, _DESK_RUNNING, _PERIOD_SUMS = _running("book"), _running("desk"), _period_sums()
