@@ -451,7 +451,10 @@ def archive_rows(night: PreparedNight) -> ArchiveRows:
     frames = {"position_pnl": night.positions, "book_pnl": night.books, "input_exceptions": night.exceptions,
               "dividend_schedule": night.dividend_schedule}
     pos, exceptions = night.positions, night.exceptions
-    figures = dict(
+    tables = {name: arrow_table(frame, name, consume=name == "position_pnl") for name, frame in frames.items()
+              if frame is not None and not frame.empty}
+    return ArchiveRows(
+        as_of=night.as_of, prior_as_of=night.prior_as_of, tables=tables,
         hashes=night.hashes, positions_in=night.positions_in, rejected_positions=night.rejected_positions,
         unaccounted=night.unaccounted, stages=night.stages, counts=_Counts.of(night), books=len(night.books),
         total_pnl=float(pos["pnl_total"].sum()), overnight_actual=float(pos["pnl_actual"].sum()),
@@ -460,10 +463,6 @@ def archive_rows(night: PreparedNight) -> ArchiveRows:
         official_breaks=int((exceptions["rule"] == OFFICIAL_BREAK).sum()),
         missing_days=tuple(exceptions.loc[exceptions["rule"] == MISSING_DAY, "key"].astype(str)),
     )
-    tables = {name: arrow_table(frame, name, consume=name == "position_pnl") for name, frame in frames.items()
-              if frame is not None and not frame.empty}
-    return ArchiveRows(as_of=night.as_of, prior_as_of=night.prior_as_of, tables=tables,
-                       **figures)
 
 
 def _runs_table(night: ArchiveRows, config: JobConfig, run_id: str, started: dt.datetime,

@@ -28,11 +28,11 @@ from attribution.report.settings import NightSettings, night_settings
 __all__ = ["TERM_COLUMNS", "TOP_POSITIONS", "NightSettings", "ReportError", "load_night", "load_report",
            "night_settings", "publish_report", "render_night"]
 
-# The page-making names, imported when first asked for (module ``__getattr__``): a night's run imports this package
-# to read its figures inside the open transaction, and the rendering's modules (Jinja2, the views and charts: 25-37
-# ms) are imported by :func:`publish_report`, while the night's commit runs beside it, not before the reads.
-_RENDERING = {"EXCEPTIONS_SHOWN": "html", "render_files": "html", "book_pages": "view", "conventions": "view",
-              "night_view": "view", "file_name_for": "pages"}
+# The package's page-making names, imported when first asked for (module ``__getattr__``): a night's run imports this
+# package to read its figures inside the open transaction, and the rendering's modules (Jinja2, the views and
+# charts: 25-37 ms) are imported by :func:`publish_report`, while the night's commit runs beside it, not before the
+# reads.
+_RENDERING = {"EXCEPTIONS_SHOWN": "html", "book_pages": "view", "file_name_for": "pages"}
 
 
 def __getattr__(name: str) -> object:
